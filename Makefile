@@ -1,0 +1,45 @@
+# Two commands for a new user: `make demo` and `make test`.
+PYTHON ?= python3
+VENV   ?= .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+
+.PHONY: install test demo bench lint typecheck clean mosquitto
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+
+$(STAMP): $(BIN)/python pyproject.toml
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+install: $(STAMP)
+
+# Integration tests need a real Mosquitto; install Debian's when missing and we are root.
+mosquitto:
+	@if ! command -v mosquitto >/dev/null 2>&1 && [ ! -x /usr/sbin/mosquitto ]; then \
+	  if [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
+	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq mosquitto mosquitto-clients; \
+	  else \
+	    echo "note: mosquitto not found and not root; broker tests will be skipped"; \
+	  fi; \
+	fi
+
+test: install mosquitto
+	$(BIN)/python -m pytest
+
+lint: install
+	$(BIN)/ruff check daemon simulator tests benchmarks
+	$(BIN)/mypy daemon simulator
+
+typecheck: lint
+
+demo: install
+	$(BIN)/hourwatch replay examples/ward-night.jsonl --profiles device_profiles --hourly
+
+bench: install
+	$(BIN)/python -m benchmarks.run
+
+clean:
+	rm -rf $(VENV) build *.egg-info .pytest_cache .mypy_cache .ruff_cache

@@ -1,0 +1,271 @@
+"""Per-device stream cleaning (DESIGN §3): from accepted readings to spreads of
+volume over time in the bed's minute series.
+
+Two cleaners share one contract: `feed(t, reading)` for a reading at effective
+time t that is not a duplicate and not late, returning the final outcome of
+every reading it settled (a held reading is settled by the one after it).
+"""
+
+from __future__ import annotations
+
+import bisect
+from collections import deque
+from dataclasses import dataclass
+
+from .decode import Reading
+from .outcomes import Outcome
+from .profiles import DeviceProfile
+from .series import ESTIMATED, MEASURED, MinuteSeries
+
+RATE_LOOKBACK_S = 1800.0  # flow before a bag change is judged over the last 30 min
+
+
+@dataclass(slots=True)
+class _Point:
+    t: float
+    raw: float
+    fit: float = 0.0
+    applied: float = 0.0  # increment currently spread over (previous point, t]
+
+
+def isotonic_fit(values: list[float], floor: float) -> list[float]:
+    """Least-squares non-decreasing fit (pool adjacent violators), clipped at `floor`.
+
+    Clipping the unconstrained fit is the exact solution with a lower bound.
+    """
+    sums: list[float] = []
+    counts: list[int] = []
+    for v in values:
+        sums.append(v)
+        counts.append(1)
+        while len(sums) > 1 and sums[-2] * counts[-1] > sums[-1] * counts[-2]:
+            s, c = sums.pop(), counts.pop()
+            sums[-1] += s
+            counts[-1] += c
+    out: list[float] = []
+    for s, c in zip(sums, counts, strict=True):
+        out.extend([max(floor, s / c)] * c)
+    return out
+
+
+class CumulativeCleaner:
+    """Cumulative volume since the last bag change (also bag weight, once in mL).
+
+    The newest readings form a short tail that is refitted monotone when a small
+    fall (noise) arrives; readings older than the tail are final. A fall to near
+    zero or a bag-change flag starts a new bag; the volume produced between the
+    last reading before the change and the change, which no reading shows, is
+    estimated from the flow before it. Implausible jumps and large falls are held
+    until the next reading confirms or refutes them.
+    """
+
+    def __init__(self, profile: DeviceProfile, series: MinuteSeries) -> None:
+        self.series = series
+        p = profile
+        self._tail_len = p.smoothing.points
+        self._reorder_tol = float(p.timing.reorder_tolerance_s)
+        self._max_gap = float(p.timing.max_interpolation_gap_s)
+        self._min_dt = float(p.timing.period_s)
+        self._max_flow_s = p.limits.max_flow_ml_h / 3600.0
+        self._noise = p.bag_change.noise_fall_ml
+        self._near_zero = p.bag_change.near_zero_ml
+        self._min_fall = max(p.bag_change.min_fall_ml, p.bag_change.noise_fall_ml)
+        self._fall_detect = p.bag_change.detect in ("fall", "both")
+        self.floor_t: float | None = None  # last final point: time and fitted level
+        self.floor_level = 0.0
+        self.tail: list[_Point] = []
+        self.history: deque[tuple[float, float]] = deque(maxlen=128)  # final (t, level)
+        self.held: tuple[float, Reading, str] | None = None  # (t, reading, "spike"|"fall")
+
+    # --- public --------------------------------------------------------------
+    @property
+    def last_t(self) -> float | None:
+        return self.tail[-1].t if self.tail else self.floor_t
+
+    def pending(self) -> int:
+        return 1 if self.held else 0
+
+    def feed(self, t: float, r: Reading) -> list[Outcome]:
+        if self.floor_t is None:
+            self._start_bag(t, r.volume_ml)
+            return [Outcome.BAG_CHANGE if r.bag_flag else Outcome.ACCEPTED]
+        last_t = self.last_t
+        assert last_t is not None
+        if t < last_t:
+            return [self._insert(t, r)]
+        out: list[Outcome] = []
+        if self.held is not None:
+            out.append(self._settle_held(t, r))
+        out.append(self._next(t, r))
+        return out
+
+    # --- in-order path -------------------------------------------------------
+    def _level(self) -> tuple[float, float]:
+        if self.tail:
+            return self.tail[-1].t, self.tail[-1].fit
+        assert self.floor_t is not None
+        return self.floor_t, self.floor_level
+
+    def _next(self, t: float, r: Reading) -> Outcome:
+        if r.bag_flag:
+            self._bag_change(t, r.volume_ml)
+            return Outcome.BAG_CHANGE
+        last_t, level = self._level()
+        v = r.volume_ml
+        fall = level - v
+        if fall > self._noise:
+            if self._fall_detect and v <= self._near_zero and fall >= self._min_fall:
+                self._bag_change(t, v)
+                return Outcome.BAG_CHANGE
+            self.held = (t, r, "fall")
+            return Outcome.SPIKE_HELD
+        if self._implausible(last_t, level, t, v):
+            self.held = (t, r, "spike")
+            return Outcome.SPIKE_HELD
+        return self._append(t, v)
+
+    def _implausible(self, t0: float, v0: float, t1: float, v1: float) -> bool:
+        dt = max(t1 - t0, self._min_dt)
+        return (v1 - v0 - self._noise) > self._max_flow_s * dt
+
+    def _settle_held(self, t: float, r: Reading) -> Outcome:
+        """The reading after a held one decides it: same new level confirms, else artefact."""
+        assert self.held is not None
+        th, h, kind = self.held
+        self.held = None
+        confirms = (
+            not r.bag_flag
+            and r.volume_ml >= h.volume_ml - self._noise
+            and not self._implausible(th, h.volume_ml, t, r.volume_ml)
+        )
+        if kind == "fall":
+            _, level = self._level()
+            confirms = confirms and r.volume_ml < level - self._noise
+            if confirms:
+                self._bag_change(th, h.volume_ml)
+                return Outcome.BAG_CHANGE_INFERRED
+            return Outcome.ARTEFACT_DROPPED
+        if confirms:
+            self._append(th, h.volume_ml)
+            return Outcome.SPIKE_CONFIRMED
+        return Outcome.ARTEFACT_DROPPED
+
+    def _append(self, t: float, v: float) -> Outcome:
+        prev_t, level = self._level()
+        p = _Point(t, v)
+        self.tail.append(p)
+        if v >= level:  # common case: nothing earlier changes
+            p.fit = v
+            p.applied = v - level
+            self._spread(prev_t, t, p.applied)
+            outcome = Outcome.ACCEPTED
+        else:
+            self._refit()
+            outcome = Outcome.NOISE_FALL
+        self._freeze()
+        return outcome
+
+    # --- tail maintenance ------------------------------------------------------
+    def _spread(self, t0: float, t1: float, volume: float) -> None:
+        # zero volume still marks the minutes measured: no flow is a measurement
+        state = MEASURED if t1 - t0 <= self._max_gap else ESTIMATED
+        self.series.spread(t0, t1, volume, state)
+
+    def _refit(self) -> None:
+        fits = isotonic_fit([p.raw for p in self.tail], self.floor_level)
+        prev_t, prev_fit = self.floor_t, self.floor_level
+        assert prev_t is not None
+        for p, f in zip(self.tail, fits, strict=True):
+            p.fit = f
+            inc = f - prev_fit
+            if inc != p.applied:
+                self._spread(prev_t, p.t, inc - p.applied)
+                p.applied = inc
+            prev_t, prev_fit = p.t, f
+
+    def _freeze(self) -> None:
+        newest = self.tail[-1].t
+        while len(self.tail) > self._tail_len and newest - self.tail[0].t > self._reorder_tol:
+            p = self.tail.pop(0)
+            self.floor_t, self.floor_level = p.t, p.fit
+            self.history.append((p.t, p.fit))
+
+    def _insert(self, t: float, r: Reading) -> Outcome:
+        """A reading older than the newest one but within the reorder tolerance."""
+        assert self.floor_t is not None
+        if t <= self.floor_t or r.bag_flag:
+            return Outcome.LATE  # before the last final point or a past bag change
+        i = next(k for k, p in enumerate(self.tail) if p.t > t)
+        lo = self.tail[i - 1].fit if i > 0 else self.floor_level
+        hi = self.tail[i].raw
+        if not (lo - self._noise <= r.volume_ml <= hi + self._noise):
+            return Outcome.ARTEFACT_DROPPED
+        prev_t = self.floor_t
+        for p in self.tail:  # undo the tail's spreads, whose intervals change
+            self._spread(prev_t, p.t, -p.applied)
+            p.applied = 0.0
+            prev_t = p.t
+        self.tail.insert(i, _Point(t, r.volume_ml))
+        self._refit()
+        return Outcome.REORDERED
+
+    # --- bags ----------------------------------------------------------------
+    def _start_bag(self, t: float, level: float) -> None:
+        self.floor_t, self.floor_level = t, level
+        self.tail.clear()
+        self.history.clear()
+        self.history.append((t, level))
+
+    def _flow_before(self) -> float | None:
+        """mL/s over the last RATE_LOOKBACK_S of the current bag, or None if too short."""
+        pts = list(self.history) + [(p.t, p.fit) for p in self.tail]
+        t_end, v_end = pts[-1]
+        start = next(((t, v) for t, v in pts if t >= t_end - RATE_LOOKBACK_S), pts[0])
+        if t_end - start[0] < self._min_dt:
+            return None
+        return max(0.0, (v_end - start[1]) / (t_end - start[0]))
+
+    def _bag_change(self, t: float, new_level: float) -> None:
+        t_a, _ = self._level()
+        rate = self._flow_before()
+        unseen = new_level if rate is None else max(new_level, rate * (t - t_a))
+        self.series.spread(t_a, t, unseen, ESTIMATED)
+        self._start_bag(t, new_level)
+
+
+class IntervalCleaner:
+    """Each reading is the volume produced in (t - interval, t]; order does not
+    matter, overlap does: an interval overlapping an accepted one is refused."""
+
+    def __init__(self, profile: DeviceProfile, series: MinuteSeries) -> None:
+        self.series = series
+        assert profile.volume.interval_s is not None
+        self._interval = float(profile.volume.interval_s)
+        self._max_flow_s = profile.limits.max_flow_ml_h / 3600.0
+        self._ends: list[float] = []  # accepted interval ends, sorted
+        self.last_t: float | None = None
+
+    def pending(self) -> int:
+        return 0
+
+    def feed(self, t: float, r: Reading) -> list[Outcome]:
+        if r.volume_ml > self._max_flow_s * self._interval:
+            return [Outcome.IMPLAUSIBLE_FLOW]
+        width = self._interval - 1.0  # a second of jitter is not an overlap
+        i = bisect.bisect_left(self._ends, t)
+        ends = self._ends
+        if (i < len(ends) and ends[i] - t < width) or (i > 0 and t - ends[i - 1] < width):
+            return [Outcome.CONFLICTING_DUPLICATE]
+        ends.insert(i, t)
+        if len(ends) > 4096:
+            del ends[:2048]
+        out = Outcome.ACCEPTED
+        if self.last_t is not None and t < self.last_t:
+            out = Outcome.REORDERED
+        else:
+            self.last_t = t
+        self.series.spread(t - self._interval, t, r.volume_ml, MEASURED)
+        return [out]
+
+
+Cleaner = CumulativeCleaner | IntervalCleaner

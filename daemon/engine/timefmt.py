@@ -1,0 +1,76 @@
+"""Pure time parsing. Inside the engine a time is a float of UTC epoch seconds."""
+
+from __future__ import annotations
+
+import re
+from datetime import UTC, datetime, timedelta, timezone
+
+_OFFSET = re.compile(r"^([+-])(\d{2}):?(\d{2})$")
+
+
+class TimeError(ValueError):
+    """A time value that cannot be read unambiguously."""
+
+
+def parse_offset(text: str) -> timezone:
+    """'+01:00', '-0530', 'Z' or 'UTC' -> a fixed offset."""
+    s = text.strip()
+    if s in ("Z", "z", "UTC", "utc"):
+        return UTC
+    m = _OFFSET.match(s)
+    if not m:
+        raise TimeError(f"bad UTC offset {text!r}")
+    sign, hh, mm = m.groups()
+    delta = timedelta(hours=int(hh), minutes=int(mm))
+    if delta > timedelta(hours=14):
+        raise TimeError(f"UTC offset out of range {text!r}")
+    return timezone(-delta if sign == "-" else delta)
+
+
+def parse_iso(text: str, offset: str | None = None) -> float:
+    """ISO-8601 to epoch seconds. A time without an offset needs `offset`,
+    because guessing the zone of a bedside clock would misplace hours."""
+    try:
+        dt = datetime.fromisoformat(text.strip())
+    except (ValueError, AttributeError) as exc:
+        raise TimeError(f"not an ISO-8601 time: {text!r}") from exc
+    if dt.tzinfo is None:
+        if offset is None:
+            raise TimeError(f"time without UTC offset: {text!r}")
+        dt = dt.replace(tzinfo=parse_offset(offset))
+    elif offset is not None:
+        raise TimeError(f"time carries an offset and an offset field: {text!r}")
+    return dt.timestamp()
+
+
+def parse_epoch(value: object, scale: float) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float | str):
+        raise TimeError(f"not an epoch number: {value!r}")
+    try:
+        seconds = float(value) / scale
+    except ValueError as exc:
+        raise TimeError(f"not an epoch number: {value!r}") from exc
+    if not (0.0 < seconds < 32503680000.0):  # year 1970..3000
+        raise TimeError(f"epoch out of range: {value!r}")
+    return seconds
+
+
+def to_datetime(t: float) -> datetime:
+    return datetime.fromtimestamp(t, tz=UTC)
+
+
+def iso(t: float) -> str:
+    """UTC ISO-8601 with 'Z', to the second (sub-second when present)."""
+    dt = to_datetime(t)
+    if dt.microsecond:
+        return dt.isoformat().replace("+00:00", "Z")
+    return dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def as_epoch(when: datetime | float) -> float:
+    """Accept an aware datetime or epoch seconds at the engine's boundary."""
+    if isinstance(when, datetime):
+        if when.tzinfo is None:
+            raise TimeError("naive datetime given to the engine; times must be aware")
+        return when.timestamp()
+    return float(when)
