@@ -68,9 +68,15 @@ def drive(
 
 
 def replay_file(
-    path: Path, profiles: list[DeviceProfile], warn: TextIO | None = sys.stderr
+    path: Path,
+    engine: Engine | list[DeviceProfile],
+    warn: TextIO | None = sys.stderr,
+    on_effects: Callable[[list[Effect]], None] | None = None,
+    until: float | None = None,
 ) -> ReplayResult:
-    result = drive(Engine(profiles), read_log(path))
+    if not isinstance(engine, Engine):
+        engine = Engine(engine)
+    result = drive(engine, read_log(path), on_effects, until)
     if warn is not None:
         for bad in result.bad_lines:
             print(f"{path}:{bad.line_no}: skipped: {bad.reason}", file=warn)

@@ -4,21 +4,35 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+
+from .advice import ReplacementOrder
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
 WeightBasis = Literal["actual", "ideal", "adjusted"]
 
 
-class BedContext(BaseModel):
-    """Retained on `{prefix}/beds/{bed}/context`; a newer one replaces the older."""
+class Episode(BaseModel):
+    """A clinical marker, e.g. when an obstruction was relieved."""
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
+    kind: Literal["catheter_inserted", "obstruction_relieved", "catheter_changed"]
+    at: AwareDatetime
+
+
+class BedContext(BaseModel):
+    """Retained on `{prefix}/beds/{bed}/context`; a newer one replaces the older."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
     schema_version: Literal[1] = Field(1, alias="schema")
     ward: Annotated[str, Field(min_length=1, max_length=64)]
-    device_ids: Annotated[
-        list[Annotated[str, Field(min_length=1, max_length=128)]], Field(max_length=8)
-    ]
+    device_ids: Annotated[list[DeviceId], Field(max_length=8)]
     weight_kg: Annotated[float, Field(gt=0, le=400)] | None = None
     weight_basis: WeightBasis | None = None
+    # per-bed overrides, by clinician order
+    disabled_rules: list[Annotated[str, Field(max_length=64)]] = Field(default_factory=list)
+    replacement: ReplacementOrder = ReplacementOrder()
+    tbw_fraction: Annotated[float, Field(ge=0.3, le=0.7)] = 0.6  # total body water / weight
+    episodes: list[Episode] = Field(default_factory=list)

@@ -63,12 +63,10 @@ def _column_getter(ref: str | int) -> Callable[[Any], Any]:
 def _number(value: Any) -> float | None:
     if isinstance(value, bool):
         return None
-    if isinstance(value, int | float):
-        f = float(value)
-    elif isinstance(value, str):
-        try:
-            f = float(value.strip())
-        except ValueError:
+    if isinstance(value, int | float | str):
+        try:  # a JSON integer can be too large for a float
+            f = float(value.strip() if isinstance(value, str) else value)
+        except (ValueError, OverflowError):
             return None
     else:
         return None
@@ -83,6 +81,12 @@ def _truthy(value: Any) -> bool:
 
 class Decoder:
     """A profile compiled into fast field accessors."""
+
+    def __getstate__(self) -> DeviceProfile:
+        return self.profile  # accessors are closures: rebuild them, don't pickle them
+
+    def __setstate__(self, profile: DeviceProfile) -> None:
+        self.__init__(profile)  # type: ignore[misc]
 
     def __init__(self, profile: DeviceProfile) -> None:
         self.profile = profile

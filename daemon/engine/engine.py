@@ -1,11 +1,13 @@
 """The engine: routes each inbound message, cleans meter streams into per-bed
-minute series and counts every outcome. Pure: no I/O, no clock; `now` is the
-message's receive time, given by the caller.
+minute series, runs the rules and the alarm lifecycle, and counts every
+outcome. Pure: no I/O, no clock; `now` is given by the caller (a message's
+receive time, or a wake-up the engine declared).
 """
 
 from __future__ import annotations
 
 import bisect
+import heapq
 import json
 from collections import Counter
 from collections.abc import Iterable
@@ -13,14 +15,23 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
-from pydantic import ValidationError
+from pydantic import BaseModel, ValidationError
 
+from .advice import replacement_advice
+from .alarms import AlarmEvent, Kind
+from .bedstate import BedState, Vitals
+from .checks import DeviceSeen
 from .cleaning import Cleaner, CumulativeCleaner, IntervalCleaner
+from .clinical import AckMessage, IntakeMessage, LabsMessage, VitalsMessage
 from .context import BedContext
 from .decode import Decoder, Payload, Reading, Rejected
-from .effects import Effect, RejectedInput
+from .effects import AdviceIssued, Effect, RejectedInput
+from .escalation import EscalationPolicy
+from .evaluator import OPEN, Evaluator
+from .lifecycle import AlarmBook
 from .outcomes import DECODE_REJECTIONS, DeviceQuality, Outcome
 from .profiles import DeviceProfile, Semantics
+from .rules import HourlyAbove, RuleDef, VolumeAbove
 from .series import MinuteSeries
 from .timefmt import as_epoch
 
@@ -35,20 +46,44 @@ class _Device:
     bed: str | None = None
     cleaner: Cleaner | None = None
     latest_t: float | None = None  # newest effective time accepted
+    last_seen: float | None = None  # receive time of its last message
     by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
     by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
     dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
 
 
-@dataclass(slots=True)
-class Bed:
-    bed_id: str
-    context: BedContext
-    series: MinuteSeries
+def _json_obj(payload: Payload) -> Any:
+    return json.loads(payload) if isinstance(payload, bytes | str) else payload
+
+
+def _first_error(exc: ValidationError) -> str:
+    err = exc.errors()[0]
+    where = ".".join(str(x) for x in err["loc"]) or "payload"
+    return f"{where}: {err['msg']}"[:200]
+
+
+_CLINICAL: dict[str, type[BaseModel]] = {
+    "intake": IntakeMessage,
+    "vitals": VitalsMessage,
+    "labs": LabsMessage,
+}
+
+
+def _bedside_only() -> EscalationPolicy:
+    """Used when no policy is given (intake-only use): page the bedside nurse once."""
+    one = {"tiers": [{"roles": ["bedside-nurse"], "after_s": 0}]}
+    return EscalationPolicy.model_validate({p: one for p in ("high", "medium", "low", "info")})
 
 
 class Engine:
-    def __init__(self, profiles: Iterable[DeviceProfile], topic_prefix: str = "hourwatch") -> None:
+    def __init__(
+        self,
+        profiles: Iterable[DeviceProfile],
+        rules: Iterable[RuleDef] = (),
+        policy: EscalationPolicy | None = None,
+        topic_prefix: str = "hourwatch",
+        ack_validity_s: int = 3600,
+    ) -> None:
         self.profiles = list(profiles)
         names = [p.name for p in self.profiles]
         if len(set(names)) != len(names):
@@ -56,17 +91,30 @@ class Engine:
         self._routes = [(p.topic_regex(), Decoder(p)) for p in self.profiles]
         self.prefix = topic_prefix.rstrip("/")
         self._bed_topic = self.prefix + "/beds/"
+        self._ack_topic = self.prefix + "/ack"
         self.devices: dict[str, _Device] = {}
-        self.beds: dict[str, Bed] = {}
+        self.beds: dict[str, BedState] = {}
         self._bound: dict[str, str] = {}  # device id -> bed id
         self.unrouted: Counter[Outcome] = Counter()
         self.context_rejections: Counter[str] = Counter()
+        self.input_rejections: Counter[str] = Counter()
+        self.rules = [r for r in rules if r.enabled]
+        self.book = AlarmBook(policy or _bedside_only(), ack_validity_s)
+        self.evaluator = Evaluator(self.rules, self.book)
+        self._high_output = {
+            r.id for r in self.rules
+            if isinstance(r.check, HourlyAbove | VolumeAbove) and r.kind is Kind.PHYSIOLOGICAL
+        }  # fmt: skip
+        self._due: dict[str, float] = {}  # bed -> its rules' next due time
+        self._heap: list[tuple[float, str]] = []  # (due, bed), stale entries skipped
 
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
         t_now = as_epoch(now)
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
+        if topic == self._ack_topic:
+            return self._ack(topic, payload, t_now)
         for regex, decoder in self._routes:
             m = regex.match(topic)
             if m:
@@ -89,6 +137,7 @@ class Engine:
     ) -> list[Effect]:
         dev = self._device(device_id, decoder)
         dev.quality.received += 1
+        dev.last_seen = now
         result = decoder.decode(device_id, payload)
         if isinstance(result, Rejected):
             dev.quality.add(result.reason)
@@ -98,6 +147,8 @@ class Engine:
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
         effects: list[Effect] = []
+        if dev.bed is not None:
+            effects += self._after_reading(self.beds[dev.bed], now)
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
@@ -157,34 +208,84 @@ class Engine:
     # --- bed context ---------------------------------------------------------
     def _bed_message(self, topic: str, payload: Payload, now: float) -> list[Effect]:
         rest = topic[len(self._bed_topic) :].split("/")
-        if len(rest) != 2 or not rest[0] or rest[1] != "context":
-            # later issues route intake, vitals and labs here
+        if len(rest) != 2 or not rest[0] or (rest[1] != "context" and rest[1] not in _CLINICAL):
             self.unrouted[Outcome.UNKNOWN_TOPIC] += 1
             return [RejectedInput(now, topic, None, Outcome.UNKNOWN_TOPIC, "unknown bed topic")]
-        bed_id = rest[0]
+        bed_id, what = rest
+        if what != "context":
+            return self._clinical(topic, bed_id, what, payload, now)
         try:
-            obj: Any = payload
-            if isinstance(payload, bytes | str):
-                obj = json.loads(payload)
-            ctx = BedContext.model_validate(obj)
+            ctx = BedContext.model_validate(_json_obj(payload))
         except ValidationError as exc:
-            err = exc.errors()[0]
-            where = ".".join(str(x) for x in err["loc"]) or "payload"
-            return self._bad_context(topic, bed_id, now, f"{where}: {err['msg']}")
+            return self._bad_context(topic, bed_id, now, _first_error(exc))
         except (ValueError, TypeError, RecursionError):
             return self._bad_context(topic, bed_id, now, "payload is not JSON")
-        self._bind(bed_id, ctx)
-        return []
+        self._bind(bed_id, ctx, now)
+        return self._evaluate(self.beds[bed_id], now)
+
+    def _clinical(
+        self, topic: str, bed_id: str, what: str, payload: Payload, now: float
+    ) -> list[Effect]:
+        bed = self.beds.get(bed_id)
+        if bed is None:
+            self.input_rejections[Outcome.UNKNOWN_BED] += 1
+            return [RejectedInput(now, topic, None, Outcome.UNKNOWN_BED, "no context for this bed")]
+        try:
+            msg = _CLINICAL[what].model_validate(_json_obj(payload))
+        except ValidationError as exc:
+            detail = _first_error(exc)
+        except (ValueError, TypeError, RecursionError):
+            detail = "payload is not JSON"
+        else:
+            self._record_clinical(bed, msg)
+            return self._evaluate(bed, now)
+        self.input_rejections[Outcome.BAD_CLINICAL_INPUT] += 1
+        return [RejectedInput(now, topic, None, Outcome.BAD_CLINICAL_INPUT, detail)]
+
+    @staticmethod
+    def _record_clinical(bed: BedState, msg: BaseModel) -> None:
+        if isinstance(msg, IntakeMessage):
+            bed.add_intake(msg.time.timestamp(), msg.volume_ml)
+        elif isinstance(msg, VitalsMessage):
+            bed.add_vitals(Vitals(msg.time.timestamp(), msg.heart_rate_bpm, msg.systolic_mmhg,
+                                  msg.diastolic_mmhg, msg.mean_mmhg))  # fmt: skip
+        elif isinstance(msg, LabsMessage):
+            t = msg.time.timestamp()
+            for analyte, value in msg.model_dump(exclude={"time", "schema_version"}).items():
+                if value is not None:
+                    bed.add_lab(analyte, t, float(value))
+
+    # --- acknowledgements ------------------------------------------------------
+    def _ack(self, topic: str, payload: Payload, now: float) -> list[Effect]:
+        try:
+            ack = AckMessage.model_validate(_json_obj(payload))
+        except ValidationError as exc:
+            detail = _first_error(exc)
+        except (ValueError, TypeError, RecursionError):
+            detail = "payload is not JSON"
+        else:
+            result = self.book.acknowledge(now, ack.alarm_id, ack.by, ack.role)
+            if isinstance(result, str):
+                self.input_rejections[result] += 1
+                return [RejectedInput(now, topic, None, result, f"alarm {ack.alarm_id[:80]!r}")]
+            effects: list[Effect] = list(result)
+            bed = self.beds.get(result[0].bed) if result else None
+            if bed is not None:  # an acknowledged technical alarm stops suppressing
+                effects += self._evaluate(bed, now)
+            return effects
+        self.input_rejections[Outcome.BAD_ACK] += 1
+        return [RejectedInput(now, topic, None, Outcome.BAD_ACK, detail)]
 
     def _bad_context(self, topic: str, bed: str, now: float, detail: str) -> list[Effect]:
         self.context_rejections[bed] += 1
         return [RejectedInput(now, topic, None, Outcome.BAD_CONTEXT, detail[:200])]
 
-    def _bind(self, bed_id: str, ctx: BedContext) -> None:
+    def _bind(self, bed_id: str, ctx: BedContext, now: float) -> None:
         bed = self.beds.get(bed_id)
         if bed is None:
-            bed = self.beds[bed_id] = Bed(bed_id, ctx, MinuteSeries())
+            bed = self.beds[bed_id] = BedState(bed_id, ctx, MinuteSeries(), bound_at=now)
         bed.context = ctx
+        bed.notices.clear()  # a new context may supply what was missing
         wanted = set(ctx.device_ids)
         for dev_id, b in list(self._bound.items()):
             if b == bed_id and dev_id not in wanted:
@@ -205,6 +306,7 @@ class Engine:
         series = self.beds[bed_id].series
         prof = dev.decoder.profile
         dev.bed = bed_id
+        dev.last_seen = None
         dev.cleaner = (
             IntervalCleaner(prof, series)
             if prof.volume.semantics is Semantics.INTERVAL
@@ -218,13 +320,86 @@ class Engine:
         dev.latest_t = None
 
     # --- time ----------------------------------------------------------------
+    def _devices_of(self, bed: BedState) -> tuple[DeviceSeen, ...]:
+        out = []
+        for dev_id in bed.context.device_ids:
+            dev = self.devices.get(dev_id)
+            if dev is not None and dev.bed == bed.bed_id and dev.last_seen is not None:
+                seen, period = dev.last_seen, dev.decoder.profile.timing.period_s
+            else:  # bound but never heard from: silent since the binding
+                seen = bed.bound_at
+                period = dev.decoder.profile.timing.period_s if dev else 60
+            out.append(DeviceSeen(dev_id, seen, period))
+        return tuple(out)
+
+    def _after_reading(self, bed: BedState, now: float) -> list[Effect]:
+        """Rules on windows change only when the latest minute moves on."""
+        latest = bed.series.latest_minute()
+        if latest is None or latest == bed.last_eval_minute:
+            return []
+        effects = self._advice(bed, latest, now)
+        return effects + self._evaluate(bed, now)
+
+    def _evaluate(self, bed: BedState, now: float) -> list[Effect]:
+        if not self.rules:
+            return []
+        bed.last_eval_minute = bed.series.latest_minute()
+        events, due = self.evaluator.run(bed, now, self._devices_of(bed))
+        if due is None:
+            self._due.pop(bed.bed_id, None)
+        elif self._due.get(bed.bed_id) != due:
+            self._due[bed.bed_id] = due
+            heapq.heappush(self._heap, (due, bed.bed_id))
+        return list(events)
+
+    def _advice(self, bed: BedState, latest: int, now: float) -> list[Effect]:
+        """At each completed clock hour while a high-output alarm is open."""
+        prev = bed.last_eval_minute
+        if prev is None or latest // 60 == prev // 60:
+            return []
+        open_ids = tuple(
+            a.alarm_id for a in self.book.active(bed.bed_id)
+            if a.rule in self._high_output and a.state in OPEN
+        )  # fmt: skip
+        if not open_ids:
+            return []
+        hour_start = (latest // 60 - 1) * 60
+        vol, _ = bed.series.minutes(hour_start, hour_start + 60)
+        na = bed.labs.get("serum_na_mmol_l")
+        una = bed.labs.get("urine_na_mmol_l")
+        uk = bed.labs.get("urine_k_mmol_l")
+        ctx = bed.context
+        advice = replacement_advice(
+            hour_start * 60.0, float(vol.sum()), ctx.replacement,
+            serum_na=na[-1][1] if na else None,
+            urine_na=una[-1][1] if una else None,
+            urine_k=uk[-1][1] if uk else None,
+            weight_kg=ctx.weight_kg, tbw_fraction=ctx.tbw_fraction,
+        )  # fmt: skip
+        return [AdviceIssued(now, bed.bed_id, ctx.ward, advice, open_ids)]
+
     def next_wakeup(self) -> float | None:
-        """Epoch seconds of the next time-driven change, or None (none yet)."""
-        return None
+        """Epoch seconds of the next time-driven change, or None."""
+        heap = self._heap
+        while heap and self._due.get(heap[0][1]) != heap[0][0]:
+            heapq.heappop(heap)  # stale
+        candidates = [t for t in (heap[0][0] if heap else None, self.book.next_due()) if t]
+        return min(candidates) if candidates else None
 
     def tick(self, now: datetime | float) -> list[Effect]:
-        as_epoch(now)
-        return []
+        """Carry out everything due at or before `now`."""
+        t = as_epoch(now)
+        effects: list[Effect] = list(self.book.tick(t))
+        due_beds = set()
+        heap = self._heap
+        while heap and heap[0][0] <= t:
+            due, bed_id = heapq.heappop(heap)
+            if self._due.get(bed_id) == due:
+                del self._due[bed_id]
+                due_beds.add(bed_id)
+        for bed_id in sorted(due_beds | {e.bed for e in effects if isinstance(e, AlarmEvent)}):
+            effects += self._evaluate(self.beds[bed_id], t)
+        return effects
 
     # --- queries -------------------------------------------------------------
     def quality(self) -> dict[str, dict[str, object]]:

@@ -40,6 +40,9 @@ class Outcome(StrEnum):
     UNBOUND = "unbound"
     UNKNOWN_TOPIC = "unknown_topic"
     BAD_CONTEXT = "bad_context"
+    BAD_CLINICAL_INPUT = "bad_clinical_input"
+    BAD_ACK = "bad_ack"
+    UNKNOWN_BED = "unknown_bed"
 
 
 # Outcomes after which the reading's volume is (or will be) in the series.

@@ -48,7 +48,7 @@ def parse_epoch(value: object, scale: float) -> float:
         raise TimeError(f"not an epoch number: {value!r}")
     try:
         seconds = float(value) / scale
-    except ValueError as exc:
+    except (ValueError, OverflowError) as exc:
         raise TimeError(f"not an epoch number: {value!r}") from exc
     if not (0.0 < seconds < 32503680000.0):  # year 1970..3000
         raise TimeError(f"epoch out of range: {value!r}")

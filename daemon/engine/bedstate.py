@@ -1,0 +1,70 @@
+"""What the engine knows of one bed besides its minute series: context and
+clinical inputs, kept short enough for the longest rule window."""
+
+from __future__ import annotations
+
+import bisect
+from dataclasses import dataclass, field
+
+from .context import BedContext
+from .series import MinuteSeries
+
+KEEP_S = 3 * 86400.0  # clinical inputs older than this are forgotten
+
+
+@dataclass(frozen=True, slots=True)
+class Vitals:
+    time: float
+    heart_rate: float | None
+    systolic: float | None
+    diastolic: float | None
+    mean: float | None
+
+
+@dataclass(slots=True)
+class BedState:
+    bed_id: str
+    context: BedContext
+    series: MinuteSeries
+    bound_at: float
+    intake_times: list[float] = field(default_factory=list)  # sorted
+    intake_ml: list[float] = field(default_factory=list)
+    vitals: list[Vitals] = field(default_factory=list)  # sorted by time
+    labs: dict[str, list[tuple[float, float]]] = field(default_factory=dict)  # analyte -> (t, v)
+    last_labs_time: float | None = None
+    last_eval_minute: int | None = None
+    notices: set[str] = field(default_factory=set)
+
+    def add_intake(self, t: float, ml: float) -> None:
+        i = bisect.bisect_right(self.intake_times, t)
+        self.intake_times.insert(i, t)
+        self.intake_ml.insert(i, ml)
+        if self.intake_times[0] < t - KEEP_S:
+            k = bisect.bisect_left(self.intake_times, t - KEEP_S)
+            del self.intake_times[:k], self.intake_ml[:k]
+
+    def intake_between(self, t0: float, t1: float) -> float:
+        """Fluid documented with a time in [t0, t1)."""
+        lo = bisect.bisect_left(self.intake_times, t0)
+        hi = bisect.bisect_left(self.intake_times, t1)
+        return float(sum(self.intake_ml[lo:hi]))
+
+    def add_vitals(self, v: Vitals) -> None:
+        times = [x.time for x in self.vitals]
+        self.vitals.insert(bisect.bisect_right(times, v.time), v)
+        if len(self.vitals) > 512:
+            del self.vitals[:256]
+
+    def latest_vitals(self, now: float, max_age_s: float) -> Vitals | None:
+        for v in reversed(self.vitals):
+            if v.time <= now:
+                return v if now - v.time <= max_age_s else None
+        return None
+
+    def add_lab(self, analyte: str, t: float, value: float) -> None:
+        series = self.labs.setdefault(analyte, [])
+        bisect.insort(series, (t, value))
+        while series and series[0][0] < t - KEEP_S:
+            series.pop(0)
+        if self.last_labs_time is None or t > self.last_labs_time:
+            self.last_labs_time = t

@@ -1,0 +1,357 @@
+"""The fixed set of checks a rule file can name, evaluated on one bed.
+
+Each check returns a Finding: whether the alarm condition holds, a one-line
+summary for the page, the evidence behind it, and when (without new input)
+its answer could next change, so the engine can declare a wake-up.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from . import rules as r
+from .alarms import Priority
+from .bedstate import BedState
+from .haemo import mean_arterial_pressure, shock_index
+from .series import MEASURED
+from .timefmt import iso
+from .windows import Window, hours_ending, measure, window_bounds
+
+
+@dataclass(frozen=True, slots=True)
+class DeviceSeen:
+    device_id: str
+    last_seen: float  # receive time of its last message, or when it was bound
+    period_s: int
+
+
+@dataclass(frozen=True, slots=True)
+class BedView:
+    """Everything a check may read, at engine time `now`."""
+
+    bed: BedState
+    now: float
+    devices: tuple[DeviceSeen, ...]
+    gates: dict[str, float]  # rule id -> activation time of its open alarm on this bed
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    condition: bool
+    summary: str
+    evidence: dict[str, Any] = field(default_factory=dict)
+    priority: Priority | None = None  # overrides the rule's priority for this episode
+    due: float | None = None  # time at which the answer may change without new input
+    skipped: str | None = None  # why the check could not run (e.g. no weight)
+
+
+NOT_YET = Finding(False, "no data yet")
+
+
+def _ml(x: float) -> str:
+    return f"{x:.0f} mL"
+
+
+def _end(v: BedView) -> int | None:
+    return v.bed.series.latest_minute()
+
+
+def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
+    end = _end(v)
+    if end is None:
+        return NOT_YET
+    wins = hours_ending(v.bed.series, end, c.consecutive_hours)
+    above = [
+        w.volume_ml > c.threshold_ml_h if c.comparator == "gt" else w.volume_ml >= c.threshold_ml_h
+        for w in wins
+    ]
+    sign = ">" if c.comparator == "gt" else ">="
+    vols = ", ".join(_ml(w.volume_ml) for w in wins)
+    return Finding(
+        all(above),
+        f"urine output {vols} in the last {len(wins)} consecutive hours "
+        f"(alarm when each is {sign} {c.threshold_ml_h:g} mL/h)",
+        {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
+         "comparator": c.comparator},
+    )  # fmt: skip
+
+
+def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
+    end = _end(v)
+    first = v.bed.series.first_minute
+    if end is None or first is None:
+        return NOT_YET
+    length = c.window_h * 60
+    if c.since_start_if_shorter:
+        length = min(length, end - first + 1)
+    w = measure(v.bed.series, end, length)
+    return Finding(
+        w.volume_ml > c.threshold_ml,
+        f"{_ml(w.volume_ml)} in the last {length / 60:.1f} h (alarm above {_ml(c.threshold_ml)})",
+        {"window": w.to_json(), "threshold_ml": c.threshold_ml},
+    )
+
+
+def _weight(v: BedView) -> float | None:
+    return v.bed.context.weight_kg
+
+
+def _weight_evidence(v: BedView) -> dict[str, Any]:
+    return {"weight_kg": v.bed.context.weight_kg, "weight_basis": v.bed.context.weight_basis}
+
+
+NO_WEIGHT = Finding(False, "no body weight in the bed context", skipped="no_weight")
+
+
+def rate_below(c: r.RateBelow, v: BedView) -> Finding:
+    end, kg = _end(v), _weight(v)
+    if kg is None:
+        return NO_WEIGHT
+    if end is None:
+        return NOT_YET
+    ev = _weight_evidence(v) | {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
+    if c.mode == "mean":
+        w = measure(v.bed.series, end, c.window_h * 60)
+        rate = w.rate_ml_kg_h(kg)
+        ev |= {"window": w.to_json(), "rate_ml_kg_h": round(rate, 3)}
+        if not w.covered:
+            return Finding(False, f"window only {w.coverage:.0%} measured", ev)
+        return Finding(
+            rate < c.threshold_ml_kg_h,
+            f"{rate:.2f} mL/kg/h over {c.window_h} h ({_ml(w.volume_ml)} at {kg:g} kg; "
+            f"alarm below {c.threshold_ml_kg_h:g})",
+            ev,
+        )
+    wins = hours_ending(v.bed.series, end, c.window_h)
+    rates = [w.rate_ml_kg_h(kg) for w in wins]
+    ev |= {"windows": [w.to_json() for w in wins], "rates_ml_kg_h": [round(x, 3) for x in rates]}
+    if not all(w.covered for w in wins):
+        return Finding(False, "not every hour in the window is measured", ev)
+    return Finding(
+        all(x < c.threshold_ml_kg_h for x in rates),
+        f"every hour of the last {c.window_h} h below {c.threshold_ml_kg_h:g} mL/kg/h "
+        f"(highest {max(rates):.2f})",
+        ev,
+    )
+
+
+def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
+    end = _end(v)
+    if end is None:
+        return NOT_YET
+    w = measure(v.bed.series, end, c.window_h * 60)
+    ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml}
+    if not w.covered:
+        return Finding(False, f"window only {w.coverage:.0%} measured", ev)
+    return Finding(
+        w.volume_ml < c.threshold_ml,
+        f"{_ml(w.volume_ml)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
+        ev,
+    )
+
+
+def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
+    end, kg = _end(v), _weight(v)
+    if kg is None:
+        return NO_WEIGHT
+    if end is None:
+        return NOT_YET
+    # length of the trailing run of measured minutes holding at most max_ml in all
+    look = 1440
+    lo, hi = window_bounds(end, look)
+    vol, st = v.bed.series.minutes(lo, hi)
+    rev_vol, rev_meas = vol[::-1], st[::-1] == MEASURED
+    unmeasured = np.flatnonzero(~rev_meas)
+    limit = int(unmeasured[0]) if unmeasured.size else look
+    run = int(np.searchsorted(np.cumsum(rev_vol[:limit]), c.max_ml, side="right"))
+    stop_end = end - run  # last minute before the stop
+    before = measure(v.bed.series, stop_end, c.before_min)
+    rate = before.rate_ml_kg_h(kg)
+    ev = _weight_evidence(v) | {
+        "stopped_min": run, "stopped_since": iso((stop_end + 1) * 60.0),
+        "before": before.to_json(), "before_rate_ml_kg_h": round(rate, 3),
+        "threshold_stopped_min": c.stopped_min, "max_ml": c.max_ml,
+    }  # fmt: skip
+    cond = run >= c.stopped_min and before.covered and rate >= c.before_min_ml_kg_h
+    return Finding(
+        cond,
+        f"no urine flow for {run} min after {rate:.2f} mL/kg/h before: check the catheter "
+        "(kinked, clamped or blocked?)",
+        ev,
+    )
+
+
+def meter_silent(c: r.MeterSilent, v: BedView) -> Finding:
+    silent: list[dict[str, Any]] = []
+    due: float | None = None
+    for d in v.devices:
+        limit = max(c.min_silence_s, c.periods * d.period_s)
+        if v.now - d.last_seen >= limit:
+            silent.append({"device_id": d.device_id, "last_seen": iso(d.last_seen),
+                           "silent_s": round(v.now - d.last_seen), "limit_s": limit})  # fmt: skip
+        else:
+            t = d.last_seen + limit
+            due = t if due is None else min(due, t)
+    names = ", ".join(s["device_id"] for s in silent)
+    return Finding(
+        bool(silent),
+        f"no message from meter {names}" if silent else "all meters reporting",
+        {"silent": silent},
+        due=due,
+    )
+
+
+def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
+    last = v.bed.series.latest_time
+    since = last if last is not None else v.bed.bound_at
+    gap = v.now - since
+    return Finding(
+        gap >= c.max_gap_s,
+        f"no usable reading for {gap / 3600:.1f} h (limit {c.max_gap_s / 3600:g} h)",
+        {"last_accepted": iso(since), "gap_s": round(gap), "max_gap_s": c.max_gap_s},
+        due=None if gap >= c.max_gap_s else since + c.max_gap_s,
+    )
+
+
+def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
+    end = _end(v)
+    if end is None:
+        return NOT_YET
+    w = measure(v.bed.series, end, c.window_h * 60)
+    lo, hi = window_bounds(end, c.window_h * 60)
+    intake = v.bed.intake_between(lo * 60.0, hi * 60.0)
+    ev = {"window": w.to_json(), "intake_ml": round(intake, 1), "ratio": c.ratio}
+    if w.volume_ml < c.min_output_ml:
+        return Finding(False, "output too small to judge replacement", ev)
+    share = intake / w.volume_ml
+    ev["intake_share"] = round(share, 3)
+    cond = share < c.ratio if c.direction == "below" else share > c.ratio
+    word = "below" if c.direction == "below" else "above"
+    return Finding(
+        cond,
+        f"documented intake {_ml(intake)} is {share:.0%} of output {_ml(w.volume_ml)} "
+        f"over {c.window_h} h (alarm {word} {c.ratio:.0%})",
+        ev,
+    )
+
+
+def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
+    end = _end(v)
+    if end is None:
+        return NOT_YET
+    hour = measure(v.bed.series, end, 60)
+    signs: list[str] = []
+    ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}
+    vit = v.bed.latest_vitals(v.now, c.vitals_max_age_s)
+    due = None
+    if vit is not None:
+        ev["vitals_time"] = iso(vit.time)
+        due = vit.time + c.vitals_max_age_s
+        if vit.heart_rate is not None and vit.systolic is not None:
+            si = shock_index(vit.heart_rate, vit.systolic)
+            ev["shock_index"] = round(si, 2)
+            if si >= c.shock_index_at_least:
+                signs.append(f"shock index {si:.2f}")
+        mean = vit.mean
+        if mean is None and vit.systolic is not None and vit.diastolic is not None:
+            mean = mean_arterial_pressure(vit.systolic, vit.diastolic)
+        if mean is not None:
+            ev["map_mmhg"] = round(mean, 1)
+            if mean < c.map_below_mmhg:
+                signs.append(f"MAP {mean:.0f} mmHg")
+        if vit.heart_rate is not None and vit.heart_rate > c.heart_rate_above:
+            signs.append(f"heart rate {vit.heart_rate:.0f}/min")
+    balance_low = False
+    kg = _weight(v)
+    if kg is not None and v.bed.intake_times:  # balance only when intake is documented
+        w = measure(v.bed.series, end, c.balance_window_h * 60)
+        lo, hi = window_bounds(end, c.balance_window_h * 60)
+        net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
+        ev |= {"net_balance_ml": round(net, 1), "balance_ml_kg": round(net / kg, 2)}
+        balance_low = net / kg < c.balance_below_ml_kg
+    high_output = hour.volume_ml > c.hourly_above_ml
+    cond = high_output and (bool(signs) or balance_low)
+    what = ", ".join(signs + (["negative fluid balance"] if balance_low else [])) or "no sign"
+    return Finding(
+        cond,
+        f"{_ml(hour.volume_ml)} in the last hour with {what}",
+        ev | {"signs": signs, "balance_low": balance_low},
+        priority=c.priority_with_sign if signs else None,
+        due=due,
+    )
+
+
+def _lab_series(v: BedView, analyte: str) -> list[tuple[float, float]]:
+    return [(t, x) for t, x in v.bed.labs.get(analyte, []) if t <= v.now]
+
+
+def lab_above(c: r.LabAbove, v: BedView) -> Finding:
+    series = _lab_series(v, c.analyte)
+    if not series:
+        return Finding(False, "no result")
+    t, x = series[-1]
+    fresh = v.now - t < c.max_age_s
+    return Finding(
+        fresh and x > c.threshold,
+        f"{c.analyte.split('_')[1].capitalize()} {x:g} mmol/L at {iso(t)} "
+        f"(alarm above {c.threshold:g})",
+        {"analyte": c.analyte, "value": x, "time": iso(t), "threshold": c.threshold},
+        due=t + c.max_age_s if fresh else None,
+    )
+
+
+def lab_rise(c: r.LabRise, v: BedView) -> Finding:
+    series = _lab_series(v, c.analyte)
+    if len(series) < 2:
+        return Finding(False, "fewer than two results")
+    t, x = series[-1]
+    prior = [(tt, xx) for tt, xx in series[:-1] if tt >= t - c.window_h * 3600]
+    if not prior:
+        return Finding(False, "no earlier result in the window")
+    t0, x0 = min(prior, key=lambda p: p[1])
+    rise = x - x0
+    return Finding(
+        rise > c.rise_above,
+        f"serum sodium rose {rise:.0f} mmol/L ({x0:g} -> {x:g}) in {(t - t0) / 3600:.1f} h "
+        f"(alarm above {c.rise_above:g} per {c.window_h} h)",
+        {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "rise": rise},
+    )
+
+
+def reminder(c: r.Reminder, v: BedView) -> Finding:
+    gate_start = min(v.gates.values())
+    since = max(gate_start, v.bed.last_labs_time or gate_start)
+    due = since + c.every_s
+    return Finding(
+        v.now >= due,
+        f"{c.task}: last done {iso(since)}" if v.bed.last_labs_time else f"{c.task}: not yet done",
+        {"since": iso(since), "every_s": c.every_s},
+        due=None if v.now >= due else due,
+    )
+
+
+CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
+    r.HourlyAbove: hourly_above,
+    r.VolumeAbove: volume_above,
+    r.RateBelow: rate_below,
+    r.VolumeBelow: volume_below,
+    r.FlowStopped: flow_stopped,
+    r.MeterSilent: meter_silent,
+    r.NoUsableData: no_usable_data,
+    r.ReplacementRatio: replacement_ratio,
+    r.Hypovolemia: hypovolemia,
+    r.LabAbove: lab_above,
+    r.LabRise: lab_rise,
+    r.Reminder: reminder,
+}
+
+
+def evaluate(rule: r.RuleDef, view: BedView) -> Finding:
+    return CHECKS[type(rule.check)](rule.check, view)
+
+
+__all__ = ["BedView", "DeviceSeen", "Finding", "Window", "evaluate"]

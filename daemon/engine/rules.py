@@ -1,0 +1,211 @@
+"""Rule file schema: each default rule of DESIGN §4 is one declarative TOML file.
+
+A rule names one of a fixed set of checks and gives its parameters; the checks
+themselves live in `checks.py`. Nothing in a rule file is evaluated as code.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from .alarms import Kind, Priority, RuleSpec
+
+RULE_ID = r"^[a-z0-9][a-z0-9-]{1,62}$"
+
+
+class _Check(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class HourlyAbove(_Check):
+    """Rolling 60-min output above a threshold in N consecutive windows."""
+
+    type: Literal["hourly_above"]
+    threshold_ml_h: Annotated[float, Field(gt=0)]
+    consecutive_hours: Annotated[int, Field(ge=1, le=12)] = 2
+    # The published definition says "more than"; some references use "at least".
+    comparator: Literal["gt", "ge"] = "gt"
+
+
+class VolumeAbove(_Check):
+    """Volume over a window above a threshold (high output: any coverage)."""
+
+    type: Literal["volume_above"]
+    window_h: Annotated[int, Field(ge=1, le=72)]
+    threshold_ml: Annotated[float, Field(gt=0)]
+    since_start_if_shorter: bool = True
+
+
+class RateBelow(_Check):
+    """Weight-based output below a threshold over a window (low output: covered only)."""
+
+    type: Literal["rate_below"]
+    window_h: Annotated[int, Field(ge=1, le=72)]
+    threshold_ml_kg_h: Annotated[float, Field(gt=0, le=5)]
+    # KDIGO does not say which; studies use both and they differ a lot.
+    mode: Literal["mean", "every_hour"] = "mean"
+
+
+class VolumeBelow(_Check):
+    type: Literal["volume_below"]
+    window_h: Annotated[int, Field(ge=1, le=72)]
+    threshold_ml: Annotated[float, Field(ge=0)]
+
+
+class FlowStopped(_Check):
+    """No flow for a while after steady flow: suspect the catheter first."""
+
+    type: Literal["flow_stopped"]
+    stopped_min: Annotated[int, Field(ge=10, le=360)] = 60
+    # at most this much counts as no flow (meter resolution and smoothing)
+    max_ml: Annotated[float, Field(ge=0, le=20)] = 2.0
+    before_min: Annotated[int, Field(ge=30, le=720)] = 120
+    before_min_ml_kg_h: Annotated[float, Field(gt=0, le=5)] = 0.5
+
+
+class MeterSilent(_Check):
+    """A bound meter sent nothing for max(min_silence_s, periods × its period)."""
+
+    type: Literal["meter_silent"]
+    min_silence_s: Annotated[int, Field(ge=60, le=86400)] = 300
+    periods: Annotated[int, Field(ge=1, le=100)] = 5
+
+
+class NoUsableData(_Check):
+    """No accepted reading on the bed for longer than a limit."""
+
+    type: Literal["no_usable_data"]
+    max_gap_s: Annotated[int, Field(ge=600, le=86400)] = 10800
+
+
+class ReplacementRatio(_Check):
+    """While a high-output alarm is on: documented intake vs output over a window."""
+
+    type: Literal["replacement_ratio"]
+    window_h: Annotated[int, Field(ge=1, le=24)]
+    direction: Literal["below", "above"]
+    ratio: Annotated[float, Field(gt=0, le=3)]
+    min_output_ml: Annotated[float, Field(ge=0)] = 50.0
+
+
+class Hypovolemia(_Check):
+    type: Literal["hypovolemia"]
+    hourly_above_ml: Annotated[float, Field(gt=0)] = 200.0
+    shock_index_at_least: Annotated[float, Field(gt=0)] = 1.0
+    map_below_mmhg: Annotated[float, Field(gt=0)] = 65.0
+    heart_rate_above: Annotated[float, Field(gt=0)] = 100.0
+    balance_window_h: Annotated[int, Field(ge=1, le=24)] = 6
+    balance_below_ml_kg: Annotated[float, Field(lt=0)] = -15.0
+    vitals_max_age_s: Annotated[int, Field(ge=60, le=86400)] = 3600
+    # priority with a haemodynamic sign; `priority` of the rule applies without one
+    priority_with_sign: Priority = Priority.HIGH
+
+
+class LabAbove(_Check):
+    type: Literal["lab_above"]
+    analyte: Literal["serum_na_mmol_l", "serum_k_mmol_l"]
+    threshold: float
+    max_age_s: Annotated[int, Field(ge=600, le=7 * 86400)] = 86400
+
+
+class LabRise(_Check):
+    type: Literal["lab_rise"]
+    analyte: Literal["serum_na_mmol_l"]
+    rise_above: Annotated[float, Field(gt=0)]
+    window_h: Annotated[int, Field(ge=1, le=72)] = 24
+
+
+class Reminder(_Check):
+    """While a high-output alarm is on: a task due every interval."""
+
+    type: Literal["reminder"]
+    every_s: Annotated[int, Field(ge=600, le=86400)]
+    task: Annotated[str, Field(min_length=1, max_length=200)]
+    done_by: Literal["labs"] = "labs"
+
+
+Check = Annotated[
+    HourlyAbove
+    | VolumeAbove
+    | RateBelow
+    | VolumeBelow
+    | FlowStopped
+    | MeterSilent
+    | NoUsableData
+    | ReplacementRatio
+    | Hypovolemia
+    | LabAbove
+    | LabRise
+    | Reminder,
+    Field(discriminator="type"),
+]
+
+WEIGHT_CHECKS = (RateBelow, FlowStopped)
+LOW_OUTPUT_CHECKS = (RateBelow, VolumeBelow)
+
+
+class RuleDef(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    schema_version: Literal[1] = Field(1, alias="schema")
+    id: Annotated[str, Field(pattern=RULE_ID)]
+    title: Annotated[str, Field(min_length=3, max_length=120)]
+    kind: Kind
+    priority: Priority
+    rationale: Annotated[str, Field(min_length=10)]  # IEC 60601-1-8: urgency × potential harm
+    source: Annotated[str, Field(min_length=3)]
+    latching: bool
+    condition_delay_s: Annotated[int, Field(ge=0, le=86400)] = 0
+    clear_hold_s: Annotated[int, Field(ge=0, le=86400)] = 0
+    enabled: bool = True
+    # rules that only run while one of these rules has an alarm on the bed
+    while_active: list[str] = Field(default_factory=list)
+    check: Check
+
+    @model_validator(mode="after")
+    def _consistent(self) -> RuleDef:
+        if isinstance(self.check, ReplacementRatio | Reminder) and not self.while_active:
+            raise ValueError(f"check '{self.check.type}' needs 'while_active'")
+        return self
+
+    @property
+    def needs_weight(self) -> bool:
+        return isinstance(self.check, WEIGHT_CHECKS)
+
+    @property
+    def low_output(self) -> bool:
+        return isinstance(self.check, LOW_OUTPUT_CHECKS)
+
+    def spec(self) -> RuleSpec:
+        return RuleSpec(
+            rule_id=self.id,
+            title=self.title,
+            kind=self.kind,
+            priority=self.priority,
+            latching=self.latching,
+            condition_delay_s=self.condition_delay_s,
+            clear_hold_s=self.clear_hold_s,
+            low_output=self.low_output,
+        )
+
+
+DEFAULT_RULE_IDS = (
+    "pod-hourly",
+    "pod-24h",
+    "oliguria-kdigo-1",
+    "oliguria-kdigo-2",
+    "oliguria-kdigo-3",
+    "anuria-12h",
+    "flow-stopped",
+    "meter-offline",
+    "data-gap",
+    "replacement-behind",
+    "replacement-excess",
+    "hypovolemia-risk",
+    "sodium-high",
+    "sodium-rise",
+    "labs-due",
+    "catheter-clamp-review",
+)

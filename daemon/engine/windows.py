@@ -1,0 +1,71 @@
+"""Window metrics over a bed's minute series (DESIGN §3).
+
+Every window is half-open, (end − length, end], in whole minutes, ending at the
+bed's latest accepted minute. `window_bounds` is the one definition; nothing
+else derives window edges.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from .series import ESTIMATED, MEASURED, MinuteSeries
+
+COVERED_FRACTION = 0.9  # a window is covered when >= 90% of its minutes are measured
+
+
+def window_bounds(end_minute: int, length_min: int) -> tuple[int, int]:
+    """Minutes (end − length, end] as the index range [lo, hi)."""
+    return end_minute - length_min + 1, end_minute + 1
+
+
+@dataclass(frozen=True, slots=True)
+class Window:
+    end_minute: int  # last minute inside the window
+    length_min: int
+    volume_ml: float
+    measured_min: int
+    estimated_min: int
+
+    @property
+    def start_minute(self) -> int:
+        return window_bounds(self.end_minute, self.length_min)[0]
+
+    @property
+    def coverage(self) -> float:
+        """Fraction of the window's minutes that are measured."""
+        return self.measured_min / self.length_min
+
+    @property
+    def covered(self) -> bool:
+        return self.coverage >= COVERED_FRACTION
+
+    def rate_ml_kg_h(self, weight_kg: float) -> float:
+        return self.volume_ml / weight_kg / (self.length_min / 60.0)
+
+    def to_json(self) -> dict[str, object]:
+        return {
+            "start_minute": self.start_minute,
+            "end_minute": self.end_minute,
+            "length_min": self.length_min,
+            "volume_ml": round(self.volume_ml, 1),
+            "coverage": round(self.coverage, 3),
+            "estimated_fraction": round(self.estimated_min / self.length_min, 3),
+        }
+
+
+def measure(series: MinuteSeries, end_minute: int, length_min: int) -> Window:
+    lo, hi = window_bounds(end_minute, length_min)
+    vol, state = series.minutes(lo, hi)
+    return Window(
+        end_minute,
+        length_min,
+        float(vol.sum()),
+        int((state == MEASURED).sum()),
+        int((state == ESTIMATED).sum()),
+    )
+
+
+def hours_ending(series: MinuteSeries, end_minute: int, hours: int) -> list[Window]:
+    """The last `hours` consecutive 60-minute windows, oldest first."""
+    return [measure(series, end_minute - 60 * k, 60) for k in range(hours - 1, -1, -1)]
