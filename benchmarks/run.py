@@ -1,0 +1,24 @@
+"""`make bench`: every benchmark, one after the other (`python -m benchmarks.run`).
+
+Benchmarks report throughput beside a baseline measured in the same run; they
+assert nothing and are never part of `make test`.
+"""
+
+from __future__ import annotations
+
+import platform
+import sys
+from collections.abc import Sequence
+
+from benchmarks import bench_intake
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = list(sys.argv[1:] if argv is None else argv)
+    print(f"Python {platform.python_version()} on {platform.machine()}, {platform.system()}")
+    print()
+    return bench_intake.main(args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
