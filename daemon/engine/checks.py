@@ -8,16 +8,13 @@ its answer could next change, so the engine can declare a wake-up.
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
-
-import numpy as np
 
 from . import rules as r
 from .alarms import Priority
 from .bedstate import BedState
 from .haemo import mean_arterial_pressure, shock_index
-from .series import MEASURED
 from .timefmt import iso
 from .windows import Window, hours_ending, measure, window_bounds
 
@@ -29,7 +26,7 @@ class DeviceSeen:
     period_s: int
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)
 class BedView:
     """Everything a check may read, at engine time `now`."""
 
@@ -39,17 +36,27 @@ class BedView:
     gates: dict[str, float]  # rule id -> activation time of its open alarm on this bed
 
 
-@dataclass(frozen=True, slots=True)
+Explain = Callable[[], tuple[str, dict[str, Any]]]
+
+
+@dataclass(slots=True)
 class Finding:
+    """`explain` builds the summary and evidence only when an alarm needs them:
+    most evaluations change nothing, and formatting costs more than checking."""
+
     condition: bool
-    summary: str
-    evidence: dict[str, Any] = field(default_factory=dict)
+    explain: Explain
     priority: Priority | None = None  # overrides the rule's priority for this episode
     due: float | None = None  # time at which the answer may change without new input
     skipped: str | None = None  # why the check could not run (e.g. no weight)
 
 
-NOT_YET = Finding(False, "no data yet")
+def _say(summary: str, evidence: dict[str, Any] | None = None) -> Explain:
+    facts = evidence or {}
+    return lambda: (summary, facts)
+
+
+NOT_YET = Finding(False, _say("no data yet"))
 
 
 def _ml(x: float) -> str:
@@ -65,19 +72,20 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
     if end is None:
         return NOT_YET
     wins = hours_ending(v.bed.series, end, c.consecutive_hours)
-    above = [
-        w.volume_ml > c.threshold_ml_h if c.comparator == "gt" else w.volume_ml >= c.threshold_ml_h
-        for w in wins
-    ]
-    sign = ">" if c.comparator == "gt" else ">="
-    vols = ", ".join(_ml(w.volume_ml) for w in wins)
-    return Finding(
-        all(above),
-        f"urine output {vols} in the last {len(wins)} consecutive hours "
-        f"(alarm when each is {sign} {c.threshold_ml_h:g} mL/h)",
-        {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
-         "comparator": c.comparator},
-    )  # fmt: skip
+    gt = c.comparator == "gt"
+    cond = all(w.volume_ml > c.threshold_ml_h if gt else w.volume_ml >= c.threshold_ml_h
+               for w in wins)  # fmt: skip
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        vols = ", ".join(_ml(w.volume_ml) for w in wins)
+        return (
+            f"urine output {vols} in the last {len(wins)} consecutive hours "
+            f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL/h)",
+            {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
+             "comparator": c.comparator},
+        )  # fmt: skip
+
+    return Finding(cond, explain)
 
 
 def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
@@ -91,8 +99,11 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     w = measure(v.bed.series, end, length)
     return Finding(
         w.volume_ml > c.threshold_ml,
-        f"{_ml(w.volume_ml)} in the last {length / 60:.1f} h (alarm above {_ml(c.threshold_ml)})",
-        {"window": w.to_json(), "threshold_ml": c.threshold_ml},
+        lambda: (
+            f"{_ml(w.volume_ml)} in the last {length / 60:.1f} h "
+            f"(alarm above {_ml(c.threshold_ml)})",
+            {"window": w.to_json(), "threshold_ml": c.threshold_ml},
+        ),
     )
 
 
@@ -104,7 +115,7 @@ def _weight_evidence(v: BedView) -> dict[str, Any]:
     return {"weight_kg": v.bed.context.weight_kg, "weight_basis": v.bed.context.weight_basis}
 
 
-NO_WEIGHT = Finding(False, "no body weight in the bed context", skipped="no_weight")
+NO_WEIGHT = Finding(False, _say("no body weight in the bed context"), skipped="no_weight")
 
 
 def rate_below(c: r.RateBelow, v: BedView) -> Finding:
@@ -113,30 +124,41 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
         return NO_WEIGHT
     if end is None:
         return NOT_YET
-    ev = _weight_evidence(v) | {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
+    base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
     if c.mode == "mean":
         w = measure(v.bed.series, end, c.window_h * 60)
         rate = w.rate_ml_kg_h(kg)
-        ev |= {"window": w.to_json(), "rate_ml_kg_h": round(rate, 3)}
-        if not w.covered:
-            return Finding(False, f"window only {w.coverage:.0%} measured", ev)
-        return Finding(
-            rate < c.threshold_ml_kg_h,
-            f"{rate:.2f} mL/kg/h over {c.window_h} h ({_ml(w.volume_ml)} at {kg:g} kg; "
-            f"alarm below {c.threshold_ml_kg_h:g})",
-            ev,
-        )
+
+        def explain_mean() -> tuple[str, dict[str, Any]]:
+            ev = (
+                _weight_evidence(v) | base | {"window": w.to_json(), "rate_ml_kg_h": round(rate, 3)}
+            )
+            if not w.covered:
+                return f"window only {w.coverage:.0%} measured", ev
+            return (
+                f"{rate:.2f} mL/kg/h over {c.window_h} h ({_ml(w.volume_ml)} at {kg:g} kg; "
+                f"alarm below {c.threshold_ml_kg_h:g})",
+                ev,
+            )
+
+        return Finding(w.covered and rate < c.threshold_ml_kg_h, explain_mean)
     wins = hours_ending(v.bed.series, end, c.window_h)
     rates = [w.rate_ml_kg_h(kg) for w in wins]
-    ev |= {"windows": [w.to_json() for w in wins], "rates_ml_kg_h": [round(x, 3) for x in rates]}
-    if not all(w.covered for w in wins):
-        return Finding(False, "not every hour in the window is measured", ev)
-    return Finding(
-        all(x < c.threshold_ml_kg_h for x in rates),
-        f"every hour of the last {c.window_h} h below {c.threshold_ml_kg_h:g} mL/kg/h "
-        f"(highest {max(rates):.2f})",
-        ev,
-    )
+    covered = all(w.covered for w in wins)
+
+    def explain_hours() -> tuple[str, dict[str, Any]]:
+        ev = _weight_evidence(v) | base | {
+            "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [round(x, 3) for x in rates],
+        }  # fmt: skip
+        if not covered:
+            return "not every hour in the window is measured", ev
+        return (
+            f"every hour of the last {c.window_h} h below {c.threshold_ml_kg_h:g} mL/kg/h "
+            f"(highest {max(rates):.2f})",
+            ev,
+        )
+
+    return Finding(covered and all(x < c.threshold_ml_kg_h for x in rates), explain_hours)
 
 
 def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
@@ -144,14 +166,17 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
     if end is None:
         return NOT_YET
     w = measure(v.bed.series, end, c.window_h * 60)
-    ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml}
-    if not w.covered:
-        return Finding(False, f"window only {w.coverage:.0%} measured", ev)
-    return Finding(
-        w.volume_ml < c.threshold_ml,
-        f"{_ml(w.volume_ml)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
-        ev,
-    )
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml}
+        if not w.covered:
+            return f"window only {w.coverage:.0%} measured", ev
+        return (
+            f"{_ml(w.volume_ml)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
+            ev,
+        )
+
+    return Finding(w.covered and w.volume_ml < c.threshold_ml, explain)
 
 
 def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
@@ -160,49 +185,52 @@ def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
         return NO_WEIGHT
     if end is None:
         return NOT_YET
-    # length of the trailing run of measured minutes holding at most max_ml in all
-    look = 1440
-    lo, hi = window_bounds(end, look)
-    vol, st = v.bed.series.minutes(lo, hi)
-    rev_vol, rev_meas = vol[::-1], st[::-1] == MEASURED
-    unmeasured = np.flatnonzero(~rev_meas)
-    limit = int(unmeasured[0]) if unmeasured.size else look
-    run = int(np.searchsorted(np.cumsum(rev_vol[:limit]), c.max_ml, side="right"))
+    last = measure(v.bed.series, end, c.stopped_min)
+    if last.volume_ml > c.max_ml or last.measured_min < c.stopped_min:
+        # the common case, O(1): flowing, or not all measured
+        return Finding(False, lambda: ("urine is flowing", {"last": last.to_json()}))
+    # the trailing run of measured minutes holding at most max_ml in all
+    run = v.bed.series.trailing_quiet(end, c.max_ml, 1440)
     stop_end = end - run  # last minute before the stop
     before = measure(v.bed.series, stop_end, c.before_min)
     rate = before.rate_ml_kg_h(kg)
-    ev = _weight_evidence(v) | {
-        "stopped_min": run, "stopped_since": iso((stop_end + 1) * 60.0),
-        "before": before.to_json(), "before_rate_ml_kg_h": round(rate, 3),
-        "threshold_stopped_min": c.stopped_min, "max_ml": c.max_ml,
-    }  # fmt: skip
     cond = run >= c.stopped_min and before.covered and rate >= c.before_min_ml_kg_h
     return Finding(
         cond,
-        f"no urine flow for {run} min after {rate:.2f} mL/kg/h before: check the catheter "
-        "(kinked, clamped or blocked?)",
-        ev,
-    )
+        lambda: (
+            f"no urine flow for {run} min after {rate:.2f} mL/kg/h before: check the catheter "
+            "(kinked, clamped or blocked?)",
+            _weight_evidence(v) | {
+                "stopped_min": run, "stopped_since": iso((stop_end + 1) * 60.0),
+                "before": before.to_json(), "before_rate_ml_kg_h": round(rate, 3),
+                "threshold_stopped_min": c.stopped_min, "max_ml": c.max_ml,
+            },
+        ),
+    )  # fmt: skip
 
 
 def meter_silent(c: r.MeterSilent, v: BedView) -> Finding:
-    silent: list[dict[str, Any]] = []
+    silent: list[tuple[DeviceSeen, int]] = []
     due: float | None = None
     for d in v.devices:
         limit = max(c.min_silence_s, c.periods * d.period_s)
         if v.now - d.last_seen >= limit:
-            silent.append({"device_id": d.device_id, "last_seen": iso(d.last_seen),
-                           "silent_s": round(v.now - d.last_seen), "limit_s": limit})  # fmt: skip
+            silent.append((d, limit))
         else:
             t = d.last_seen + limit
             due = t if due is None else min(due, t)
-    names = ", ".join(s["device_id"] for s in silent)
-    return Finding(
-        bool(silent),
-        f"no message from meter {names}" if silent else "all meters reporting",
-        {"silent": silent},
-        due=due,
-    )
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        names = ", ".join(d.device_id for d, _ in silent)
+        facts = [
+            {"device_id": d.device_id, "last_seen": iso(d.last_seen),
+             "silent_s": round(v.now - d.last_seen), "limit_s": limit}
+            for d, limit in silent
+        ]  # fmt: skip
+        text = f"no message from meter {names}" if silent else "all meters reporting"
+        return text, {"silent": facts}
+
+    return Finding(bool(silent), explain, due=due)
 
 
 def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
@@ -211,8 +239,10 @@ def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
     gap = v.now - since
     return Finding(
         gap >= c.max_gap_s,
-        f"no usable reading for {gap / 3600:.1f} h (limit {c.max_gap_s / 3600:g} h)",
-        {"last_accepted": iso(since), "gap_s": round(gap), "max_gap_s": c.max_gap_s},
+        lambda: (
+            f"no usable reading for {gap / 3600:.1f} h (limit {c.max_gap_s / 3600:g} h)",
+            {"last_accepted": iso(since), "gap_s": round(gap), "max_gap_s": c.max_gap_s},
+        ),
         due=None if gap >= c.max_gap_s else since + c.max_gap_s,
     )
 
@@ -224,19 +254,22 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
     w = measure(v.bed.series, end, c.window_h * 60)
     lo, hi = window_bounds(end, c.window_h * 60)
     intake = v.bed.intake_between(lo * 60.0, hi * 60.0)
-    ev = {"window": w.to_json(), "intake_ml": round(intake, 1), "ratio": c.ratio}
-    if w.volume_ml < c.min_output_ml:
-        return Finding(False, "output too small to judge replacement", ev)
-    share = intake / w.volume_ml
-    ev["intake_share"] = round(share, 3)
-    cond = share < c.ratio if c.direction == "below" else share > c.ratio
-    word = "below" if c.direction == "below" else "above"
-    return Finding(
-        cond,
-        f"documented intake {_ml(intake)} is {share:.0%} of output {_ml(w.volume_ml)} "
-        f"over {c.window_h} h (alarm {word} {c.ratio:.0%})",
-        ev,
-    )
+    judged = w.volume_ml >= c.min_output_ml
+    share = intake / w.volume_ml if judged else 0.0
+    cond = judged and (share < c.ratio if c.direction == "below" else share > c.ratio)
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        ev = {"window": w.to_json(), "intake_ml": round(intake, 1), "ratio": c.ratio}
+        if not judged:
+            return "output too small to judge replacement", ev
+        word = "below" if c.direction == "below" else "above"
+        return (
+            f"documented intake {_ml(intake)} is {share:.0%} of output {_ml(w.volume_ml)} "
+            f"over {c.window_h} h (alarm {word} {c.ratio:.0%})",
+            ev | {"intake_share": round(share, 3)},
+        )
+
+    return Finding(cond, explain)
 
 
 def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
@@ -244,6 +277,12 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     if end is None:
         return NOT_YET
     hour = measure(v.bed.series, end, 60)
+    if hour.volume_ml <= c.hourly_above_ml:  # the common case: nothing else to look at
+        return Finding(
+            False,
+            lambda: (f"{_ml(hour.volume_ml)} in the last hour",
+                     {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}),
+        )  # fmt: skip
     signs: list[str] = []
     ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}
     vit = v.bed.latest_vitals(v.now, c.vitals_max_age_s)
@@ -273,13 +312,13 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
         net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
         ev |= {"net_balance_ml": round(net, 1), "balance_ml_kg": round(net / kg, 2)}
         balance_low = net / kg < c.balance_below_ml_kg
-    high_output = hour.volume_ml > c.hourly_above_ml
-    cond = high_output and (bool(signs) or balance_low)
     what = ", ".join(signs + (["negative fluid balance"] if balance_low else [])) or "no sign"
     return Finding(
-        cond,
-        f"{_ml(hour.volume_ml)} in the last hour with {what}",
-        ev | {"signs": signs, "balance_low": balance_low},
+        bool(signs) or balance_low,
+        _say(
+            f"{_ml(hour.volume_ml)} in the last hour with {what}",
+            ev | {"signs": signs, "balance_low": balance_low},
+        ),
         priority=c.priority_with_sign if signs else None,
         due=due,
     )
@@ -292,14 +331,16 @@ def _lab_series(v: BedView, analyte: str) -> list[tuple[float, float]]:
 def lab_above(c: r.LabAbove, v: BedView) -> Finding:
     series = _lab_series(v, c.analyte)
     if not series:
-        return Finding(False, "no result")
+        return Finding(False, _say("no result"))
     t, x = series[-1]
     fresh = v.now - t < c.max_age_s
+    name = c.analyte.split("_")[1].capitalize()
     return Finding(
         fresh and x > c.threshold,
-        f"{c.analyte.split('_')[1].capitalize()} {x:g} mmol/L at {iso(t)} "
-        f"(alarm above {c.threshold:g})",
-        {"analyte": c.analyte, "value": x, "time": iso(t), "threshold": c.threshold},
+        lambda: (
+            f"serum {name} {x:g} mmol/L at {iso(t)} (alarm above {c.threshold:g})",
+            {"analyte": c.analyte, "value": x, "time": iso(t), "threshold": c.threshold},
+        ),
         due=t + c.max_age_s if fresh else None,
     )
 
@@ -307,18 +348,20 @@ def lab_above(c: r.LabAbove, v: BedView) -> Finding:
 def lab_rise(c: r.LabRise, v: BedView) -> Finding:
     series = _lab_series(v, c.analyte)
     if len(series) < 2:
-        return Finding(False, "fewer than two results")
+        return Finding(False, _say("fewer than two results"))
     t, x = series[-1]
     prior = [(tt, xx) for tt, xx in series[:-1] if tt >= t - c.window_h * 3600]
     if not prior:
-        return Finding(False, "no earlier result in the window")
+        return Finding(False, _say("no earlier result in the window"))
     t0, x0 = min(prior, key=lambda p: p[1])
     rise = x - x0
     return Finding(
         rise > c.rise_above,
-        f"serum sodium rose {rise:.0f} mmol/L ({x0:g} -> {x:g}) in {(t - t0) / 3600:.1f} h "
-        f"(alarm above {c.rise_above:g} per {c.window_h} h)",
-        {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "rise": rise},
+        lambda: (
+            f"serum sodium rose {rise:.0f} mmol/L ({x0:g} -> {x:g}) in {(t - t0) / 3600:.1f} h "
+            f"(alarm above {c.rise_above:g} per {c.window_h} h)",
+            {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "rise": rise},
+        ),
     )
 
 
@@ -326,10 +369,13 @@ def reminder(c: r.Reminder, v: BedView) -> Finding:
     gate_start = min(v.gates.values())
     since = max(gate_start, v.bed.last_labs_time or gate_start)
     due = since + c.every_s
+    done = v.bed.last_labs_time is not None
     return Finding(
         v.now >= due,
-        f"{c.task}: last done {iso(since)}" if v.bed.last_labs_time else f"{c.task}: not yet done",
-        {"since": iso(since), "every_s": c.every_s},
+        lambda: (
+            f"{c.task}: last done {iso(since)}" if done else f"{c.task}: not yet done",
+            {"since": iso(since), "every_s": c.every_s},
+        ),
         due=None if v.now >= due else due,
     )
 

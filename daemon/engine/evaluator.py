@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from .alarms import AlarmEvent, Kind, State
 from .bedstate import BedState
 from .checks import BedView, DeviceSeen, evaluate
-from .lifecycle import AlarmBook
+from .lifecycle import AlarmBook, AlarmView
 from .rules import RuleDef
 
 # Alarm states that open a gate for dependent rules (replacement, reminders).
@@ -40,6 +40,7 @@ class Evaluator:
     def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
         self.specs = {r.id: r.spec() for r in self.rules}
+        self.stages = {r.id: _order(r)[0] for r in self.rules}
         self.book = book
 
     def run(
@@ -50,35 +51,44 @@ class Evaluator:
         due: float | None = None
         ward = bed.context.ward
         disabled = set(bed.context.disabled_rules)
+        stage = -1
+        views: list[AlarmView] = []
+        opened: set[str] = set()
+        suppressor: str | None = None
         for rule in self.rules:
             spec = self.specs[rule.id]
+            if self.stages[rule.id] != stage:  # an earlier stage may have opened or closed alarms
+                stage = self.stages[rule.id]
+                views = self.book.active(bed.bed_id)
+                opened = {a.rule for a in views}  # rules whose record must hear every answer
+                suppressor = self.book.suppressor(bed.bed_id)
             if rule.id in disabled:
-                out += self.book.update(
-                    now, bed.bed_id, ward, spec, False, "disabled for this bed", {}
-                )
+                if rule.id in opened:
+                    off = "disabled for this bed"
+                    out += self.book.update(now, bed.bed_id, ward, spec, False, off, {})
                 continue
             gates = {
                 a.rule: a.activated_at if a.activated_at is not None else a.onset
-                for a in self.book.active(bed.bed_id)
+                for a in views
                 if a.rule in rule.while_active and a.state in OPEN
             }
             if rule.while_active and not gates:
-                out += self.book.update(
-                    now, bed.bed_id, ward, spec, False, "no high-output alarm open", {}
-                )
+                if rule.id in opened:
+                    idle = "no high-output alarm open"
+                    out += self.book.update(now, bed.bed_id, ward, spec, False, idle, {})
                 continue
-            view = BedView(bed, now, devices, gates)
-            f = evaluate(rule, view)
+            f = evaluate(rule, BedView(bed, now, devices, gates))
             if f.skipped is not None and f.skipped not in bed.notices:
                 bed.notices.add(f.skipped)
                 out.append(Notice(now, bed.bed_id, ward, f.skipped,
                                   f"{rule.id} and other weight-based rules are not running: "
                                   "no body weight in the bed context"))  # fmt: skip
-            suppressor = self.book.suppressor(bed.bed_id) if rule.low_output else None
-            out += self.book.update(
-                now, bed.bed_id, ward, spec, f.condition, f.summary, f.evidence,
-                suppressed_by=suppressor, priority=f.priority,
-            )  # fmt: skip
+            if f.condition or rule.id in opened:
+                summary, evidence = f.explain()
+                out += self.book.update(
+                    now, bed.bed_id, ward, spec, f.condition, summary, evidence,
+                    suppressed_by=suppressor if rule.low_output else None, priority=f.priority,
+                )  # fmt: skip
             if f.due is not None and f.due > now:
                 due = f.due if due is None else min(due, f.due)
         return out, due

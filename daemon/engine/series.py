@@ -5,6 +5,10 @@ produced in it (mL) and a state: unknown (no reading covers it), estimated
 (covered only by a long-gap interpolation or a bag-change estimate) or
 measured. Volume between two readings is spread evenly over the time between
 them, so an emptying logged late lands in the hours it was produced.
+
+Storage is one contiguous buffer per bed with prefix sums refreshed lazily
+from the earliest changed minute, so any window costs O(1) once refreshed:
+rules ask for many windows per minute, while writes touch the last few minutes.
 """
 
 from __future__ import annotations
@@ -12,6 +16,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -20,7 +25,7 @@ UNKNOWN = 0
 ESTIMATED = 1
 MEASURED = 2
 
-DAY = 1440  # minutes per storage chunk
+GROW = 1440  # minutes added at a time
 
 
 @dataclass(frozen=True, slots=True)
@@ -31,12 +36,27 @@ class HourTotal:
     estimated_fraction: float
 
 
+class Sums(NamedTuple):
+    volume_ml: float
+    measured_min: int
+    estimated_min: int
+
+
 class MinuteSeries:
-    __slots__ = ("_state", "_vol", "first_minute", "latest_time")
+    __slots__ = (
+        "_base", "_cum_est", "_cum_meas", "_cum_vol", "_dirty", "_n", "_state", "_vol",
+        "first_minute", "latest_time",
+    )  # fmt: skip
 
     def __init__(self) -> None:
-        self._vol: dict[int, npt.NDArray[np.float64]] = {}
-        self._state: dict[int, npt.NDArray[np.uint8]] = {}
+        self._base: int | None = None  # minute index of buffer slot 0
+        self._vol: npt.NDArray[np.float64] = np.zeros(0)
+        self._state: npt.NDArray[np.uint8] = np.zeros(0, dtype=np.uint8)
+        self._n = 0  # slots in use: [0, n)
+        self._cum_vol: npt.NDArray[np.float64] = np.zeros(1)
+        self._cum_meas: npt.NDArray[np.int64] = np.zeros(1, dtype=np.int64)
+        self._cum_est: npt.NDArray[np.int64] = np.zeros(1, dtype=np.int64)
+        self._dirty = 0  # prefix sums are valid up to slot index `_dirty`
         self.latest_time: float | None = None  # time of the latest accepted reading
         self.first_minute: int | None = None
 
@@ -45,92 +65,149 @@ class MinuteSeries:
         if self.latest_time is None or t > self.latest_time:
             self.latest_time = t
 
-    def _chunk(self, day: int) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.uint8]]:
-        vol = self._vol.get(day)
-        if vol is None:
-            vol = self._vol[day] = np.zeros(DAY)
-            self._state[day] = np.zeros(DAY, dtype=np.uint8)
-        return vol, self._state[day]
+    def _slot(self, lo: int, hi: int) -> int:
+        """Make minutes [lo, hi] writable; return the slot index of `lo`."""
+        if self._base is None:
+            self._base = lo
+        if lo < self._base:  # data before the buffer: grow at the front
+            extra = self._base - lo + GROW
+            self._vol = np.concatenate([np.zeros(extra), self._vol])
+            self._state = np.concatenate([np.zeros(extra, dtype=np.uint8), self._state])
+            self._base -= extra
+            self._n += extra
+            self._reset_sums()
+        need = hi - self._base + 1
+        if need > self._vol.size:
+            size = max(need + GROW, 2 * self._vol.size)
+            self._vol = np.concatenate([self._vol, np.zeros(size - self._vol.size)])
+            self._state = np.concatenate(
+                [self._state, np.zeros(size - self._state.size, dtype=np.uint8)]
+            )
+            for name in ("_cum_vol", "_cum_meas", "_cum_est"):
+                old = getattr(self, name)
+                new = np.zeros(size + 1, dtype=old.dtype)
+                new[: old.size] = old
+                setattr(self, name, new)
+        if need > self._n:
+            self._n = need
+        i = lo - self._base
+        if i < self._dirty:
+            self._dirty = i
+        if self.first_minute is None or lo < self.first_minute:
+            self.first_minute = lo
+        return i
 
     def spread(self, t0: float, t1: float, volume: float, state: int) -> None:
         """Attribute `volume` evenly over (t0, t1]; a zero-length span lands in t1's minute."""
         if t1 <= t0:
             m = math.floor(t1 / 60.0)
-            vol, st = self._chunk(m // DAY)
-            vol[m % DAY] += volume
-            if st[m % DAY] < state:
-                st[m % DAY] = state
-            self._first(m)
+            i = self._slot(m, m)
+            self._vol[i] += volume
+            if self._state[i] < state:
+                self._state[i] = state
             return
         m0 = math.floor(t0 / 60.0)
         m1 = math.ceil(t1 / 60.0) - 1  # last minute with positive overlap
-        self._first(m0)
+        i0 = self._slot(m0, m1)
+        vol, st = self._vol, self._state
         if m0 == m1:
-            vol, st = self._chunk(m0 // DAY)
-            vol[m0 % DAY] += volume
-            if st[m0 % DAY] < state:
-                st[m0 % DAY] = state
+            vol[i0] += volume
+            if st[i0] < state:
+                st[i0] = state
             return
+        i1 = i0 + (m1 - m0)
         rate = volume / (t1 - t0)
         # first and last minutes are partial, the ones between are whole
-        self._add_minute(m0, rate * ((m0 + 1) * 60.0 - t0), state)
-        self._add_minute(m1, rate * (t1 - m1 * 60.0), state)
-        if m1 - m0 > 1:
-            self._add_range(m0 + 1, m1, rate * 60.0, state)
-
-    def _add_minute(self, m: int, volume: float, state: int) -> None:
-        vol, st = self._chunk(m // DAY)
-        vol[m % DAY] += volume
-        if st[m % DAY] < state:
-            st[m % DAY] = state
-
-    def _add_range(self, lo: int, hi: int, per_minute: float, state: int) -> None:
-        """Add per_minute to minutes [lo, hi)."""
-        m = lo
-        while m < hi:
-            day = m // DAY
-            a = m % DAY
-            b = min(DAY, a + (hi - m))
-            vol, st = self._chunk(day)
-            vol[a:b] += per_minute
-            np.maximum(st[a:b], state, out=st[a:b])
-            m += b - a
-
-    def _first(self, m: int) -> None:
-        if self.first_minute is None or m < self.first_minute:
-            self.first_minute = m
+        vol[i0] += rate * ((m0 + 1) * 60.0 - t0)
+        vol[i1] += rate * (t1 - m1 * 60.0)
+        if i1 - i0 > 1:
+            vol[i0 + 1 : i1] += rate * 60.0
+        np.maximum(st[i0 : i1 + 1], state, out=st[i0 : i1 + 1])
 
     def forget_before(self, minute: int) -> None:
-        """Drop whole days before `minute` (bounded memory in a long-running engine)."""
-        for day in [d for d in self._vol if (d + 1) * DAY <= minute]:
-            del self._vol[day]
-            del self._state[day]
+        """Drop minutes before `minute` (bounded memory in a long-running engine)."""
+        if self._base is None or minute <= self._base:
+            return
+        k = min(minute - self._base, self._n)
+        self._vol = self._vol[k:].copy()
+        self._state = self._state[k:].copy()
+        self._n -= k
+        self._base += k
+        self._reset_sums()
+        self.first_minute = max(self.first_minute or minute, self._base)
+
+    def _reset_sums(self) -> None:
+        size = self._vol.size + 1
+        self._cum_vol = np.zeros(size)
+        self._cum_meas = np.zeros(size, dtype=np.int64)
+        self._cum_est = np.zeros(size, dtype=np.int64)
+        self._dirty = 0
 
     # --- reading -------------------------------------------------------------
     def latest_minute(self) -> int | None:
         """The minute holding the latest accepted reading (windows end here)."""
         return None if self.latest_time is None else math.floor(self.latest_time / 60.0)
 
+    def _refresh(self) -> None:
+        d, n = self._dirty, self._n
+        if d >= n:
+            return
+        self._cum_vol[d + 1 : n + 1] = self._cum_vol[d] + np.cumsum(self._vol[d:n])
+        st = self._state[d:n]
+        self._cum_meas[d + 1 : n + 1] = self._cum_meas[d] + np.cumsum(st == MEASURED)
+        self._cum_est[d + 1 : n + 1] = self._cum_est[d] + np.cumsum(st == ESTIMATED)
+        self._dirty = n
+
+    def _clip(self, m: int) -> int:
+        """Slot index for a window edge, clipped to the used buffer."""
+        assert self._base is not None
+        return min(max(m - self._base, 0), self._n)
+
+    def sums(self, lo: int, hi: int) -> Sums:
+        """Volume, measured and estimated minute counts over minutes [lo, hi)."""
+        base = self._base
+        if base is None or hi <= lo:
+            return Sums(0.0, 0, 0)
+        if self._dirty < self._n:
+            self._refresh()
+        n = self._n
+        a = min(max(lo - base, 0), n)
+        b = min(max(hi - base, 0), n)
+        cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
+        return Sums(float(cv[b] - cv[a]), int(cm[b] - cm[a]), int(ce[b] - ce[a]))
+
+    def trailing_quiet(self, end: int, max_ml: float, limit: int) -> int:
+        """Length of the run of measured minutes ending at `end` (inclusive) whose
+        total volume is at most `max_ml`, capped at `limit` minutes."""
+        if self._base is None:
+            return 0
+        self._refresh()
+        e = self._clip(end + 1)
+        floor = max(0, e - limit)
+        cum = self._cum_vol
+        # earliest slot j >= floor with cum[e] - cum[j] <= max_ml (cum is ~monotone)
+        j = int(np.searchsorted(cum[floor : e + 1], cum[e] - max_ml - 1e-9, side="left")) + floor
+        # ... and no unknown or estimated minute in slots [j, e)
+        unmeasured = np.arange(floor, e + 1) - self._cum_meas[floor : e + 1]
+        k = int(np.searchsorted(unmeasured, unmeasured[-1], side="left")) + floor
+        return e - max(j, k)
+
     def minutes(self, lo: int, hi: int) -> tuple[npt.NDArray[np.float64], npt.NDArray[np.uint8]]:
         """Copies of volume and state for minutes [lo, hi); absent minutes are unknown."""
         n = max(0, hi - lo)
         vol = np.zeros(n)
         st = np.zeros(n, dtype=np.uint8)
-        m = lo
-        while m < hi:
-            day = m // DAY
-            a = m % DAY
-            b = min(DAY, a + (hi - m))
-            i = m - lo
-            chunk = self._vol.get(day)
-            if chunk is not None:
-                vol[i : i + b - a] = chunk[a:b]
-                st[i : i + b - a] = self._state[day][a:b]
-            m += b - a
+        if self._base is None or n == 0:
+            return vol, st
+        a, b = self._clip(lo), self._clip(hi)
+        if b > a:
+            off = a + self._base - lo
+            vol[off : off + b - a] = self._vol[a:b]
+            st[off : off + b - a] = self._state[a:b]
         return vol, st
 
     def total(self) -> float:
-        return float(sum(float(v.sum()) for v in self._vol.values()))
+        return float(self._vol[: self._n].sum())
 
     def completed_hours(self) -> Iterator[HourTotal]:
         """Clock hours from the first data to the last hour that has fully passed."""

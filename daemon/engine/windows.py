@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from .series import ESTIMATED, MEASURED, MinuteSeries
+from .series import MinuteSeries
+from .timefmt import iso
 
 COVERED_FRACTION = 0.9  # a window is covered when >= 90% of its minutes are measured
 
@@ -19,7 +20,7 @@ def window_bounds(end_minute: int, length_min: int) -> tuple[int, int]:
     return end_minute - length_min + 1, end_minute + 1
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(slots=True)  # not frozen: built many times a minute, and frozen init is slow
 class Window:
     end_minute: int  # last minute inside the window
     length_min: int
@@ -44,9 +45,10 @@ class Window:
         return self.volume_ml / weight_kg / (self.length_min / 60.0)
 
     def to_json(self) -> dict[str, object]:
+        lo, hi = window_bounds(self.end_minute, self.length_min)
         return {
-            "start_minute": self.start_minute,
-            "end_minute": self.end_minute,
+            "from": iso(lo * 60.0),  # window (from, to]: minutes lo .. hi-1
+            "to": iso(hi * 60.0),
             "length_min": self.length_min,
             "volume_ml": round(self.volume_ml, 1),
             "coverage": round(self.coverage, 3),
@@ -55,15 +57,8 @@ class Window:
 
 
 def measure(series: MinuteSeries, end_minute: int, length_min: int) -> Window:
-    lo, hi = window_bounds(end_minute, length_min)
-    vol, state = series.minutes(lo, hi)
-    return Window(
-        end_minute,
-        length_min,
-        float(vol.sum()),
-        int((state == MEASURED).sum()),
-        int((state == ESTIMATED).sum()),
-    )
+    s = series.sums(*window_bounds(end_minute, length_min))
+    return Window(end_minute, length_min, s.volume_ml, s.measured_min, s.estimated_min)
 
 
 def hours_ending(series: MinuteSeries, end_minute: int, hours: int) -> list[Window]:
