@@ -52,18 +52,12 @@ def drive(
         if t < now:  # receive times must not go backwards; keep the clock monotone
             result.clock_went_back += 1
             t = now
-        wake = engine.next_wakeup()
-        while wake is not None and wake <= t:
-            emit(engine.tick(wake))
-            wake = engine.next_wakeup()
+        emit(engine.advance(t))
         now = t
         emit(engine.step(rec.topic, rec.payload, t))
         result.messages += 1
     if until is not None:
-        wake = engine.next_wakeup()
-        while wake is not None and wake <= until:
-            emit(engine.tick(wake))
-            wake = engine.next_wakeup()
+        emit(engine.advance(until))
     return result
 
 

@@ -386,6 +386,21 @@ class Engine:
         candidates = [t for t in (heap[0][0] if heap else None, self.book.next_due()) if t]
         return min(candidates) if candidates else None
 
+    def advance(self, to: datetime | float) -> list[Effect]:
+        """Fire every wake-up due at or before `to`, each at its own due time.
+
+        Live and replay both call this before each message and from the timer,
+        so a time-driven event carries the time it fell due, however late the
+        caller got round to it.
+        """
+        t = as_epoch(to)
+        effects: list[Effect] = []
+        wake = self.next_wakeup()
+        while wake is not None and wake <= t:
+            effects += self.tick(wake)
+            wake = self.next_wakeup()
+        return effects
+
     def tick(self, now: datetime | float) -> list[Effect]:
         """Carry out everything due at or before `now`."""
         t = as_epoch(now)
