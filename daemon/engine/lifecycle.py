@@ -238,6 +238,11 @@ class AlarmBook:
         self._now: float | None = None
         self._slots: dict[tuple[str, str], _Slot] = {}
         self._live: dict[str, _Slot] = {}  # alarm id -> slot, in onset order
+        # next due time per live alarm, and their minimum (recomputed only when one
+        # of them changed): next_due is asked after every message
+        self._dues: dict[str, float] = {}
+        self._min_due: float | None = None
+        self._min_stale = False
         # transitions asked for that the table does not list; should stay empty
         self.refused: Counter[tuple[State, Trigger]] = Counter()
 
@@ -343,12 +348,10 @@ class AlarmBook:
     # --- queries -------------------------------------------------------------
     def next_due(self) -> float | None:
         """The earliest time at which tick() would emit an event."""
-        best: float | None = None
-        for slot in self._live.values():
-            d = self._due(slot)
-            if d and (best is None or d[0][0] < best):
-                best = d[0][0]
-        return best
+        if self._min_stale:
+            self._min_due = min(self._dues.values(), default=None)
+            self._min_stale = False
+        return self._min_due
 
     def active(self, bed: str | None = None) -> list[AlarmView]:
         """Current alarms (pending to acknowledged), most urgent first."""
@@ -396,6 +399,8 @@ class AlarmBook:
             book._slots[(slot.bed, slot.rule)] = slot
             if slot.record is not None:
                 book._live[slot.record.alarm_id] = slot
+                due = book._due(slot)
+                book._set_due(slot.record.alarm_id, due[0][0] if due else None)
         return book
 
     # --- internals -----------------------------------------------------------
@@ -493,6 +498,7 @@ class AlarmBook:
         while rec is not None and slot.record is rec:
             due = self._due(slot)
             if not due or due[0][0] > now:
+                self._set_due(rec.alarm_id, due[0][0] if due else None)
                 return
             t, _, trig = due[0]
             if trig is T.RENOTIFY:
@@ -505,7 +511,19 @@ class AlarmBook:
                     rec.renotified += 1
                     continue
             if not self._fire(slot, trig, t, out):
+                # counted in `refused`; drop the wake-up rather than spin on it
+                self._set_due(rec.alarm_id, None)
                 return
+
+    def _set_due(self, alarm_id: str, due: float | None) -> None:
+        old = self._dues.get(alarm_id)
+        if due == old:
+            return
+        if due is None:
+            del self._dues[alarm_id]
+        else:
+            self._dues[alarm_id] = due
+        self._min_stale = True
 
     def _fire(
         self,
@@ -580,6 +598,7 @@ class AlarmBook:
             slot.record = None
             slot.ended_id = rec.alarm_id
             del self._live[rec.alarm_id]
+            self._set_due(rec.alarm_id, None)
         return True
 
 
