@@ -53,9 +53,11 @@ class MinuteSeries:
         self._vol: npt.NDArray[np.float64] = np.zeros(0)
         self._state: npt.NDArray[np.uint8] = np.zeros(0, dtype=np.uint8)
         self._n = 0  # slots in use: [0, n)
-        self._cum_vol: npt.NDArray[np.float64] = np.zeros(1)
-        self._cum_meas: npt.NDArray[np.int64] = np.zeros(1, dtype=np.int64)
-        self._cum_est: npt.NDArray[np.int64] = np.zeros(1, dtype=np.int64)
+        # prefix sums as plain lists: rules read single items, and a list item is
+        # several times cheaper to read than a numpy scalar
+        self._cum_vol: list[float] = [0.0]
+        self._cum_meas: list[int] = [0]
+        self._cum_est: list[int] = [0]
         self._dirty = 0  # prefix sums are valid up to slot index `_dirty`
         self.latest_time: float | None = None  # time of the latest accepted reading
         self.first_minute: int | None = None
@@ -83,11 +85,10 @@ class MinuteSeries:
             self._state = np.concatenate(
                 [self._state, np.zeros(size - self._state.size, dtype=np.uint8)]
             )
-            for name in ("_cum_vol", "_cum_meas", "_cum_est"):
-                old = getattr(self, name)
-                new = np.zeros(size + 1, dtype=old.dtype)
-                new[: old.size] = old
-                setattr(self, name, new)
+            pad = size + 1 - len(self._cum_vol)
+            self._cum_vol.extend([0.0] * pad)
+            self._cum_meas.extend([0] * pad)
+            self._cum_est.extend([0] * pad)
         if need > self._n:
             self._n = need
         i = lo - self._base
@@ -138,9 +139,9 @@ class MinuteSeries:
 
     def _reset_sums(self) -> None:
         size = self._vol.size + 1
-        self._cum_vol = np.zeros(size)
-        self._cum_meas = np.zeros(size, dtype=np.int64)
-        self._cum_est = np.zeros(size, dtype=np.int64)
+        self._cum_vol = [0.0] * size
+        self._cum_meas = [0] * size
+        self._cum_est = [0] * size
         self._dirty = 0
 
     # --- reading -------------------------------------------------------------
@@ -152,10 +153,10 @@ class MinuteSeries:
         d, n = self._dirty, self._n
         if d >= n:
             return
-        self._cum_vol[d + 1 : n + 1] = self._cum_vol[d] + np.cumsum(self._vol[d:n])
+        self._cum_vol[d + 1 : n + 1] = (self._cum_vol[d] + np.cumsum(self._vol[d:n])).tolist()
         st = self._state[d:n]
-        self._cum_meas[d + 1 : n + 1] = self._cum_meas[d] + np.cumsum(st == MEASURED)
-        self._cum_est[d + 1 : n + 1] = self._cum_est[d] + np.cumsum(st == ESTIMATED)
+        self._cum_meas[d + 1 : n + 1] = (self._cum_meas[d] + np.cumsum(st == MEASURED)).tolist()
+        self._cum_est[d + 1 : n + 1] = (self._cum_est[d] + np.cumsum(st == ESTIMATED)).tolist()
         self._dirty = n
 
     def _clip(self, m: int) -> int:
@@ -174,7 +175,7 @@ class MinuteSeries:
         a = min(max(lo - base, 0), n)
         b = min(max(hi - base, 0), n)
         cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
-        return Sums(float(cv[b] - cv[a]), int(cm[b] - cm[a]), int(ce[b] - ce[a]))
+        return Sums(cv[b] - cv[a], cm[b] - cm[a], ce[b] - ce[a])
 
     def trailing_quiet(self, end: int, max_ml: float, limit: int) -> int:
         """Length of the run of measured minutes ending at `end` (inclusive) whose
@@ -184,11 +185,11 @@ class MinuteSeries:
         self._refresh()
         e = self._clip(end + 1)
         floor = max(0, e - limit)
-        cum = self._cum_vol
+        cum = np.asarray(self._cum_vol[floor : e + 1])
         # earliest slot j >= floor with cum[e] - cum[j] <= max_ml (cum is ~monotone)
-        j = int(np.searchsorted(cum[floor : e + 1], cum[e] - max_ml - 1e-9, side="left")) + floor
+        j = int(np.searchsorted(cum, cum[-1] - max_ml - 1e-9, side="left")) + floor
         # ... and no unknown or estimated minute in slots [j, e)
-        unmeasured = np.arange(floor, e + 1) - self._cum_meas[floor : e + 1]
+        unmeasured = np.arange(floor, e + 1) - np.asarray(self._cum_meas[floor : e + 1])
         k = int(np.searchsorted(unmeasured, unmeasured[-1], side="left")) + floor
         return e - max(j, k)
 
