@@ -1,0 +1,164 @@
+"""The per-bed minute series: spreading volume over minutes, states, clock hours."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from daemon.engine.series import ESTIMATED, MEASURED, UNKNOWN, MinuteSeries
+from tests.conftest import T0
+
+M0 = int(T0 // 60)  # minute index of the invented start (a clock hour)
+H = 60  # minutes per hour
+
+
+def series_with(*spreads: tuple[float, float, float, int], latest: float | None = None):
+    s = MinuteSeries()
+    for t0, t1, v, st in spreads:
+        s.spread(t0, t1, v, st)
+    if latest is not None:
+        s.note_reading(latest)
+    return s
+
+
+def test_empty_series() -> None:
+    s = MinuteSeries()
+    assert s.total() == 0
+    assert list(s.completed_hours()) == []
+    assert s.latest_minute() is None and s.first_minute is None
+    vol, st = s.minutes(M0, M0 + 10)
+    assert (vol == 0).all() and (st == UNKNOWN).all()
+
+
+def test_spread_inside_one_minute() -> None:
+    s = series_with((T0 + 10, T0 + 50, 3.0, MEASURED))
+    vol, st = s.minutes(M0 - 1, M0 + 2)
+    assert vol.tolist() == [0.0, 3.0, 0.0]
+    assert st.tolist() == [UNKNOWN, MEASURED, UNKNOWN]
+    assert s.first_minute == M0
+
+
+def test_spread_is_even_over_partial_and_whole_minutes() -> None:
+    # 10 mL over 150 s starting 30 s into a minute: 2 + 4 + 4 mL... rate 1/15 mL/s
+    s = series_with((T0 + 30, T0 + 180, 10.0, MEASURED))
+    vol, st = s.minutes(M0, M0 + 4)
+    np.testing.assert_allclose(vol, [2.0, 4.0, 4.0, 0.0])
+    assert st.tolist() == [MEASURED, MEASURED, MEASURED, UNKNOWN]
+    assert s.total() == pytest.approx(10.0)
+
+
+def test_span_ending_on_a_minute_boundary_does_not_touch_the_next_minute() -> None:
+    s = series_with((T0, T0 + 120, 6.0, MEASURED))
+    vol, st = s.minutes(M0, M0 + 3)
+    np.testing.assert_allclose(vol, [3.0, 3.0, 0.0])
+    assert st[2] == UNKNOWN
+
+
+def test_zero_length_span_lands_in_the_minute_of_its_end() -> None:
+    s = series_with((T0 + 75, T0 + 75, 5.0, ESTIMATED))
+    vol, st = s.minutes(M0, M0 + 3)
+    assert vol.tolist() == [0.0, 5.0, 0.0]
+    assert st.tolist() == [UNKNOWN, ESTIMATED, UNKNOWN]
+
+
+def test_state_only_upgrades() -> None:
+    s = series_with(
+        (T0, T0 + 180, 3.0, MEASURED),
+        (T0 + 60, T0 + 240, 3.0, ESTIMATED),  # overlaps measured minutes 1-2, adds minute 3
+    )
+    _, st = s.minutes(M0, M0 + 4)
+    assert st.tolist() == [MEASURED, MEASURED, MEASURED, ESTIMATED]
+    s.spread(T0 + 180, T0 + 240, 0.0, MEASURED)  # no flow is a measurement too
+    _, st = s.minutes(M0, M0 + 4)
+    assert st.tolist() == [MEASURED] * 4
+
+
+def test_negative_spread_undoes_volume_but_not_state() -> None:
+    s = series_with((T0, T0 + 300, 10.0, MEASURED), (T0, T0 + 300, -10.0, MEASURED))
+    vol, st = s.minutes(M0, M0 + 5)
+    np.testing.assert_allclose(vol, 0.0, atol=1e-12)
+    assert (st == MEASURED).all()
+
+
+def test_long_spread_across_days_and_growing_at_the_front() -> None:
+    three_days = 3 * 86400.0
+    s = series_with((T0, T0 + three_days, 3 * 1440.0, ESTIMATED))
+    s.spread(T0 - 2 * 86400, T0 - 2 * 86400 + 60, 1.0, MEASURED)  # before all data
+    assert s.first_minute == M0 - 2 * 1440
+    vol, st = s.minutes(M0, M0 + 3 * 1440)
+    np.testing.assert_allclose(vol, 1.0)
+    assert (st == ESTIMATED).all()
+    assert s.total() == pytest.approx(3 * 1440 + 1)
+    vol, st = s.minutes(M0 - 2 * 1440, M0 - 2 * 1440 + 2)
+    assert vol.tolist() == [1.0, 0.0] and st.tolist() == [MEASURED, UNKNOWN]
+
+
+def test_minutes_window_partly_outside_the_data() -> None:
+    s = series_with((T0, T0 + 120, 2.0, MEASURED))
+    vol, st = s.minutes(M0 - 2, M0 + 4)
+    assert vol.tolist() == [0.0, 0.0, 1.0, 1.0, 0.0, 0.0]
+    assert st.tolist() == [UNKNOWN, UNKNOWN, MEASURED, MEASURED, UNKNOWN, UNKNOWN]
+    assert s.minutes(M0 + 5, M0 + 5)[0].size == 0
+
+
+def test_latest_reading_never_moves_back() -> None:
+    s = MinuteSeries()
+    s.note_reading(T0 + 600)
+    s.note_reading(T0 + 300)
+    assert s.latest_time == T0 + 600
+    assert s.latest_minute() == M0 + 10
+
+
+def test_completed_hours_stop_before_the_hour_of_the_latest_reading() -> None:
+    # 2.5 h of 1 mL/min, measured; the latest reading is 2 h 30 min in
+    s = series_with((T0, T0 + 9000, 150.0, MEASURED), latest=T0 + 9000)
+    hours = list(s.completed_hours())
+    assert [h.hour_start_min for h in hours] == [M0, M0 + H]
+    for h in hours:
+        assert h.volume_ml == pytest.approx(60.0)
+        assert (h.measured_fraction, h.estimated_fraction) == (1.0, 0.0)
+    # at exactly the top of an hour that hour has just completed
+    s.note_reading(T0 + 3 * 3600)
+    assert len(list(s.completed_hours())) == 3
+
+
+def test_completed_hours_start_at_the_clock_hour_of_the_first_data() -> None:
+    s = series_with((T0 + 1800, T0 + 5400, 60.0, MEASURED), latest=T0 + 7200)
+    hours = list(s.completed_hours())
+    assert [h.hour_start_min for h in hours] == [M0, M0 + H]
+    assert [h.volume_ml for h in hours] == pytest.approx([30.0, 30.0])
+    assert [h.measured_fraction for h in hours] == pytest.approx([0.5, 0.5])
+
+
+def test_hour_fractions_count_estimated_and_unknown_minutes() -> None:
+    s = series_with(
+        (T0, T0 + 1200, 20.0, MEASURED),  # 20 min measured
+        (T0 + 1200, T0 + 2400, 10.0, ESTIMATED),  # 20 min estimated, 20 unknown
+        latest=T0 + 3600,
+    )
+    (h,) = list(s.completed_hours())
+    assert h.volume_ml == pytest.approx(30.0)
+    assert h.measured_fraction == pytest.approx(1 / 3)
+    assert h.estimated_fraction == pytest.approx(1 / 3)
+
+
+def test_an_hour_without_data_is_reported_with_no_measured_minutes() -> None:
+    s = series_with(
+        (T0, T0 + 3600, 60.0, MEASURED),
+        (T0 + 7200, T0 + 10800, 60.0, MEASURED),
+        latest=T0 + 10800,
+    )
+    hours = list(s.completed_hours())
+    assert [h.measured_fraction for h in hours] == [1.0, 0.0, 1.0]
+    assert hours[1].volume_ml == 0.0
+
+
+def test_forget_before_drops_old_minutes_only() -> None:
+    s = series_with((T0, T0 + 3 * 86400, 3 * 1440.0, MEASURED), latest=T0 + 3 * 86400)
+    s.forget_before(M0 + 2 * 1440)
+    vol, st = s.minutes(M0, M0 + 1440)
+    assert (st == UNKNOWN).all() and (vol == 0).all()
+    vol, st = s.minutes(M0 + 2 * 1440, M0 + 3 * 1440)
+    np.testing.assert_allclose(vol, 1.0)
+    assert (st == MEASURED).all()
+    assert s.total() == pytest.approx(1440.0)
