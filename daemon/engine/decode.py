@@ -18,6 +18,7 @@ from .timefmt import TimeError, parse_epoch, parse_iso
 Payload = bytes | str | dict[str, Any] | list[Any]
 
 _MISSING = object()
+_JSON = json.JSONDecoder().decode  # str only: skips json.loads' encoding sniffing
 
 
 @dataclass(frozen=True, slots=True)
@@ -118,13 +119,16 @@ class Decoder:
         if self._json:
             if isinstance(payload, dict):
                 return payload
-            if not isinstance(payload, bytes | str):
+            if isinstance(payload, bytes):
+                try:
+                    payload = payload.decode("utf-8")
+                except UnicodeDecodeError:
+                    return Rejected(Outcome.BAD_ENCODING, "payload is not UTF-8")
+            if not isinstance(payload, str):
                 return Rejected(Outcome.BAD_PAYLOAD, "JSON payload is not an object")
             try:
-                obj = json.loads(payload)
-            except UnicodeDecodeError:
-                return Rejected(Outcome.BAD_ENCODING, "payload is not UTF-8")
-            except (ValueError, TypeError, RecursionError):
+                obj = _JSON(payload)
+            except (ValueError, RecursionError):
                 return Rejected(Outcome.BAD_PAYLOAD, "payload is not JSON")
             if not isinstance(obj, dict):
                 return Rejected(Outcome.BAD_PAYLOAD, "JSON payload is not an object")

@@ -92,6 +92,7 @@ class Engine:
         self.prefix = topic_prefix.rstrip("/")
         self._bed_topic = self.prefix + "/beds/"
         self._ack_topic = self.prefix + "/ack"
+        self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
         self.devices: dict[str, _Device] = {}
         self.beds: dict[str, BedState] = {}
         self._bound: dict[str, str] = {}  # device id -> bed id
@@ -115,12 +116,25 @@ class Engine:
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
             return self._ack(topic, payload, t_now)
+        route = self._route_cache.get(topic)
+        if route is None:
+            route = self._route(topic)
+        if route:
+            return self._meter_message(topic, route[1], route[0], payload, t_now)
+        self.unrouted[Outcome.UNKNOWN_TOPIC] += 1
+        return [RejectedInput(t_now, topic, None, Outcome.UNKNOWN_TOPIC, "no profile matches")]
+
+    def _route(self, topic: str) -> tuple[Decoder, str] | tuple[()]:
+        """Which profile a meter topic belongs to; remembered, since topics repeat."""
+        route: tuple[Decoder, str] | tuple[()] = ()  # () = no profile matches
         for regex, decoder in self._routes:
             m = regex.match(topic)
             if m:
-                return self._meter_message(topic, m.group(1), decoder, payload, t_now)
-        self.unrouted[Outcome.UNKNOWN_TOPIC] += 1
-        return [RejectedInput(t_now, topic, None, Outcome.UNKNOWN_TOPIC, "no profile matches")]
+                route = (decoder, m.group(1))
+                break
+        if len(self._route_cache) < 100_000:  # bounded: junk topics must not grow it
+            self._route_cache[topic] = route
+        return route
 
     def _device(self, device_id: str, decoder: Decoder) -> _Device:
         dev = self.devices.get(device_id)
