@@ -1,0 +1,1 @@
+"""One module per `hourwatch` subcommand: each has `add(subparsers)` and `run(args)`."""
