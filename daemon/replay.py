@@ -15,7 +15,8 @@ from typing import TextIO
 from .engine.effects import Effect
 from .engine.engine import Engine
 from .engine.profiles import DeviceProfile
-from .logfile import BadLine, LogRecord, read_log
+from .logfile import BadLine, LogRecord
+from .sources import open_source
 
 
 @dataclass
@@ -70,7 +71,7 @@ def replay_file(
 ) -> ReplayResult:
     if not isinstance(engine, Engine):
         engine = Engine(engine)
-    result = drive(engine, read_log(path), on_effects, until)
+    result = drive(engine, open_source(path), on_effects, until)
     if warn is not None:
         for bad in result.bad_lines:
             print(f"{path}:{bad.line_no}: skipped: {bad.reason}", file=warn)
