@@ -10,7 +10,7 @@ import sys
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TextIO
+from typing import Literal, TextIO
 
 from .engine.effects import Effect
 from .engine.engine import Engine
@@ -65,13 +65,15 @@ def drive(
 def replay_file(
     path: Path,
     engine: Engine | list[DeviceProfile],
-    warn: TextIO | None = sys.stderr,
+    warn: TextIO | None | Literal["stderr"] = "stderr",
     on_effects: Callable[[list[Effect]], None] | None = None,
     until: float | None = None,
 ) -> ReplayResult:
     if not isinstance(engine, Engine):
         engine = Engine(engine)
     result = drive(engine, open_source(path), on_effects, until)
+    if warn == "stderr":  # looked up now, so a redirected stderr is honoured
+        warn = sys.stderr
     if warn is not None:
         for bad in result.bad_lines:
             print(f"{path}:{bad.line_no}: skipped: {bad.reason}", file=warn)

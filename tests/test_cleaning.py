@@ -124,13 +124,6 @@ def test_reordering_within_tolerance_is_inserted_with_the_same_result(name: str)
     np.testing.assert_array_equal(sb, sa)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="engine bug: CumulativeCleaner._insert returns LATE for a reading older than the "
-    "first one received (t <= floor_t), although it is within the reorder tolerance; the "
-    "volume between the two first readings is lost and the detail says 'older than the "
-    "reorder tolerance'",
-)
 @pytest.mark.parametrize("name", CUMULATIVE)
 def test_first_two_readings_swapped_within_tolerance_are_both_used(name: str) -> None:
     p = period(name)
@@ -146,12 +139,6 @@ def test_first_two_readings_swapped_within_tolerance_are_both_used(name: str) ->
     )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="engine bug: CumulativeCleaner._insert returns LATE for a reading delayed within "
-    "the reorder tolerance past a bag change (t <= floor_t after _start_bag); it is "
-    "reported as 'older than the reorder tolerance', which it is not",
-)
 @pytest.mark.parametrize("name", CUMULATIVE)
 def test_reading_delayed_past_a_bag_change_within_tolerance_is_not_late(name: str) -> None:
     p, step = period(name), per_reading(name)
@@ -267,13 +254,6 @@ def test_small_fall_is_noise_and_nothing_is_counted_twice(name: str) -> None:
     assert (vol >= -1e-9).all()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="engine bug: a reading whose monotone-fit increment is 0 (a noise fall pooled "
-    "flat) is never spread, so its minutes stay UNKNOWN instead of MEASURED "
-    "(CumulativeCleaner._append else-branch + _refit skip spreads when inc == applied == 0); "
-    "hours on a noisy meter then show <90% measured and low-output rules would not run",
-)
 @pytest.mark.parametrize("name", CUMULATIVE)
 def test_noisy_readings_leave_no_unknown_minute_between_readings(name: str) -> None:
     p, step = period(name), per_reading(name, 20.0)  # invented low flow, 20 mL/h
@@ -361,13 +341,6 @@ def test_large_fall_confirmed_by_the_next_reading_is_an_inferred_bag_change(name
     assert m.total() >= true_volume(name, T0, t + 2 * p) - grams_rounding(name)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="engine bug: CumulativeCleaner._settle_held books a confirmed large fall as a bag "
-    "change whose whole new level (here 470-490 mL) is new output within one reading period, "
-    "far beyond max_flow_ml_h; a partial drain or a urine sample taken from the bag should "
-    "move the baseline, not add the remaining bag content",
-)
 @pytest.mark.parametrize("name", CUMULATIVE)
 def test_sample_taken_from_the_bag_adds_no_volume(name: str) -> None:
     """A nurse draws 30 mL from the bag's sampling port: the level falls and stays."""

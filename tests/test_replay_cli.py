@@ -138,12 +138,6 @@ def test_malformed_lines_are_reported_with_their_line_number_and_skipped(
     assert "3 malformed line(s) skipped" in out
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="shell bug: daemon/replay.py replay_file(warn=sys.stderr) binds the stream at import "
-    "time, so warnings ignore a redirected sys.stderr (capsys, contextlib.redirect_stderr); "
-    "use warn=None as default and look up sys.stderr at call time",
-)
 def test_malformed_line_warnings_follow_a_redirected_stderr(tmp_path: Path, capsys) -> None:
     log = tmp_path / "night.jsonl"
     make_log(log)

@@ -26,6 +26,7 @@ class _Point:
     raw: float
     fit: float = 0.0
     applied: float = 0.0  # increment currently spread over (previous point, t]
+    marked: bool = False  # its interval's minutes are marked measured
 
 
 def isotonic_fit(values: list[float], floor: float) -> list[float]:
@@ -76,6 +77,12 @@ class CumulativeCleaner:
         self.tail: list[_Point] = []
         self.history: deque[tuple[float, float]] = deque(maxlen=128)  # final (t, level)
         self.held: tuple[float, Reading, str] | None = None  # (t, reading, "spike"|"fall")
+        # the device's first reading, while no bag change has happened since: a
+        # reading delayed past it can still become the baseline
+        self.first: tuple[float, float] | None = None
+        # the last bag change: (t_before, level_before, t_change, unseen, new_level),
+        # so a reading of the old bag delayed past the change can refine the estimate
+        self.last_change: tuple[float, float, float, float, float] | None = None
 
     # --- public --------------------------------------------------------------
     @property
@@ -88,6 +95,7 @@ class CumulativeCleaner:
     def feed(self, t: float, r: Reading) -> list[Outcome]:
         if self.floor_t is None:
             self._start_bag(t, r.volume_ml)
+            self.first = (t, r.volume_ml)
             return [Outcome.BAG_CHANGE if r.bag_flag else Outcome.ACCEPTED]
         last_t = self.last_t
         assert last_t is not None
@@ -142,7 +150,9 @@ class CumulativeCleaner:
             _, level = self._level()
             confirms = confirms and r.volume_ml < level - self._noise
             if confirms:
-                self._bag_change(th, h.volume_ml)
+                # near zero: an emptying; higher: part of the bag was taken (a
+                # sample, a partial drain), so only the baseline moves
+                self._bag_change(th, h.volume_ml, emptied=h.volume_ml <= self._near_zero)
                 return Outcome.BAG_CHANGE_INFERRED
             return Outcome.ARTEFACT_DROPPED
         if confirms:
@@ -157,6 +167,7 @@ class CumulativeCleaner:
         if v >= level:  # common case: nothing earlier changes
             p.fit = v
             p.applied = v - level
+            p.marked = True
             self._spread(prev_t, t, p.applied)
             outcome = Outcome.ACCEPTED
         else:
@@ -178,9 +189,10 @@ class CumulativeCleaner:
         for p, f in zip(self.tail, fits, strict=True):
             p.fit = f
             inc = f - prev_fit
-            if inc != p.applied:
+            if inc != p.applied or not p.marked:  # a zero increment is still measured
                 self._spread(prev_t, p.t, inc - p.applied)
                 p.applied = inc
+                p.marked = True
             prev_t, prev_fit = p.t, f
 
     def _freeze(self) -> None:
@@ -193,8 +205,14 @@ class CumulativeCleaner:
     def _insert(self, t: float, r: Reading) -> Outcome:
         """A reading older than the newest one but within the reorder tolerance."""
         assert self.floor_t is not None
-        if t <= self.floor_t or r.bag_flag:
-            return Outcome.LATE  # before the last final point or a past bag change
+        if r.bag_flag:
+            return Outcome.LATE  # a past bag change cannot be replayed into a later bag
+        if self.first is not None and t < self.first[0]:
+            return self._before_first(t, r.volume_ml)
+        if self.last_change is not None and self.last_change[0] < t < self.last_change[2]:
+            return self._before_change(t, r.volume_ml)
+        if t <= self.floor_t:
+            return Outcome.LATE  # before a reading that is already final
         i = next(k for k, p in enumerate(self.tail) if p.t > t)
         lo = self.tail[i - 1].fit if i > 0 else self.floor_level
         hi = self.tail[i].raw
@@ -204,9 +222,36 @@ class CumulativeCleaner:
         for p in self.tail:  # undo the tail's spreads, whose intervals change
             self._spread(prev_t, p.t, -p.applied)
             p.applied = 0.0
+            p.marked = False
             prev_t = p.t
         self.tail.insert(i, _Point(t, r.volume_ml))
         self._refit()
+        return Outcome.REORDERED
+
+    def _before_first(self, t: float, v: float) -> Outcome:
+        """Delayed past the device's first reading: it becomes the baseline."""
+        assert self.first is not None
+        t1, v1 = self.first
+        if v > v1 + self._noise:
+            return Outcome.ARTEFACT_DROPPED
+        self._spread(t, t1, max(0.0, v1 - v))
+        self.first = (t, v)
+        return Outcome.REORDERED
+
+    def _before_change(self, t: float, v: float) -> Outcome:
+        """A reading of the old bag, delayed past the bag change: it measures part
+        of what the bag-change estimate guessed."""
+        assert self.last_change is not None
+        t_a, level_a, t_c, unseen, new_level = self.last_change
+        if v < level_a - self._noise:
+            return Outcome.ARTEFACT_DROPPED
+        measured = max(0.0, v - level_a)
+        self.series.spread(t_a, t_c, -unseen, ESTIMATED)  # take the old estimate back
+        self._spread(t_a, t, measured)
+        rate = self._flow_between(t_a, level_a, t, v)
+        rest = new_level if rate is None else max(new_level, rate * (t_c - t))
+        self.series.spread(t, t_c, rest, ESTIMATED)
+        self.last_change = (t, v, t_c, rest, new_level)
         return Outcome.REORDERED
 
     # --- bags ----------------------------------------------------------------
@@ -225,12 +270,21 @@ class CumulativeCleaner:
             return None
         return max(0.0, (v_end - start[1]) / (t_end - start[0]))
 
-    def _bag_change(self, t: float, new_level: float) -> None:
-        t_a, _ = self._level()
+    def _flow_between(self, t0: float, v0: float, t1: float, v1: float) -> float | None:
+        return None if t1 - t0 < self._min_dt else max(0.0, (v1 - v0) / (t1 - t0))
+
+    def _bag_change(self, t: float, new_level: float, emptied: bool = True) -> None:
+        """A new bag starts at t with `new_level`. The volume produced since the last
+        reading, which no reading shows, is estimated from the flow before it; when
+        the bag was emptied, the new level is all new output, so at least that."""
+        t_a, level_a = self._level()
         rate = self._flow_before()
-        unseen = new_level if rate is None else max(new_level, rate * (t - t_a))
+        guess = 0.0 if rate is None else rate * (t - t_a)
+        unseen = max(new_level, guess) if emptied else guess
         self.series.spread(t_a, t, unseen, ESTIMATED)
         self._start_bag(t, new_level)
+        self.first = None
+        self.last_change = (t_a, level_a, t, unseen, new_level)
 
 
 class IntervalCleaner:
