@@ -65,7 +65,7 @@ def drive(
 def replay_file(
     path: Path,
     engine: Engine | list[DeviceProfile],
-    warn: TextIO | None | Literal["stderr"] = "stderr",
+    warn: TextIO | Literal["stderr"] | None = "stderr",
     on_effects: Callable[[list[Effect]], None] | None = None,
     until: float | None = None,
 ) -> ReplayResult:
