@@ -6,7 +6,9 @@ Measures, in one run and on the same simulated payloads:
 - json.loads:  `json.loads(payload_bytes)` alone, the floor any JSON meter pays;
 - replay:      `daemon.replay.replay_file` on the same messages as a JSON Lines
                file (file read + log-line validation + engine);
-- line parse:  `json.loads` of every line of that file, the floor of replay.
+- line parse:  `json.loads` of every line of that file, the floor of replay;
+- with rules:  the engine path again with the default alert rules loaded, for
+               reference (the alarm engine's cost on top of intake).
 
 Each figure is the best of N runs (time.perf_counter), as readings per second.
 Benchmarks are not tests: nothing here asserts a time. All data is simulated.
@@ -32,6 +34,7 @@ from daemon.engine.engine import Engine
 from daemon.engine.profiles import DeviceProfile
 from daemon.profile_files import load_profiles
 from daemon.replay import replay_file
+from daemon.rule_files import load_policy, load_rules
 from simulator.meterlog import MeterFaults, constant, context_record, simulate, write_log
 
 GOAL = 100_000  # readings/s on one core (intake issue)
@@ -91,8 +94,8 @@ def best_of(repeats: int, setup: Callable[[], Any], run: Callable[[Any], None]) 
     return best
 
 
-def _fresh_engine(w: Workload) -> Engine:
-    eng = Engine(w.profiles)
+def _fresh_engine(w: Workload, rules: bool = False) -> Engine:
+    eng = Engine(w.profiles, load_rules(), load_policy()) if rules else Engine(w.profiles)
     for t, topic, payload in w.contexts:
         eng.step(topic, payload, t)
     return eng
@@ -131,7 +134,7 @@ class Row:
         return self.readings / self.seconds
 
 
-def measure(w: Workload, repeats: int, tmp: Path) -> list[Row]:
+def measure(w: Workload, repeats: int, tmp: Path, with_rules: bool = True) -> list[Row]:
     n = len(w.messages)
     rows = [
         Row("engine: Engine.step(topic, bytes, now)", best_of(
@@ -154,6 +157,9 @@ def measure(w: Workload, repeats: int, tmp: Path) -> list[Row]:
     rows.append(Row("replay: replay_file(JSON Lines)", best_of(repeats, lambda: None, replay), n))
     rows.append(Row("baseline: read + json.loads per line", best_of(
         repeats, lambda: None, lines), n))  # fmt: skip
+    if with_rules:
+        rows.append(Row("engine + default alert rules", best_of(
+            repeats, lambda: _fresh_engine(w, rules=True), _engine_run(w)), n))  # fmt: skip
     return rows
 
 
@@ -181,11 +187,13 @@ def profile_engine(w: Workload, top: int = 15) -> str:
     return out.getvalue()
 
 
-def report(rows: list[Row], counts: dict[str, int], readings: int, meters: int) -> str:
-    eng, base, rep, lines = rows
+def report(
+    rows: list[Row], counts: dict[str, int], readings: int, meters: int, repeats: int
+) -> str:
+    eng, base, rep, lines = rows[:4]
     out = [
         f"Intake benchmark: {PROFILE}, {readings:,} messages over {meters} bound meters "
-        "(simulated), best of runs, one core",
+        f"(simulated), best of {repeats} runs, one process",
         "",
         f"  {'path':<42} {'seconds':>8} {'readings/s':>12}",
     ]
@@ -195,6 +203,10 @@ def report(rows: list[Row], counts: dict[str, int], readings: int, meters: int) 
         "",
         f"  engine cost / json.loads cost:     {eng.seconds / base.seconds:6.1f} x",
         f"  replay cost / line-parse cost:     {rep.seconds / lines.seconds:6.1f} x",
+    ]
+    if len(rows) > 4:
+        out.append(f"  engine with rules / without:       {rows[4].seconds / eng.seconds:6.1f} x")
+    out += [
         f"  goal: >= {GOAL:,} readings/s (engine path): "
         + ("met" if eng.rate >= GOAL else f"NOT met ({eng.rate / GOAL:.0%} of goal)"),
         "",
@@ -209,11 +221,12 @@ def main(argv: Sequence[str] | None = None) -> int:
     ap.add_argument("--meters", type=int, default=20)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--profile", action="store_true", help="also print a cProfile of the engine")
+    ap.add_argument("--no-rules", action="store_true", help="skip the engine-with-rules row")
     args = ap.parse_args(argv)
     w = make_workload(args.readings, args.meters)
     with tempfile.TemporaryDirectory() as tmp:
-        rows = measure(w, args.repeats, Path(tmp))
-    print(report(rows, check_counts(w), len(w.messages), args.meters))
+        rows = measure(w, args.repeats, Path(tmp), with_rules=not args.no_rules)
+    print(report(rows, check_counts(w), len(w.messages), args.meters, args.repeats))
     if args.profile:
         print("\ncProfile of the engine path (sorted by own time):")
         print(profile_engine(w))
