@@ -64,6 +64,8 @@ def _column_getter(ref: str | int) -> Callable[[Any], Any]:
 def _number(value: Any) -> float | None:
     if isinstance(value, bool):
         return None
+    if isinstance(value, str) and "_" in value:
+        return None  # float() takes "1_000"; no meter means that
     if isinstance(value, int | float | str):
         try:  # a JSON integer can be too large for a float
             f = float(value.strip() if isinstance(value, str) else value)

@@ -197,7 +197,8 @@ class Engine:
         self._remember(dev, r)
         assert dev.cleaner is not None
         outcomes = dev.cleaner.feed(t, r)
-        if dev.latest_t is None or t > dev.latest_t:
+        # a refused reading must not move the lateness horizon (a held one does)
+        if outcomes[-1] not in _REFUSED and (dev.latest_t is None or t > dev.latest_t):
             dev.latest_t = t
         bed = self.beds[dev.bed] if dev.bed else None
         if bed is not None and outcomes[-1] not in _NOT_IN_SERIES:
@@ -444,6 +445,14 @@ class Engine:
 _NOT_IN_SERIES = frozenset(
     {
         Outcome.SPIKE_HELD,
+        Outcome.ARTEFACT_DROPPED,
+        Outcome.LATE,
+        Outcome.IMPLAUSIBLE_FLOW,
+        Outcome.CONFLICTING_DUPLICATE,
+    }
+)
+_REFUSED = frozenset(
+    {
         Outcome.ARTEFACT_DROPPED,
         Outcome.LATE,
         Outcome.IMPLAUSIBLE_FLOW,
