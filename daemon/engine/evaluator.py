@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from .alarms import AlarmEvent, Kind, State
 from .bedstate import BedState
 from .checks import BedView, DeviceSeen, evaluate
-from .lifecycle import AlarmBook, AlarmView
+from .lifecycle import AlarmBook
 from .rules import RuleDef
 
 # Alarm states that open a gate for dependent rules (replacement, reminders).
@@ -52,15 +52,13 @@ class Evaluator:
         ward = bed.context.ward
         disabled = set(bed.context.disabled_rules)
         stage = -1
-        views: list[AlarmView] = []
-        opened: set[str] = set()
+        opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
         for rule in self.rules:
             spec = self.specs[rule.id]
             if self.stages[rule.id] != stage:  # an earlier stage may have opened or closed alarms
                 stage = self.stages[rule.id]
-                views = self.book.active(bed.bed_id)
-                opened = {a.rule for a in views}  # rules whose record must hear every answer
+                opened = self.book.open_rules(bed.bed_id)  # these must hear every answer
                 suppressor = self.book.suppressor(bed.bed_id)
             if rule.id in disabled:
                 if rule.id in opened:
@@ -68,9 +66,7 @@ class Evaluator:
                     out += self.book.update(now, bed.bed_id, ward, spec, False, off, {})
                 continue
             gates = {
-                a.rule: a.activated_at if a.activated_at is not None else a.onset
-                for a in views
-                if a.rule in rule.while_active and a.state in OPEN
+                g: opened[g][1] for g in rule.while_active if g in opened and opened[g][0] in OPEN
             }
             if rule.while_active and not gates:
                 if rule.id in opened:

@@ -238,6 +238,7 @@ class AlarmBook:
         self._now: float | None = None
         self._slots: dict[tuple[str, str], _Slot] = {}
         self._live: dict[str, _Slot] = {}  # alarm id -> slot, in onset order
+        self._by_bed: dict[str, dict[str, _Slot]] = {}  # bed -> its live slots, by alarm id
         # next due time per live alarm, and their minimum (recomputed only when one
         # of them changed): next_due is asked after every message
         self._dues: dict[str, float] = {}
@@ -355,23 +356,30 @@ class AlarmBook:
 
     def active(self, bed: str | None = None) -> list[AlarmView]:
         """Current alarms (pending to acknowledged), most urgent first."""
-        views = [
-            _view(s.record)
-            for s in self._live.values()
-            if s.record is not None and (bed is None or s.bed == bed)
-        ]
+        slots = self._live.values() if bed is None else self._by_bed.get(bed, {}).values()
+        views = [_view(s.record) for s in slots if s.record is not None]
         views.sort(key=lambda v: (-URGENCY[v.priority], v.onset, v.alarm_id))
         return views
+
+    def open_rules(self, bed: str) -> dict[str, tuple[State, float]]:
+        """Rule id -> (state, activation or onset time) of the bed's current alarms:
+        the cheap question the evaluator asks every minute."""
+        out: dict[str, tuple[State, float]] = {}
+        for s in self._by_bed.get(bed, {}).values():
+            r = s.record
+            if r is not None:
+                at = r.activated_at if r.activated_at is not None else r.onset
+                out[r.spec.rule_id] = (r.state, at)
+        return out
 
     def suppressor(self, bed: str) -> str | None:
         """The alarm id that suppresses `bed`'s low-output alarms: its earliest
         active, unacknowledged technical alarm, or None."""
         found: tuple[float, str] | None = None
-        for s in self._live.values():
+        for s in self._by_bed.get(bed, {}).values():
             r = s.record
             if (
                 r is not None
-                and s.bed == bed
                 and r.spec.kind is Kind.TECHNICAL
                 and r.state in _ANNUNCIATED
                 and (found is None or (r.onset, r.alarm_id) < found)
@@ -399,6 +407,7 @@ class AlarmBook:
             book._slots[(slot.bed, slot.rule)] = slot
             if slot.record is not None:
                 book._live[slot.record.alarm_id] = slot
+                book._by_bed.setdefault(slot.bed, {})[slot.record.alarm_id] = slot
                 due = book._due(slot)
                 book._set_due(slot.record.alarm_id, due[0][0] if due else None)
         return book
@@ -437,6 +446,7 @@ class AlarmBook:
         )  # fmt: skip
         slot.record = rec
         self._live[alarm_id] = slot
+        self._by_bed.setdefault(slot.bed, {})[alarm_id] = slot
         if sup is not None:
             trig = T.ONSET_SUPPRESSED
         else:
@@ -598,6 +608,7 @@ class AlarmBook:
             slot.record = None
             slot.ended_id = rec.alarm_id
             del self._live[rec.alarm_id]
+            del self._by_bed[slot.bed][rec.alarm_id]
             self._set_due(rec.alarm_id, None)
         return True
 

@@ -153,7 +153,22 @@ class MinuteSeries:
         d, n = self._dirty, self._n
         if d >= n:
             return
-        self._cum_vol[d + 1 : n + 1] = (self._cum_vol[d] + np.cumsum(self._vol[d:n])).tolist()
+        if n - d <= 16:  # the usual case, a few recent minutes: plain Python is cheaper
+            cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
+            v, m, e = cv[d], cm[d], ce[d]
+            for i, (x, st) in enumerate(
+                zip(self._vol[d:n].tolist(), self._state[d:n].tolist(), strict=True), d + 1
+            ):
+                v += x
+                m += st == MEASURED
+                e += st == ESTIMATED
+                cv[i], cm[i], ce[i] = v, m, e
+            self._dirty = n
+            return
+        # Summed left to right from the previous prefix, exactly as the loop above,
+        # so a window's sum never depends on how refreshes happened to be chunked.
+        vol = np.concatenate(([self._cum_vol[d]], self._vol[d:n]))
+        self._cum_vol[d + 1 : n + 1] = np.cumsum(vol)[1:].tolist()
         st = self._state[d:n]
         self._cum_meas[d + 1 : n + 1] = (self._cum_meas[d] + np.cumsum(st == MEASURED)).tolist()
         self._cum_est[d + 1 : n + 1] = (self._cum_est[d] + np.cumsum(st == ESTIMATED)).tolist()
