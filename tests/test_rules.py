@@ -271,13 +271,16 @@ def test_a_steady_201_ml_per_hour_for_two_hours_is_pod() -> None:
 
 
 @pytest.mark.xfail(strict=True, reason=WINDOW_END_BUG)
-def test_pod_hourly_needs_two_full_hours_of_data() -> None:
-    """205 mL/h from the first reading: two hours above 200 exist only at 02:00."""
-    # source: Halbgewachs & Domes, Can Fam Physician 2015
+def test_pod_hourly_from_the_first_reading() -> None:
+    """205 mL/h from the first reading. High-output rules count any window (the volume
+    counted is real, DESIGN §3): at 01:59 the rolling hour (23:59, 00:59] holds 59 minutes
+    of output, 201.6 mL, and (00:59, 01:59] 205 mL; a minute earlier the older one holds
+    198.2 mL. So the criterion is first met at 01:59, not earlier."""
+    # source: Halbgewachs & Domes, Can Fam Physician 2015 (> 200 mL/h for 2 consecutive h)
     bed = started(80.0)
     bed.hours([205.0] * 3)
     ev = bed.ward.first("pod-hourly")
-    assert ev is not None and ev.time == at(2)
+    assert ev is not None and ev.time == at(1, 59)
 
 
 # --- hypovolaemia risk (E7) ------------------------------------------------------------
