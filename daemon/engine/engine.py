@@ -10,7 +10,7 @@ import bisect
 import heapq
 import json
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
@@ -36,6 +36,24 @@ from .series import MinuteSeries
 from .timefmt import as_epoch
 
 DEDUP_HORIZON_S = 86400.0
+
+
+@dataclass(frozen=True, slots=True)
+class ReadingTrace:
+    """What happened to one meter message, for an optional observer (review tools).
+
+    `outcomes` has two items when the message also settled a reading held before
+    it (the first is that earlier reading's final outcome).
+    """
+
+    received: float
+    topic: str
+    device_id: str
+    bed: str | None
+    device_time: float | None  # None when the message never became a reading
+    volume_ml: float | None
+    seq: int | None
+    outcomes: tuple[Outcome, ...]
 
 
 @dataclass(slots=True)
@@ -83,7 +101,9 @@ class Engine:
         policy: EscalationPolicy | None = None,
         topic_prefix: str = "hourwatch",
         ack_validity_s: int = 3600,
+        observe: Callable[[ReadingTrace], None] | None = None,
     ) -> None:
+        self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
         names = [p.name for p in self.profiles]
         if len(set(names)) != len(names):
@@ -155,11 +175,21 @@ class Engine:
         result = decoder.decode(device_id, payload)
         if isinstance(result, Rejected):
             dev.quality.add(result.reason)
+            if self.observe is not None:
+                self.observe(ReadingTrace(now, topic, device_id, dev.bed, None, None, None,
+                                          (result.reason,)))  # fmt: skip
             return [RejectedInput(now, topic, device_id, result.reason, result.detail)]
         if dev.cleaner is None:
             dev.quality.add(Outcome.UNBOUND)
+            if self.observe is not None:
+                trace = ReadingTrace(now, topic, device_id, None, result.device_time,
+                                     result.volume_ml, result.seq, (Outcome.UNBOUND,))  # fmt: skip
+                self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
+        if self.observe is not None:
+            self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
+                                      result.volume_ml, result.seq, tuple(outcomes)))  # fmt: skip
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
