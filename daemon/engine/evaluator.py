@@ -7,11 +7,13 @@ is open on the bed (replacement, reminders).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
-from .alarms import AlarmEvent, Kind, State
+from .alarms import AlarmEvent, Kind, RuleSpec, State
 from .bedstate import BedState
-from .checks import BedView, DeviceSeen, evaluate
+from .checks import CHECKS, BedView, DeviceSeen, Finding
 from .lifecycle import AlarmBook
 from .rules import RuleDef
 
@@ -36,11 +38,20 @@ def _order(rule: RuleDef) -> tuple[int, str]:
     return (2 if rule.while_active else 1), rule.id
 
 
+@dataclass(frozen=True, slots=True)
+class _Plan:
+    """A rule prepared once: what run() needs without looking it up every minute."""
+
+    rule: RuleDef
+    spec: RuleSpec
+    stage: int
+    check: Callable[[Any, BedView], Finding]
+
+
 class Evaluator:
     def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
-        self.specs = {r.id: r.spec() for r in self.rules}
-        self.stages = {r.id: _order(r)[0] for r in self.rules}
+        self.plans = [_Plan(r, r.spec(), _order(r)[0], CHECKS[type(r.check)]) for r in self.rules]
         self.book = book
 
     def run(
@@ -49,42 +60,46 @@ class Evaluator:
         """Evaluate every rule on the bed; return events and the next due time."""
         out: list[AlarmEvent | Notice] = []
         due: float | None = None
-        ward = bed.context.ward
-        disabled = set(bed.context.disabled_rules)
+        bed_id, ward = bed.bed_id, bed.context.ward
+        disabled = bed.context.disabled_rules
+        book = self.book
+        view = BedView(bed, now, devices, {})
         stage = -1
         opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
-        for rule in self.rules:
-            spec = self.specs[rule.id]
-            if self.stages[rule.id] != stage:  # an earlier stage may have opened or closed alarms
-                stage = self.stages[rule.id]
-                opened = self.book.open_rules(bed.bed_id)  # these must hear every answer
-                suppressor = self.book.suppressor(bed.bed_id)
-            if rule.id in disabled:
-                if rule.id in opened:
+        for plan in self.plans:
+            rule, spec = plan.rule, plan.spec
+            rid = spec.rule_id
+            if plan.stage != stage:  # an earlier stage may have opened or closed alarms
+                stage = plan.stage
+                opened = book.open_rules(bed_id)  # these must hear every answer
+                suppressor = book.suppressor(bed_id)
+            if disabled and rid in disabled:
+                if rid in opened:
                     off = "disabled for this bed"
-                    out += self.book.update(now, bed.bed_id, ward, spec, False, off, {})
+                    out += book.update(now, bed_id, ward, spec, False, off, {})
                 continue
-            gates = {
-                g: opened[g][1] for g in rule.while_active if g in opened and opened[g][0] in OPEN
-            }
-            if rule.while_active and not gates:
-                if rule.id in opened:
-                    idle = "no high-output alarm open"
-                    out += self.book.update(now, bed.bed_id, ward, spec, False, idle, {})
-                continue
-            f = evaluate(rule, BedView(bed, now, devices, gates))
+            if rule.while_active:
+                gates = {g: opened[g][1] for g in rule.while_active
+                         if g in opened and opened[g][0] in OPEN}  # fmt: skip
+                if not gates:
+                    if rid in opened:
+                        idle = "no high-output alarm open"
+                        out += book.update(now, bed_id, ward, spec, False, idle, {})
+                    continue
+                view.gates = gates
+            f = plan.check(rule.check, view)
             if f.skipped is not None and f.skipped not in bed.notices:
                 bed.notices.add(f.skipped)
-                out.append(Notice(now, bed.bed_id, ward, f.skipped,
-                                  f"{rule.id} and other weight-based rules are not running: "
+                out.append(Notice(now, bed_id, ward, f.skipped,
+                                  f"{rid} and other weight-based rules are not running: "
                                   "no body weight in the bed context"))  # fmt: skip
-            if f.condition or rule.id in opened:
+            if f.condition or rid in opened:
                 summary, evidence = f.explain()
-                out += self.book.update(
-                    now, bed.bed_id, ward, spec, f.condition, summary, evidence,
-                    suppressed_by=suppressor if rule.low_output else None, priority=f.priority,
+                out += book.update(
+                    now, bed_id, ward, spec, f.condition, summary, evidence,
+                    suppressed_by=suppressor if spec.low_output else None, priority=f.priority,
                 )  # fmt: skip
-            if f.due is not None and f.due > now:
-                due = f.due if due is None else min(due, f.due)
+            if f.due is not None and f.due > now and (due is None or f.due < due):
+                due = f.due
         return out, due
