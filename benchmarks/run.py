@@ -10,14 +10,17 @@ import platform
 import sys
 from collections.abc import Sequence
 
-from benchmarks import bench_intake
+from benchmarks import bench_intake, bench_journal
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     print(f"Python {platform.python_version()} on {platform.machine()}, {platform.system()}")
     print()
-    return bench_intake.main(args)
+    rc = bench_intake.main(args)
+    print()
+    rc = bench_journal.main([]) or rc
+    return rc
 
 
 if __name__ == "__main__":

@@ -1,4 +1,4 @@
-"""Where recorded messages come from: a JSON Lines log (or, later, the journal)."""
+"""Where recorded messages come from: a JSON Lines log or a journal file."""
 
 from __future__ import annotations
 
@@ -6,11 +6,26 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from .errors import UserError
+from .journal import SQLITE_HEADER, journal_items
 from .logfile import BadLine, LogRecord, read_log
 
 
+def is_sqlite(path: Path) -> bool:
+    """An SQLite file, told by its 16-byte header (a journal, or another database)."""
+    try:
+        with path.open("rb") as fh:
+            return fh.read(len(SQLITE_HEADER)) == SQLITE_HEADER
+    except OSError:
+        return False
+
+
 def open_source(path: Path) -> Iterator[tuple[int, LogRecord] | BadLine]:
-    """Records in receive order from a log file; one-line UserError if unusable."""
+    """Records in receive order from a log file or a journal; one-line UserError if unusable.
+
+    From a log, the int is the line number; from a journal, the message id (a message the
+    log format cannot hold comes as a BadLine with its id)."""
     if not path.is_file():
         raise UserError(f"{path}: no such file")
+    if is_sqlite(path):
+        return journal_items(path)
     return read_log(path)

@@ -1,0 +1,97 @@
+"""`hourwatch export JOURNAL --from ISO --to ISO [--bed BED] [--out FILE]`.
+
+Writes the journal's messages received in [--from, --to) in the JSON Lines log format
+(`{"time", "topic", "payload"}` per line, as daemon/logfile.py reads), so `hourwatch replay`
+gives the same output for the export as for the journal itself. Times go out to the
+microsecond the journal holds. Never writes to the journal (read-only connection).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+from typing import TextIO
+
+from ..engine.timefmt import TimeError, iso, parse_iso
+from ..errors import UserError
+from ..journal import journal_items
+from ..logfile import BadLine, LogRecord
+
+
+def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    e = sub.add_parser("export", help="write a journal's messages as a JSON Lines log")
+    e.add_argument("journal", type=Path, help="journal file of `hourwatch run`")
+    e.add_argument(
+        "--from", dest="t_from", required=True, help="ISO-8601 receive time with offset (kept)"
+    )
+    e.add_argument("--to", dest="t_to", required=True, help="ISO-8601 receive time (excluded)")
+    e.add_argument("--bed", default=None, help="only this bed's messages (topics, meters, acks)")
+    e.add_argument("--prefix", default="hourwatch", help="topic prefix of bed and ack topics")
+    e.add_argument("--out", type=Path, default=None, help="write here instead of stdout")
+    e.set_defaults(run=run)
+
+
+def _time(option: str, text: str) -> float:
+    try:
+        return parse_iso(text)
+    except TimeError as exc:
+        raise UserError(f"{option}: {exc}") from None
+
+
+def log_line(rec: LogRecord) -> str:
+    return json.dumps({"time": iso(rec.time.timestamp()), "topic": rec.topic,
+                       "payload": rec.payload})  # fmt: skip
+
+
+def _write(items: Iterator[tuple[int, LogRecord] | BadLine], out: TextIO, name: str) -> int:
+    n = 0
+    for item in items:
+        if isinstance(item, BadLine):
+            print(f"{name}: message {item.line_no} not exported: {item.reason}", file=sys.stderr)
+            continue
+        out.write(log_line(item[1]) + "\n")
+        n += 1
+    return n
+
+
+def run(args: argparse.Namespace) -> int:
+    t0 = _time("--from", args.t_from)
+    t1 = _time("--to", args.t_to)
+    if t1 <= t0:
+        raise UserError(f"--to ({args.t_to}) must be later than --from ({args.t_from})")
+    if not args.journal.is_file():
+        raise UserError(f"{args.journal}: no such journal file")
+    items = journal_items(args.journal, t0, t1, args.bed, prefix=args.prefix)
+    if args.out is None:
+        n = _write(items, sys.stdout, str(args.journal))
+        sys.stdout.flush()
+    else:
+        n = _write_file(items, args.out, str(args.journal))
+    what = f" for bed {args.bed}" if args.bed else ""
+    print(f"{n} message(s){what} exported from {args.journal}", file=sys.stderr)
+    return 0
+
+
+def _write_file(items: Iterator[tuple[int, LogRecord] | BadLine], out: Path, name: str) -> int:
+    """All or nothing: a temporary file beside --out, renamed over it when complete."""
+    folder = out.parent if str(out.parent) else Path(".")
+    try:
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{out.name}.", suffix=".part")
+    except OSError as exc:
+        raise UserError(f"{out}: cannot write: {exc.strerror}") from None
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            n = _write(items, fh, name)
+        os.replace(tmp, out)
+    except OSError as exc:
+        Path(tmp).unlink(missing_ok=True)
+        raise UserError(f"{out}: cannot write: {exc.strerror}") from None
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return n
