@@ -1,0 +1,229 @@
+"""Service configuration: one TOML file, validated by pydantic, with command-line and
+environment overrides. A bad value is one line naming the key (exit status 2).
+
+Secrets come from the environment or a password file rather than the config file where
+possible: HOURWATCH_MQTT_USERNAME, HOURWATCH_MQTT_PASSWORD, HOURWATCH_MQTT_PASSWORD_FILE.
+"""
+
+from __future__ import annotations
+
+import os
+import tomllib
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SecretStr,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+
+from .errors import UserError, describe_validation
+
+ENV_USERNAME = "HOURWATCH_MQTT_USERNAME"
+ENV_PASSWORD = "HOURWATCH_MQTT_PASSWORD"
+ENV_PASSWORD_FILE = "HOURWATCH_MQTT_PASSWORD_FILE"
+
+Port = Annotated[int, Field(ge=1, le=65535)]
+TOPIC_PREFIX = r"^[A-Za-z0-9_\-]+(/[A-Za-z0-9_\-]+)*$"  # no wildcards, no empty level
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class TlsConfig(_Strict):
+    ca_file: Path  # the CA that signed the broker's certificate
+    cert_file: Path | None = None  # client certificate, when the broker asks for one
+    key_file: Path | None = None
+
+    @model_validator(mode="after")
+    def _pair(self) -> TlsConfig:
+        if (self.cert_file is None) != (self.key_file is None):
+            raise ValueError("cert_file and key_file go together")
+        for p in (self.ca_file, self.cert_file, self.key_file):
+            if p is not None and not p.is_file():
+                raise ValueError(f"no such file: {p}")
+        return self
+
+
+class BrokerConfig(_Strict):
+    host: Annotated[str, Field(min_length=1, max_length=253)] = "127.0.0.1"
+    port: Port = 1883
+    protocol: Literal["3.1.1", "5"] = "5"
+    # Fixed, so the broker keeps our session (and queues readings) across restarts.
+    client_id: Annotated[str, Field(min_length=1, max_length=128)] = "hourwatch"
+    keepalive_s: Annotated[int, Field(ge=5, le=3600)] = 30
+    # MQTT 5 only: how long the broker keeps the session while we are away.
+    session_expiry_s: Annotated[int, Field(ge=60, le=0xFFFFFFFE)] = 7 * 86400
+    reconnect_min_s: Annotated[int, Field(ge=1, le=60)] = 1
+    reconnect_max_s: Annotated[int, Field(ge=1, le=600)] = 30
+    username: Annotated[str, Field(min_length=1, max_length=256)] | None = None
+    password: SecretStr | None = None
+    password_file: Path | None = None
+    tls: TlsConfig | None = None
+
+    @field_validator("protocol", mode="before")
+    @classmethod
+    def _protocol_text(cls, v: object) -> object:
+        return str(v) if isinstance(v, int | float) and not isinstance(v, bool) else v
+
+    @model_validator(mode="after")
+    def _consistent(self) -> BrokerConfig:
+        if self.password is not None and self.password_file is not None:
+            raise ValueError("give password or password_file, not both")
+        if self.reconnect_max_s < self.reconnect_min_s:
+            raise ValueError("reconnect_max_s must be at least reconnect_min_s")
+        return self
+
+    def secret(self) -> str | None:
+        """The password, read from its file when one is named."""
+        if self.password is not None:
+            return self.password.get_secret_value()
+        if self.password_file is not None:
+            try:
+                text = self.password_file.read_text(encoding="utf-8")
+            except OSError as exc:
+                raise UserError(
+                    f"broker.password_file: cannot read {self.password_file}: {exc.strerror}"
+                ) from None
+            return text.rstrip("\r\n")
+        return None
+
+
+class JournalConfig(_Strict):
+    path: Path = Path("hourwatch-journal.db")
+    retention_days: Annotated[float, Field(gt=0, le=3650)] = 30.0
+
+
+class HealthConfig(_Strict):
+    # "host:port"; port 0 picks a free one (logged); "" turns the endpoint off
+    listen: str = "127.0.0.1:9108"
+
+    @field_validator("listen")
+    @classmethod
+    def _address(cls, v: str) -> str:
+        if v:
+            split_address(v, allow_zero=True)
+        return v
+
+
+class PublishConfig(_Strict):
+    # An alarm not confirmed (PUBACK) this long after it was raised is a technical
+    # alarm of the service itself.
+    confirm_timeout_s: Annotated[float, Field(gt=0, le=3600)] = 30.0
+    # Retained bed state is refreshed at most this often unless an alarm changes.
+    state_interval_s: Annotated[float, Field(ge=0, le=3600)] = 10.0
+
+
+class RecoveryConfig(_Strict):
+    # Re-fed on restart beyond the longest rule window, so that alarm episodes that
+    # began just before the window start are rebuilt with the same ids.
+    margin_s: Annotated[float, Field(ge=0, le=7 * 86400)] = 3600.0
+
+
+class ServiceConfig(_Strict):
+    schema_version: Literal[1] = Field(1, alias="schema")
+    topic_prefix: Annotated[str, Field(pattern=TOPIC_PREFIX, max_length=128)] = "hourwatch"
+    profiles: Path | None = None  # folder; None = the profiles shipped with Hourwatch
+    rules: Path | None = None  # folder with escalation.toml; None = the shipped rules
+    log_level: Literal["debug", "info", "warning", "error"] = "info"
+    broker: BrokerConfig = BrokerConfig()
+    journal: JournalConfig = JournalConfig()
+    health: HealthConfig = HealthConfig()
+    publish: PublishConfig = PublishConfig()
+    recovery: RecoveryConfig = RecoveryConfig()
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+def split_address(text: str, *, allow_zero: bool = False) -> tuple[str, int]:
+    """'host:port' (or '[v6]:port') to a pair; ValueError with a plain message."""
+    host, sep, port_text = text.strip().rpartition(":")
+    host = host.strip("[]")
+    if not sep or not host or not port_text.isdigit():
+        raise ValueError(f"expected HOST:PORT, got {text!r}")
+    port = int(port_text)
+    if not ((allow_zero and port == 0) or 1 <= port <= 65535):
+        raise ValueError(f"port out of range in {text!r}")
+    return host, port
+
+
+def _resolve(base: Path, data: dict[str, Any]) -> None:
+    """Relative paths in a config file are relative to the file, not to the cwd."""
+
+    def fix(table: Mapping[str, Any] | None, keys: tuple[str, ...]) -> None:
+        if not isinstance(table, dict):
+            return
+        for k in keys:
+            v = table.get(k)
+            if isinstance(v, str) and v and not Path(v).is_absolute():
+                table[k] = str(base / v)
+
+    fix(data, ("profiles", "rules"))
+    fix(data.get("journal"), ("path",))
+    broker = data.get("broker")
+    fix(broker, ("password_file",))
+    if isinstance(broker, dict):
+        fix(broker.get("tls"), ("ca_file", "cert_file", "key_file"))
+
+
+def _set(data: dict[str, Any], dotted: str, value: object) -> None:
+    *parents, last = dotted.split(".")
+    for key in parents:
+        sub = data.get(key)
+        if not isinstance(sub, dict):
+            sub = data[key] = {}
+        data = sub
+    data[last] = value
+
+
+def load_config(
+    path: Path | None = None,
+    *,
+    broker: str | None = None,
+    journal: Path | None = None,
+    env: Mapping[str, str] | None = None,
+) -> ServiceConfig:
+    """The config file (or the defaults), then command-line options, then secrets from
+    the environment. Raises UserError with one line naming the key."""
+    env = os.environ if env is None else env
+    where = str(path) if path is not None else "configuration"
+    data: dict[str, Any] = {}
+    if path is not None:
+        try:
+            data = tomllib.loads(path.read_text(encoding="utf-8"))
+        except OSError as exc:
+            raise UserError(f"{path}: cannot read: {exc.strerror}") from None
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+            raise UserError(f"{path}: not valid TOML: {exc}") from None
+        _resolve(path.resolve().parent, data)
+    if broker is not None:
+        try:
+            host, port = split_address(broker)
+        except ValueError as exc:
+            raise UserError(f"--broker: {exc}") from None
+        _set(data, "broker.host", host)
+        _set(data, "broker.port", port)
+    if journal is not None:
+        _set(data, "journal.path", str(journal))
+    if env.get(ENV_USERNAME):
+        _set(data, "broker.username", env[ENV_USERNAME])
+    if env.get(ENV_PASSWORD):
+        _set(data, "broker.password", env[ENV_PASSWORD])
+        _set(data, "broker.password_file", None)
+    elif env.get(ENV_PASSWORD_FILE):
+        _set(data, "broker.password_file", env[ENV_PASSWORD_FILE])
+        _set(data, "broker.password", None)
+    try:
+        cfg = ServiceConfig.model_validate(data)
+    except ValidationError as exc:
+        raise UserError(describe_validation(Path(where), exc).replace("\n", " ")) from None
+    if cfg.broker.password_file is not None:
+        cfg.broker.secret()  # unreadable file: say so now, not at the first connect
+    return cfg
