@@ -7,11 +7,11 @@ import sys
 from collections.abc import Sequence
 
 from .caution import CAUTION
-from .commands import check_profiles, export, replay
+from .commands import check_profiles, export, replay, run
 from .errors import UserError
 
 # Each command module adds its own parser; add new commands to this list.
-COMMANDS = [replay, check_profiles, export]
+COMMANDS = [replay, check_profiles, export, run]
 
 
 def _parser() -> argparse.ArgumentParser:

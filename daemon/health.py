@@ -1,0 +1,171 @@
+"""Counters in Prometheus text format, and a tiny HTTP endpoint for /health and /metrics.
+
+stdlib only (http.server in a thread): an operator's probe needs nothing installed.
+"""
+
+from __future__ import annotations
+
+import bisect
+import json
+import threading
+from collections import Counter
+from collections.abc import Callable, Iterable
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+# seconds, from a message's arrival at the client to its effects being journaled
+LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
+
+
+class Histogram:
+    __slots__ = ("buckets", "count", "counts", "total")
+
+    def __init__(self, buckets: tuple[float, ...] = LATENCY_BUCKETS) -> None:
+        self.buckets = buckets
+        self.counts = [0] * (len(buckets) + 1)
+        self.count = 0
+        self.total = 0.0
+
+    def observe(self, v: float) -> None:
+        self.counts[bisect.bisect_left(self.buckets, v)] += 1
+        self.count += 1
+        self.total += v
+
+    def quantile(self, q: float) -> float | None:
+        """Upper bound of the bucket holding the q-quantile (coarse, for logs)."""
+        if not self.count:
+            return None
+        need, seen = q * self.count, 0
+        for i, n in enumerate(self.counts):
+            seen += n
+            if seen >= need:
+                return self.buckets[i] if i < len(self.buckets) else float("inf")
+        return float("inf")
+
+
+class Metrics:
+    """Service counters. Written by the worker and the MQTT thread, read by the HTTP
+    thread; one lock keeps the numbers of a scrape consistent."""
+
+    def __init__(self) -> None:
+        self.lock = threading.Lock()
+        self.received = 0
+        self.journaled = 0
+        self.acked = 0
+        self.stale_acks = 0  # acks dropped: the message came on an earlier connection
+        self.rejected: Counter[str] = Counter()
+        self.alarms: Counter[tuple[str, str]] = Counter()  # (rule, state) journaled
+        self.alarms_published = 0  # confirmed by the broker (PUBACK)
+        self.publish_failures = 0
+        self.connects = 0
+        self.disconnects = 0
+        self.latency = Histogram()
+        self.recovery_s = 0.0
+        self.recovered_messages = 0
+
+    def render(self, gauges: dict[str, float], labelled: Iterable[tuple[str, str, float]]) -> str:
+        """Prometheus text exposition; `gauges` and `labelled` are sampled by the caller."""
+        out: list[str] = []
+
+        def metric(name: str, kind: str, help_: str, value: float | None = None) -> None:
+            out.append(f"# HELP hourwatch_{name} {help_}")
+            out.append(f"# TYPE hourwatch_{name} {kind}")
+            if value is not None:
+                out.append(f"hourwatch_{name} {value:g}")
+
+        with self.lock:
+            metric("messages_received_total", "counter", "MQTT messages received",
+                   self.received)  # fmt: skip
+            metric("messages_journaled_total", "counter", "messages written durably",
+                   self.journaled)  # fmt: skip
+            metric("messages_acked_total", "counter", "messages acknowledged to the broker",
+                   self.acked)  # fmt: skip
+            metric("stale_acks_dropped_total", "counter",
+                   "acks dropped because the message came on an earlier connection",
+                   self.stale_acks)  # fmt: skip
+            metric("rejected_total", "counter", "inputs not used, by reason")
+            for reason, n in sorted(self.rejected.items()):
+                out.append(f'hourwatch_rejected_total{{reason="{_esc(reason)}"}} {n}')
+            metric("alarm_events_total", "counter", "alarm lifecycle events, by rule and state")
+            for (rule, state), n in sorted(self.alarms.items()):
+                out.append(
+                    f'hourwatch_alarm_events_total{{rule="{_esc(rule)}",state="{_esc(state)}"}} {n}'
+                )
+            metric("alarms_published_total", "counter", "alarm events confirmed by the broker",
+                   self.alarms_published)  # fmt: skip
+            metric("publish_failures_total", "counter",
+                   "alarm events not confirmed in time", self.publish_failures)  # fmt: skip
+            metric("connects_total", "counter", "successful broker connections", self.connects)
+            metric("disconnects_total", "counter", "broker connections lost", self.disconnects)
+            metric("recovery_seconds", "gauge", "time the last restart recovery took",
+                   self.recovery_s)  # fmt: skip
+            metric("recovery_messages", "gauge", "journal messages re-fed at the last start",
+                   self.recovered_messages)  # fmt: skip
+            metric("ingest_latency_seconds", "histogram",
+                   "arrival to journaled, acknowledged and evaluated")  # fmt: skip
+            cum = 0
+            for bound, n in zip(self.latency.buckets, self.latency.counts, strict=False):
+                cum += n
+                out.append(f'hourwatch_ingest_latency_seconds_bucket{{le="{bound:g}"}} {cum}')
+            out.append(f'hourwatch_ingest_latency_seconds_bucket{{le="+Inf"}} {self.latency.count}')
+            out.append(f"hourwatch_ingest_latency_seconds_sum {self.latency.total:g}")
+            out.append(f"hourwatch_ingest_latency_seconds_count {self.latency.count}")
+        for name, value in sorted(gauges.items()):
+            metric(name, "gauge", name.replace("_", " "), value)
+        last = ""
+        for name, label, value in sorted(labelled):
+            if name != last:
+                metric(name, "counter", name.replace("_", " "))
+                last = name
+            out.append(f"hourwatch_{name}{{{label}}} {value:g}")
+        return "\n".join(out) + "\n"
+
+
+def _esc(s: str) -> str:
+    return s.replace("\\", "\\\\").replace('"', '\\"').replace("\n", " ")
+
+
+HealthFn = Callable[[], tuple[bool, dict[str, Any]]]
+MetricsFn = Callable[[], str]
+
+
+class HealthServer:
+    """GET /health (200 healthy, 503 not, JSON body) and GET /metrics, on a thread."""
+
+    def __init__(self, host: str, port: int, health: HealthFn, metrics: MetricsFn) -> None:
+        class Handler(BaseHTTPRequestHandler):
+            def do_GET(self) -> None:
+                path = self.path.split("?", 1)[0]
+                if path == "/health":
+                    ok, body = health()
+                    self._send(200 if ok else 503, "application/json", json.dumps(body))
+                elif path == "/metrics":
+                    self._send(200, "text/plain; version=0.0.4; charset=utf-8", metrics())
+                else:
+                    self._send(404, "text/plain", "not found: try /health or /metrics\n")
+
+            def _send(self, code: int, ctype: str, text: str) -> None:
+                data = text.encode()
+                self.send_response(code)
+                self.send_header("Content-Type", ctype)
+                self.send_header("Content-Length", str(len(data)))
+                self.end_headers()
+                self.wfile.write(data)
+
+            def log_message(self, format: str, *args: Any) -> None:
+                pass  # scrapes every few seconds would drown the service log
+
+        self.server = ThreadingHTTPServer((host, port), Handler)
+        self.server.daemon_threads = True
+        self.address: tuple[str, int] = self.server.server_address[:2]  # type: ignore[assignment]
+        self._thread = threading.Thread(
+            target=self.server.serve_forever, name="hourwatch-health", daemon=True
+        )
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+        self._thread.join(2.0)

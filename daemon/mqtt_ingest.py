@@ -1,0 +1,214 @@
+"""The MQTT side of the service, on paho-mqtt 2.x (FIELD-NOTES.md).
+
+A persistent session with a fixed client id and manual acknowledgement: the broker
+keeps redelivering a reading until the worker has journaled it and calls `ack()`.
+paho's callbacks run on paho's network thread; they only convert and enqueue.
+"""
+
+from __future__ import annotations
+
+import queue
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion, MQTTErrorCode, MQTTProtocolVersion
+from paho.mqtt.packettypes import PacketTypes
+from paho.mqtt.properties import Properties
+from paho.mqtt.reasoncodes import ReasonCode
+
+from .config import BrokerConfig
+
+SUBSCRIBE_QOS = 1  # at-least-once for every input; duplicates are the engine's business
+
+
+@dataclass(frozen=True, slots=True)
+class Inbound:
+    """One received message, tagged with the connection it came on."""
+
+    conn: int
+    mid: int
+    qos: int
+    topic: str
+    payload: bytes
+    recv_time: float  # from the service clock: the engine's `now` for this message
+    arrived: float  # perf_counter, for the latency histogram
+
+
+@dataclass(frozen=True, slots=True)
+class Published:
+    """paho's on_publish: the broker confirmed (QoS 1: PUBACK) our message `mid`."""
+
+    mid: int
+    ok: bool
+    reason: str
+
+
+@dataclass(frozen=True, slots=True)
+class Connection:
+    """Connected (with its counter) or lost."""
+
+    conn: int
+    up: bool
+    session_present: bool = False
+    reason: str = ""
+
+
+Item = Inbound | Published | Connection
+
+
+class MqttLink:
+    """Owns the paho client. `out` receives Inbound, Published and Connection items."""
+
+    def __init__(
+        self,
+        cfg: BrokerConfig,
+        subscriptions: list[str],
+        out: queue.SimpleQueue[Any],
+        clock: Callable[[], float],
+        will: tuple[str, bytes],
+        log: Any,
+    ) -> None:
+        self.cfg = cfg
+        self.subscriptions = subscriptions
+        self._out = out
+        self._clock = clock
+        self._log = log
+        self.conn = 0  # bumped on every successful connect
+        self.connected = threading.Event()
+        self.last_error: str | None = None
+        self.v5 = cfg.protocol == "5"
+        proto = MQTTProtocolVersion.MQTTv5 if self.v5 else MQTTProtocolVersion.MQTTv311
+        c = mqtt.Client(
+            CallbackAPIVersion.VERSION2,
+            client_id=cfg.client_id,
+            protocol=proto,
+            # 3.1.1: the session survives us; MQTT 5 says so in connect (clean_start)
+            clean_session=None if self.v5 else False,
+            manual_ack=True,
+        )
+        if cfg.username is not None:
+            c.username_pw_set(cfg.username, cfg.secret())
+        if cfg.tls is not None:
+            c.tls_set(
+                ca_certs=str(cfg.tls.ca_file),
+                certfile=str(cfg.tls.cert_file) if cfg.tls.cert_file else None,
+                keyfile=str(cfg.tls.key_file) if cfg.tls.key_file else None,
+            )
+        c.will_set(will[0], will[1], qos=1, retain=True)
+        c.reconnect_delay_set(cfg.reconnect_min_s, cfg.reconnect_max_s)
+        c.max_queued_messages_set(0)  # our outbox bounds what we hand over
+        c.max_inflight_messages_set(100)
+        c.on_connect = self._on_connect
+        c.on_disconnect = self._on_disconnect
+        c.on_message = self._on_message
+        c.on_publish = self._on_publish
+        c.on_subscribe = self._on_subscribe
+        self.client = c
+
+    # --- control (service threads) -------------------------------------------
+    def start(self) -> None:
+        cfg = self.cfg
+        if self.v5:
+            props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]
+            props.SessionExpiryInterval = cfg.session_expiry_s
+            self.client.connect_async(
+                cfg.host, cfg.port, cfg.keepalive_s, clean_start=False, properties=props
+            )
+        else:
+            self.client.connect_async(cfg.host, cfg.port, cfg.keepalive_s)
+        self.client.loop_start()
+
+    def stop(self) -> None:
+        """Clean disconnect (the broker then does not publish the last will)."""
+        if self.v5:
+            props = Properties(PacketTypes.DISCONNECT)  # type: ignore[no-untyped-call]
+            # keep the session: readings published while we are down are kept for us
+            props.SessionExpiryInterval = self.cfg.session_expiry_s
+            self.client.disconnect(properties=props)
+        else:
+            self.client.disconnect()
+        self.client.loop_stop()
+
+    def ack(self, mid: int, qos: int) -> bool:
+        return self.client.ack(mid, qos) == MQTTErrorCode.MQTT_ERR_SUCCESS
+
+    def publish(self, topic: str, payload: bytes, qos: int, retain: bool) -> tuple[int, bool]:
+        """Hand a message to paho: (mid, accepted). paho keeps a QoS 1 message it
+        accepted across reconnects and resends it until the broker confirms it."""
+        info = self.client.publish(topic, payload, qos=qos, retain=retain)
+        accepted = info.rc == MQTTErrorCode.MQTT_ERR_SUCCESS or (
+            qos > 0 and info.rc == MQTTErrorCode.MQTT_ERR_NO_CONN
+        )
+        return info.mid, accepted
+
+    # --- paho callbacks (paho's thread): convert and enqueue only ---------------
+    def _on_connect(
+        self,
+        client: mqtt.Client,
+        userdata: Any,
+        flags: mqtt.ConnectFlags,
+        reason: ReasonCode,
+        props: Properties | None,
+    ) -> None:
+        if reason.is_failure:
+            self.last_error = f"broker refused the connection: {reason}"
+            self._log.error("mqtt_refused", reason=str(reason))
+            return
+        self.conn += 1
+        self.last_error = None
+        # Re-issued on every connect: a broker that lost its state still gets them.
+        client.subscribe([(f, SUBSCRIBE_QOS) for f in self.subscriptions])
+        self.connected.set()
+        self._out.put(Connection(self.conn, True, bool(flags.session_present)))
+
+    def _on_disconnect(
+        self,
+        client: mqtt.Client,
+        userdata: Any,
+        flags: mqtt.DisconnectFlags,
+        reason: ReasonCode,
+        props: Properties | None,
+    ) -> None:
+        was_up = self.connected.is_set()
+        self.connected.clear()
+        if was_up:
+            self._out.put(Connection(self.conn, False, reason=str(reason)))
+        else:
+            self.last_error = f"cannot connect: {reason}"
+
+    def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
+        try:
+            topic = msg.topic
+        except UnicodeDecodeError:  # a broker should refuse these; drop, but say so
+            self._log.warning("mqtt_bad_topic", mid=msg.mid)
+            return
+        self._out.put(
+            Inbound(self.conn, msg.mid, msg.qos, topic, bytes(msg.payload), self._clock(),
+                    time.perf_counter())
+        )  # fmt: skip
+
+    def _on_publish(
+        self,
+        client: mqtt.Client,
+        userdata: Any,
+        mid: int,
+        reason: ReasonCode,
+        props: Properties | None,
+    ) -> None:
+        self._out.put(Published(mid, not reason.is_failure, str(reason)))
+
+    def _on_subscribe(
+        self,
+        client: mqtt.Client,
+        userdata: Any,
+        mid: int,
+        reasons: list[ReasonCode],
+        props: Properties | None,
+    ) -> None:
+        for f, r in zip(self.subscriptions, reasons, strict=False):
+            if r.is_failure:
+                self._log.error("mqtt_subscribe_refused", filter=f, reason=str(r))

@@ -1,0 +1,788 @@
+"""`hourwatch run`: the live service, the imperative shell around the pure engine.
+
+Threads and who owns what:
+- paho's network thread: callbacks convert and enqueue (mqtt_ingest.py).
+- the worker (one thread) owns the journal and the outbox: batch of received messages →
+  journal (durable) → ack to the broker, in order → engine → journal the effects → publish.
+- APScheduler's thread: ONE job, re-armed to `engine.next_wakeup()`, calls
+  `engine.advance(now)` under the engine lock and hands the effects to the worker.
+- the health endpoint's thread reads counters only.
+
+The engine never reads the clock: the service passes `clock()` (time.time by default;
+tests inject a fake one to run a night in seconds).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import math
+import queue
+import sys
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from typing import Any, TextIO
+
+import structlog
+from apscheduler.executors.pool import ThreadPoolExecutor  # type: ignore[import-untyped]
+from apscheduler.jobstores.base import JobLookupError  # type: ignore[import-untyped]
+from apscheduler.schedulers.background import BackgroundScheduler  # type: ignore[import-untyped]
+from apscheduler.triggers.date import DateTrigger  # type: ignore[import-untyped]
+from pydantic import ValidationError
+
+from .caution import CAUTION
+from .config import ServiceConfig, split_address
+from .engine.alarms import AlarmEvent
+from .engine.effects import AdviceIssued, Effect, RejectedInput
+from .engine.engine import Engine
+from .engine.evaluator import Notice
+from .engine.outcomes import Outcome
+from .engine.timefmt import iso
+from .health import HealthServer, Metrics
+from .journal import Journal, StoredEvent
+from .messages import (
+    SCHEMA,
+    ActiveAlarm,
+    AdviceMessage,
+    AlarmMessage,
+    OutputWindow,
+    RejectedMessage,
+    StateMessage,
+    StatusMessage,
+    TechnicalAlarm,
+    offline_status,
+)
+from .mqtt_ingest import Connection, Inbound, MqttLink, Published
+from .profile_files import load_profiles
+from .publisher import Outbox, Outgoing
+from .recovery import Recovery, longest_window_s, recover
+from .rule_files import load_policy, load_rules
+
+OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
+BATCH_MAX = 16  # mosquitto stops at 20 unacked in-flight messages (FIELD-NOTES.md)
+BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
+HOUSEKEEPING_S = 0.25
+PRUNE_EVERY_S = 600.0
+STOP_CONFIRM_S = 2.0  # at stop: wait this long for outstanding confirmations
+JOB_ID = "engine-wakeup"
+
+
+def configure_logging(level: str = "info", stream: TextIO | None = None) -> None:
+    """structlog JSON lines: one event per line, with bed and alarm ids, never patient
+    names (the engine knows none)."""
+    structlog.configure(
+        processors=[
+            structlog.processors.add_log_level,
+            structlog.processors.TimeStamper(fmt="iso", utc=True),
+            structlog.processors.format_exc_info,
+            structlog.processors.JSONRenderer(),
+        ],
+        wrapper_class=structlog.make_filtering_bound_logger(
+            logging.getLevelNamesMapping()[level.upper()]
+        ),
+        logger_factory=structlog.PrintLoggerFactory(stream or sys.stderr),
+        cache_logger_on_first_use=False,
+    )
+
+
+def topic_level(text: str) -> str:
+    """A ward or bed id as one topic level: no separator, no wildcard, never empty."""
+    out = text.replace("/", "_").replace("+", "_").replace("#", "_")
+    return out or "_"
+
+
+class _Stop:
+    pass
+
+
+class _Wake:
+    pass
+
+
+_STOP = _Stop()
+_WAKE = _Wake()
+
+
+@dataclass
+class _Bed:
+    """What the publisher remembers per bed."""
+
+    ward_level: str | None = None  # the ward its retained state was last published under
+    last_state: float = -math.inf
+    dirty: bool = False
+    urgent: bool = False  # an alarm or advice changed: publish the state now
+    latest_advice: dict[str, Any] | None = None
+    last_content: bytes = b""  # the last state published, without its time
+
+
+@dataclass
+class _Technical:
+    code: str
+    text: str
+    since: float
+    alarm_id: str | None = None
+
+
+@dataclass
+class ServiceStats:
+    recovery: Recovery | None = None
+    started: float = 0.0
+    engine_errors: int = 0
+    technical: dict[str, _Technical] = field(default_factory=dict)
+
+
+class Service:
+    def __init__(self, cfg: ServiceConfig, *, clock: Callable[[], float] = time.time) -> None:
+        self.cfg = cfg
+        self.clock = clock
+        self.prefix = cfg.topic_prefix
+        self.log = structlog.get_logger("hourwatch")
+        profiles = load_profiles(cfg.profiles)
+        self.rules = load_rules(cfg.rules)
+        self.policy = load_policy(cfg.rules)
+        self.subscriptions = [p.subscription for p in profiles] + [
+            f"{self.prefix}/beds/+/+",
+            f"{self.prefix}/ack",
+        ]
+        self.engine = Engine(profiles, self.rules, self.policy, topic_prefix=self.prefix)
+        self.guard_s = longest_window_s(self.rules)
+        self.window_s = self.guard_s + cfg.recovery.margin_s
+        self.lock = threading.RLock()  # the engine's: worker and timer job
+        self.queue: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self.metrics = Metrics()
+        self.stats = ServiceStats()
+        self.journal: Journal | None = None
+        self.link: MqttLink | None = None
+        self.outbox: Outbox | None = None
+        self.health: HealthServer | None = None
+        self._now = -math.inf  # engine time so far (monotone)
+        self._timer_effects: list[Effect] = []
+        self._armed: float | None = None
+        self._beds: dict[str, _Bed] = {}
+        self._readings_since_state = False  # a message may have changed any bed's output
+        self._connected = False
+        self._last_status: tuple[object, ...] | None = None
+        self._worker: threading.Thread | None = None
+        self._pruner: threading.Thread | None = None
+        self._stopping = threading.Event()
+        self._stop_reason = "stopped"
+        self.failed: str | None = None  # the worker died: the process must exit non-zero
+        self.done = threading.Event()  # set when the worker has ended
+        self.scheduler = BackgroundScheduler(
+            executors={"default": ThreadPoolExecutor(1)}, timezone=UTC
+        )
+
+    # --- lifecycle --------------------------------------------------------------
+    def start(self) -> None:
+        cfg = self.cfg
+        self.stats.started = self.clock()
+        self.journal = Journal(cfg.journal.path, retention_days=cfg.journal.retention_days)
+        self._recover()
+        will = offline_status(self.clock(), "connection lost", self.stats.started)
+        self.link = MqttLink(
+            cfg.broker, self.subscriptions, self.queue, self.clock,
+            (self._topic("status"), will.to_bytes()), self.log,
+        )  # fmt: skip
+        self.outbox = Outbox(self.link.publish, cfg.publish.confirm_timeout_s)
+        self._queue_recovered()
+        self.scheduler.start()
+        with self.lock:
+            self._arm()
+        self._worker = threading.Thread(target=self._work, name="hourwatch-worker", daemon=True)
+        self._worker.start()
+        self._pruner = threading.Thread(target=self._prune, name="hourwatch-prune", daemon=True)
+        self._pruner.start()
+        if cfg.health.listen:
+            host, port = split_address(cfg.health.listen, allow_zero=True)
+            self.health = HealthServer(host, port, self.health_report, self.render_metrics)
+            self.health.start()
+            self.log.info("health_listening", address=f"{self.health.address[0]}:"
+                          f"{self.health.address[1]}")  # fmt: skip
+        self.link.start()
+        self.log.info(
+            "service_started", broker=f"{cfg.broker.host}:{cfg.broker.port}",
+            protocol=cfg.broker.protocol, client_id=cfg.broker.client_id,
+            journal=str(cfg.journal.path), subscriptions=self.subscriptions,
+        )  # fmt: skip
+
+    def stop(self, reason: str = "stopped") -> None:
+        """Drain what was received, publish the status "offline", disconnect cleanly."""
+        if self._stopping.is_set():
+            return
+        self._stopping.set()
+        self._stop_reason = reason
+        if self.scheduler.running:
+            self.scheduler.shutdown(wait=False)
+        if self._worker is not None and self._worker.is_alive():
+            self.queue.put(_STOP)
+            self._worker.join(STOP_CONFIRM_S * 3 + 5)
+        if self.link is not None:
+            self.link.stop()
+        if self.health is not None:
+            self.health.stop()
+        if self._pruner is not None:
+            self._pruner.join(2.0)
+        if self.journal is not None:
+            self.journal.close()
+            self.journal = None
+        self.log.info("service_stopped", reason=reason)
+
+    # --- recovery -----------------------------------------------------------------
+    def _recover(self) -> None:
+        assert self.journal is not None
+        now = self.clock()
+        with self.lock:
+            rec = recover(self.engine, self.journal, now, self.window_s, self.guard_s, self.prefix)
+            self._now = max(now, rec.last_message_time or now)
+        self.stats.recovery = rec
+        with self.metrics.lock:
+            self.metrics.recovery_s = rec.seconds
+            self.metrics.recovered_messages = rec.messages
+        self.log.info(
+            "recovery_done", seconds=round(rec.seconds, 3), window_h=round(self.window_s / 3600, 2),
+            messages=rec.messages, contexts=rec.contexts, beds=len(self.engine.beds),
+            already_journaled=rec.already_journaled, new_events=len(rec.to_publish),
+            undelivered=len(rec.undelivered), differs=len(rec.differs),
+        )  # fmt: skip
+        for e in rec.differs:
+            self.log.warning(
+                "recovery_differs", alarm_id=e.alarm_id, bed=e.bed, state=str(e.state),
+                reason=e.reason, time=iso(e.time),
+                note="rebuilt history gives an event the journal does not hold; not published",
+            )  # fmt: skip
+
+    def _queue_recovered(self) -> None:
+        """Journal and queue what recovery found new; re-queue what was never confirmed."""
+        rec = self.stats.recovery
+        assert rec is not None and self.outbox is not None
+        for ev in rec.undelivered:
+            self._requeue(ev)
+        self._emit(rec.to_publish)
+        for e in rec.to_publish:
+            if isinstance(e, AlarmEvent):
+                self.log.info("downtime_event", alarm_id=e.alarm_id, bed=e.bed,
+                              state=str(e.state), reason=e.reason, time=iso(e.time))  # fmt: skip
+        for bed in self.engine.beds:
+            self._bed(bed).dirty = True
+
+    def _requeue(self, ev: StoredEvent) -> None:
+        assert self.outbox is not None
+        body = ev.body
+        try:
+            if ev.kind == "alarm":
+                msg = AlarmMessage.model_validate(body)
+                topic = self._topic("alarms", msg.ward, msg.bed)
+                out = Outgoing(topic, msg.to_bytes(), 1, False, [ev.id], msg.alarm_id, ev.time)
+            elif ev.kind == "advice":
+                adv = AdviceMessage.model_validate(body)
+                topic = self._topic("advice", adv.ward, adv.bed)
+                out = Outgoing(topic, adv.to_bytes(), 1, False, [ev.id], None, ev.time)
+            else:
+                return
+        except ValueError as exc:
+            self.log.error("journal_event_unreadable", event_id=ev.id, error=str(exc)[:200])
+            return
+        self.log.info("republishing_unconfirmed", event_id=ev.id, kind=ev.kind,
+                      alarm_id=ev.alarm_id, bed=ev.bed)  # fmt: skip
+        self.outbox.put(out)
+
+    # --- the worker -----------------------------------------------------------------
+    def _work(self) -> None:
+        try:
+            while True:
+                items, stop = self._collect()
+                self._handle(items)
+                if stop:
+                    self._finish()
+                    return
+                self._housekeeping()
+        except Exception as exc:  # never ack what was not journaled: die loudly instead
+            self.failed = f"{type(exc).__name__}: {exc}"
+            self.log.critical("worker_failed", error=self.failed, exc_info=True)
+        finally:
+            self.done.set()
+
+    def _collect(self) -> tuple[list[Any], bool]:
+        """Block for the first item, then take what is already queued, up to BATCH_MAX
+        received messages (a group commit: under load batches fill, when idle a lone
+        reading is journaled at once)."""
+        items: list[Any] = []
+        try:
+            first = self.queue.get(timeout=HOUSEKEEPING_S)
+        except queue.Empty:
+            return items, False
+        if first is _STOP:
+            return items, True
+        items.append(first)
+        n = 1 if isinstance(first, Inbound) else 0
+        deadline = time.perf_counter() + BATCH_WAIT_S
+        while n < BATCH_MAX and time.perf_counter() < deadline:
+            try:
+                item = self.queue.get_nowait()
+            except queue.Empty:
+                break
+            if item is _STOP:
+                return items, True
+            items.append(item)
+            n += isinstance(item, Inbound)
+        return items, False
+
+    def _handle(self, items: list[Any]) -> None:
+        assert self.journal is not None and self.outbox is not None and self.link is not None
+        inbound: list[Inbound] = []
+        confirmed: list[Published] = []
+        for item in items:
+            if isinstance(item, Inbound):
+                inbound.append(item)
+            elif isinstance(item, Published):
+                confirmed.append(item)
+            elif isinstance(item, Connection):
+                self._connection(item)
+        if inbound:
+            self._ingest(inbound)
+        else:
+            with self.lock:
+                effects, self._timer_effects = self._timer_effects, []
+            self._emit(effects)
+        if confirmed:
+            self._confirm(confirmed)
+        self.outbox.flush(self._connected)
+
+    def _ingest(self, batch: list[Inbound]) -> None:
+        assert self.journal is not None and self.link is not None
+        # The engine lock is held from journaling to feeding, so each message is journaled
+        # with the very time the engine used for it, and a timer tick cannot fall between:
+        # a restart's re-feed of the journal then gives exactly the live events.
+        with self.lock:
+            times = []
+            for m in batch:
+                self._now = max(self._now, m.recv_time)  # time.time() can step back
+                times.append(self._now)
+            rows = [(t, m.topic, m.payload, m.qos) for t, m in zip(times, batch, strict=True)]
+            self.journal.append_messages(rows)  # durable on return
+            acked = stale = 0
+            conn = self.link.conn
+            up = self.link.connected.is_set()
+            for m in batch:  # in arrival order
+                if m.qos == 0:
+                    continue
+                if m.conn == conn and up and self.link.ack(m.mid, m.qos):
+                    acked += 1
+                else:
+                    stale += 1  # an earlier connection's id: the broker redelivers it
+            effects, self._timer_effects = self._timer_effects, []
+            for t, m in zip(times, batch, strict=True):
+                try:
+                    effects += self.engine.advance(t)
+                    effects += self.engine.step(m.topic, m.payload, t)
+                except Exception:  # an engine bug must not stop the ward's monitoring
+                    self.stats.engine_errors += 1
+                    self.log.error("engine_error", topic=m.topic[:200], exc_info=True)
+            self._arm()
+        self._readings_since_state = True
+        with self.metrics.lock:
+            self.metrics.received += len(batch)
+            self.metrics.journaled += len(batch)
+            self.metrics.acked += acked
+            self.metrics.stale_acks += stale
+        self._emit(effects)
+        done = time.perf_counter()
+        with self.metrics.lock:
+            for m in batch:
+                self.metrics.latency.observe(done - m.arrived)
+
+    def _connection(self, c: Connection) -> None:
+        assert self.outbox is not None
+        self._connected = c.up
+        with self.metrics.lock:
+            if c.up:
+                self.metrics.connects += 1
+            else:
+                self.metrics.disconnects += 1
+        if c.up:
+            self.log.info("mqtt_connected", connection=c.conn, session_present=c.session_present,
+                          waiting=len(self.outbox.waiting))  # fmt: skip
+            self._last_status = None  # the broker may have lost the retained one
+        else:
+            self.log.warning("mqtt_disconnected", connection=c.conn, reason=c.reason)
+
+    def _confirm(self, confirmed: list[Published]) -> None:
+        assert self.journal is not None and self.outbox is not None
+        delivered: list[int] = []
+        now = self.clock()
+        for p in confirmed:
+            msg = self.outbox.confirmed(p.mid)
+            if msg is None:
+                continue
+            if not p.ok:
+                self.log.error("publish_refused", topic=msg.topic, alarm_id=msg.alarm_id,
+                               reason=p.reason)  # fmt: skip
+                if msg.alarm_id is not None:
+                    self._publish_failed(msg, f"broker refused: {p.reason}")
+                continue
+            delivered += msg.event_ids
+            if msg.alarm_id is not None:
+                with self.metrics.lock:
+                    self.metrics.alarms_published += 1
+                if msg.overdue:
+                    self.log.warning("alarm_delivered_late", alarm_id=msg.alarm_id,
+                                     after_s=round(now - msg.created, 1))  # fmt: skip
+        self.journal.mark_delivered(delivered, now)
+
+    def _finish(self) -> None:
+        """At stop: send what is waiting, wait briefly for confirmations, say offline."""
+        assert self.outbox is not None and self.journal is not None and self.link is not None
+        with self.lock:
+            effects, self._timer_effects = self._timer_effects, []
+        self._emit(effects)
+        self._publish_states(force=True)
+        status = offline_status(self.clock(), self._stop_reason, self.stats.started)
+        self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True))
+        self.outbox.flush(self._connected)
+        deadline = time.monotonic() + STOP_CONFIRM_S
+        while self.outbox.in_flight and self._connected and time.monotonic() < deadline:
+            try:
+                item = self.queue.get(timeout=0.05)
+            except queue.Empty:
+                continue
+            if isinstance(item, Published):
+                self._confirm([item])
+            elif isinstance(item, Connection):
+                self._connection(item)
+            # received messages are left unacknowledged: the broker keeps them for us
+        left = [m for m in self.outbox.waiting if m.event_ids] + [
+            m for m in self.outbox.in_flight.values() if m.event_ids
+        ]
+        if left:
+            self.log.warning("stopping_with_unconfirmed", events=len(left),
+                             note="sent again at the next start")  # fmt: skip
+
+    # --- effects → journal → outbox ----------------------------------------------------
+    def _emit(self, effects: list[Effect]) -> None:
+        if not effects:
+            return
+        assert self.journal is not None and self.outbox is not None
+        rows: list[tuple[float, str, str | None, str | None, dict[str, object]]] = []
+        for e in effects:
+            if isinstance(e, AlarmEvent):
+                rows.append((e.time, "alarm", e.bed, e.alarm_id, e.to_json()))
+            elif isinstance(e, AdviceIssued):
+                rows.append((e.time, "advice", e.bed, None, e.to_json()))
+            elif isinstance(e, RejectedInput):
+                rows.append((e.time, "rejected", None, None, e.to_json()))
+            elif isinstance(e, Notice):
+                rows.append((e.time, "notice", e.bed, None,
+                             {"bed": e.bed, "ward": e.ward, "code": e.code, "text": e.text,
+                              "time": iso(e.time)}))  # fmt: skip
+        ids = self.journal.append_events(rows)  # journaled before it is published
+        now = self.clock()
+        for e, event_id in zip(effects, ids, strict=True):
+            if isinstance(e, AlarmEvent):
+                self._alarm(e, event_id, now)
+            elif isinstance(e, AdviceIssued):
+                body = self._body(AdviceMessage, e)
+                topic = self._topic("advice", e.ward, e.bed)
+                self.outbox.put(Outgoing(topic, body, 1, False, [event_id], None, now))
+                b = self._bed(e.bed)
+                b.latest_advice = {k: v for k, v in json.loads(body).items() if k != "caution"}
+                b.dirty = b.urgent = True
+            elif isinstance(e, RejectedInput):
+                with self.metrics.lock:
+                    self.metrics.rejected[str(e.reason)] += 1
+                self.log.info("input_rejected", topic=e.topic[:200], device_id=e.device_id,
+                              reason=str(e.reason), detail=e.detail[:200])  # fmt: skip
+                if self._connected:  # diagnostics: not kept for a reconnect (journal has it)
+                    body = self._body(RejectedMessage, e)
+                    self.outbox.put(
+                        Outgoing(self._topic("rejected"), body, 0, False, [], None, now)
+                    )
+            elif isinstance(e, Notice):
+                self.log.info("bed_notice", bed=e.bed, ward=e.ward, code=e.code)
+                self._bed(e.bed).dirty = True
+
+    def _alarm(self, e: AlarmEvent, event_id: int, now: float) -> None:
+        assert self.outbox is not None
+        body = self._body(AlarmMessage, e)
+        topic = self._topic("alarms", e.ward, e.bed)
+        self.outbox.put(Outgoing(topic, body, 1, False, [event_id], e.alarm_id, now))
+        with self.metrics.lock:
+            self.metrics.alarms[(e.rule, str(e.state))] += 1
+        self.log.info(
+            "alarm_event", alarm_id=e.alarm_id, bed=e.bed, ward=e.ward, rule=e.rule,
+            state=str(e.state), reason=e.reason, priority=str(e.priority), tier=e.tier,
+            notify=list(e.notify), time=iso(e.time),
+        )  # fmt: skip
+        b = self._bed(e.bed)
+        b.dirty = b.urgent = True
+
+    def _body(self, model: type[OutboundOf], e: Any) -> bytes:
+        """The message's bytes from its model. Should the engine's output ever not fit the
+        model, the page still goes out (as the engine's own JSON) and the log says why."""
+        try:
+            return model.of(e).to_bytes()
+        except ValidationError as exc:
+            self.stats.engine_errors += 1
+            self.log.error("message_model_mismatch", model=model.__name__,
+                           error=str(exc).splitlines()[0][:200])  # fmt: skip
+            return json.dumps({"schema": SCHEMA} | e.to_json()).encode()
+
+    def _publish_failed(self, msg: Outgoing, why: str) -> None:
+        assert self.journal is not None
+        now = self.clock()
+        body: dict[str, object] = {"alarm_id": msg.alarm_id, "topic": msg.topic, "reason": why,
+                                   "raised": iso(msg.created), "time": iso(now)}  # fmt: skip
+        self.journal.append_events([(now, "publish_failed", None, msg.alarm_id, body)])
+        with self.metrics.lock:
+            self.metrics.publish_failures += 1
+        self.log.error("alarm_not_delivered", alarm_id=msg.alarm_id, reason=why,
+                       waited_s=round(now - msg.created, 1))  # fmt: skip
+        key = f"alarm_not_delivered:{msg.alarm_id}"
+        self.stats.technical.setdefault(
+            key, _Technical("alarm_not_delivered",
+                            f"alarm event not confirmed by the broker: {why}", now, msg.alarm_id)
+        )  # fmt: skip
+
+    # --- housekeeping: timeouts, retained state, status ------------------------------
+    def _housekeeping(self) -> None:
+        assert self.outbox is not None
+        now = self.clock()
+        for msg in self.outbox.newly_overdue(now):
+            self._publish_failed(
+                msg, f"not confirmed within {self.cfg.publish.confirm_timeout_s:g} s"
+                + ("" if self._connected else " (broker unreachable)"),
+            )  # fmt: skip
+        if self.stats.technical and self.outbox.overdue_count() == 0:
+            unconfirmed = {m.alarm_id for m in self.outbox.in_flight.values() if m.alarm_id}
+            unconfirmed |= {m.alarm_id for m in self.outbox.waiting if m.alarm_id}
+            for key, tech in list(self.stats.technical.items()):
+                if tech.code == "alarm_not_delivered" and tech.alarm_id not in unconfirmed:
+                    del self.stats.technical[key]
+                    self.log.info("technical_alarm_cleared", code=tech.code,
+                                  alarm_id=tech.alarm_id)  # fmt: skip
+        self._publish_states(force=False)
+        self._publish_status()
+        self.outbox.flush(self._connected)
+
+    def _publish_states(self, force: bool) -> None:
+        assert self.outbox is not None
+        now = self.clock()
+        if self._readings_since_state:
+            self._readings_since_state = False
+            for bed_id in list(self.engine.beds):
+                self._bed(bed_id).dirty = True
+        every = self.cfg.publish.state_interval_s
+        for bed_id, b in self._beds.items():
+            if not b.dirty or not (force or b.urgent or now - b.last_state >= every):
+                continue
+            with self.lock:
+                built = self._state(bed_id, now)
+            b.dirty = b.urgent = False
+            if built is None:
+                continue
+            ward_level, msg = built
+            content = msg.model_copy(update={"time": ""}).to_bytes()
+            if content == b.last_content and ward_level == b.ward_level:
+                continue  # nothing new for this bed
+            if b.ward_level is not None and b.ward_level != ward_level:
+                # the bed moved ward: clear the retained state under the old one
+                old = self._topic("state", b.ward_level, bed_id, raw=True)
+                self.outbox.put(Outgoing(old, b"", 1, True))
+            topic = self._topic("state", ward_level, bed_id, raw=True)
+            self.outbox.put(Outgoing(topic, msg.to_bytes(), 1, True))
+            b.ward_level, b.last_state, b.last_content = ward_level, now, content
+
+    def _state(self, bed_id: str, now: float) -> tuple[str, StateMessage] | None:
+        """The bed's retained state (called under the engine lock)."""
+        bed = self.engine.beds.get(bed_id)
+        if bed is None:
+            return None
+        series = bed.series
+        latest = series.latest_minute()
+
+        def window(minutes: int) -> OutputWindow | None:
+            if latest is None:
+                return None
+            s = series.sums(latest - minutes + 1, latest + 1)
+            return OutputWindow(minutes=minutes, volume_ml=round(s.volume_ml, 1),
+                                measured_fraction=round(s.measured_min / minutes, 3),
+                                estimated_fraction=round(s.estimated_min / minutes, 3))  # fmt: skip
+
+        last_hour: dict[str, Any] | None = None
+        if series.latest_time is not None and series.first_minute is not None:
+            end_hour = math.floor(series.latest_time / 3600.0)
+            start = (end_hour - 1) * 60
+            if start >= (series.first_minute // 60) * 60:
+                s = series.sums(start, start + 60)
+                last_hour = {"hour_start": iso(start * 60.0), "volume_ml": round(s.volume_ml, 1),
+                             "measured_fraction": round(s.measured_min / 60, 3)}  # fmt: skip
+        quality: dict[str, dict[str, Any]] = {}
+        for dev_id in bed.context.device_ids:
+            dev = self.engine.devices.get(dev_id)
+            if dev is not None and dev.bed == bed_id:
+                quality[dev_id] = dev.quality.to_dict()
+        alarms = [
+            ActiveAlarm(
+                alarm_id=a.alarm_id, rule=a.rule, title=a.title, priority=str(a.priority),
+                kind=str(a.kind), state=str(a.state), tier=a.tier, onset=iso(a.onset),
+                condition_present=a.condition_present, suppressed_by=a.suppressed_by,
+                ack_by=a.ack_by, ack_role=a.ack_role,
+                ack_until=iso(a.ack_until) if a.ack_until is not None else None,
+                summary=a.summary,
+            )
+            for a in self.engine.book.active(bed_id)
+        ]  # fmt: skip
+        b = self._bed(bed_id)
+        msg = StateMessage(
+            time=iso(now), bed=bed_id, ward=bed.context.ward,
+            latest_reading=iso(series.latest_time) if series.latest_time is not None else None,
+            active_alarms=alarms, output_60min=window(60), output_24h=window(1440),
+            last_completed_hour=last_hour, latest_advice=b.latest_advice,
+            notices=sorted(bed.notices), data_quality=quality,
+        )  # fmt: skip
+        return topic_level(bed.context.ward), msg
+
+    def _delivery(self) -> str:
+        assert self.outbox is not None
+        if not self._connected or self.outbox.overdue_count():
+            return "degraded"
+        if any(m.alarm_id for m in self.outbox.waiting):
+            return "degraded"  # a backlog from an outage is still going out
+        return "ok"
+
+    def _publish_status(self) -> None:
+        assert self.outbox is not None
+        if not self._connected:
+            return
+        delivery = self._delivery()
+        tech = sorted(self.stats.technical.values(), key=lambda t: (t.since, t.code))
+        key = (delivery, tuple((t.code, t.alarm_id) for t in tech))
+        if key == self._last_status:
+            return
+        self._last_status = key
+        status = StatusMessage(
+            status="online" if delivery == "ok" and not tech else "degraded",
+            time=iso(self.clock()), started=iso(self.stats.started), delivery=delivery,
+            technical_alarms=[TechnicalAlarm(code=t.code, text=t.text, since=iso(t.since),
+                                             alarm_id=t.alarm_id) for t in tech],
+        )  # fmt: skip
+        self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True))
+        self.log.info("status", status=status.status, delivery=delivery,
+                      technical_alarms=len(tech))  # fmt: skip
+
+    # --- timer ----------------------------------------------------------------------
+    def _arm(self) -> None:
+        """Re-arm the one wake-up job to the engine's next wake-up (under the lock)."""
+        nxt = self.engine.next_wakeup()
+        if nxt == self._armed or not self.scheduler.running:
+            return
+        self._armed = nxt
+        if nxt is None:
+            with contextlib.suppress(JobLookupError):
+                self.scheduler.remove_job(JOB_ID)
+            return
+        delay = max(0.0, nxt - self.clock())  # the service clock may be a test's fake one
+        run_at = datetime.now(UTC) + timedelta(seconds=delay)
+        self.scheduler.add_job(
+            self.timer_fired, DateTrigger(run_date=run_at, timezone=UTC), id=JOB_ID,
+            replace_existing=True, coalesce=True, max_instances=1, misfire_grace_time=None,
+        )  # fmt: skip
+
+    def timer_fired(self) -> None:
+        """The job: run the engine's clock to now and hand the effects to the worker."""
+        with self.lock:
+            t = max(self._now, self.clock())
+            self._now = t
+            try:
+                self._timer_effects += self.engine.advance(t)
+            except Exception:
+                self.stats.engine_errors += 1
+                self.log.error("engine_error", where="advance", exc_info=True)
+            self._armed = None
+            self._arm()
+        self.queue.put(_WAKE)
+
+    # --- pruning (own thread, own journal connection: never blocks ingest for long) ---
+    def _prune(self) -> None:
+        cfg = self.cfg.journal
+        wait = 5.0  # soon after the start, then every PRUNE_EVERY_S
+        while not self._stopping.wait(wait):
+            wait = PRUNE_EVERY_S
+            try:
+                with Journal(cfg.path, retention_days=cfg.retention_days) as j:
+                    n = j.prune(self.clock())
+                if n:
+                    self.log.info("journal_pruned", rows=n, retention_days=cfg.retention_days)
+            except Exception:
+                self.log.error("journal_prune_failed", exc_info=True)
+
+    # --- helpers ----------------------------------------------------------------------
+    def _topic(self, kind: str, ward: str | None = None, bed: str | None = None,
+               raw: bool = False) -> str:  # fmt: skip
+        parts = [self.prefix, kind]
+        if ward is not None:
+            parts.append(ward if raw else topic_level(ward))
+        if bed is not None:
+            parts.append(bed if raw else topic_level(bed))
+        return "/".join(parts)
+
+    def _bed(self, bed_id: str) -> _Bed:
+        b = self._beds.get(bed_id)
+        if b is None:
+            b = self._beds[bed_id] = _Bed()
+        return b
+
+    @property
+    def connected(self) -> bool:
+        return self._connected
+
+    def health_report(self) -> tuple[bool, dict[str, Any]]:
+        alive = self._worker is not None and self._worker.is_alive() and self.failed is None
+        ok = alive and self._connected
+        outbox = self.outbox
+        body: dict[str, Any] = {
+            "status": "ok" if ok else "unhealthy",
+            "connected": self._connected,
+            "worker_alive": alive,
+            "worker_error": self.failed,
+            "broker_error": self.link.last_error if self.link else None,
+            "queue_depth": self.queue.qsize(),
+            "outbox": len(outbox) if outbox else 0,
+            "delivery": self._delivery() if outbox is not None else "unknown",
+            "technical_alarms": [
+                {"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
+                for t in self.stats.technical.values()
+            ],
+            "caution": CAUTION,
+        }
+        return ok, body
+
+    def render_metrics(self) -> str:
+        outbox = self.outbox
+        size = 0
+        path = self.cfg.journal.path
+        for p in (path, path.with_name(path.name + "-wal")):
+            with contextlib.suppress(OSError):
+                size += p.stat().st_size
+        gauges = {
+            "queue_depth": float(self.queue.qsize()),
+            "outbox_depth": float(len(outbox) if outbox else 0),
+            "connected": 1.0 if self._connected else 0.0,
+            "journal_bytes": float(size),
+            "engine_errors": float(self.stats.engine_errors),
+            "technical_alarms": float(len(self.stats.technical)),
+        }
+        labelled: list[tuple[str, str, float]] = []
+        with self.lock:  # engine counters: read under the engine lock
+            dups: dict[str, int] = {}
+            for dev in self.engine.devices.values():
+                n = dev.quality.counts.get(Outcome.DUPLICATE, 0)
+                if n:
+                    prof = dev.decoder.profile.name
+                    dups[prof] = dups.get(prof, 0) + n
+        for prof, n in sorted(dups.items()):
+            labelled.append(("duplicates_total", f'profile="{prof}"', float(n)))
+        return self.metrics.render(gauges, labelled)
