@@ -106,6 +106,9 @@ def test_latest_reading_never_moves_back() -> None:
     s.note_reading(T0 + 600)
     s.note_reading(T0 + 300)
     assert s.latest_time == T0 + 600
+    # a reading on a minute boundary measures up to it: it completes the minute before
+    assert s.latest_minute() == M0 + 9
+    s.note_reading(T0 + 630)
     assert s.latest_minute() == M0 + 10
 
 

@@ -78,6 +78,24 @@ class AlarmEvent:
     by: str | None = None
     role: str | None = None
     suppressed_by: str | None = None
+    title: str = ""
+    advice: dict[str, object] | None = None  # the bed's latest replacement advice, if any
+    ack_topic: str = "hourwatch/ack"
+    ack_valid_s: int = 3600
+
+    def pager(self) -> str:
+        """One plain line for a pager, at most PAGER_MAX characters."""
+        head = f"{self.bed} {_STATE_WORD[self.state]} {self.priority}: {self.title or self.rule}"
+        tail = ""
+        if self.advice and self.state in (State.ACTIVE, State.ESCALATED):
+            tail = f" {self.advice.get('pager', '')}".rstrip()
+        text = f"{head}. {self.summary}.{tail}"
+        if len(text) <= PAGER_MAX:
+            return text
+        room = PAGER_MAX - len(head) - len(tail) - 3  # '. ' and the ellipsis
+        if room >= 20:
+            return f"{head}. {self.summary[:room].rstrip()}…{tail}"
+        return (f"{head}. {self.summary}")[: PAGER_MAX - 1].rstrip() + "…"
 
     def to_json(self) -> dict[str, object]:
         return {
@@ -97,4 +115,29 @@ class AlarmEvent:
             "by": self.by,
             "role": self.role,
             "suppressed_by": self.suppressed_by,
+            "title": self.title,
+            "pager": self.pager(),
+            "advice": self.advice,
+            "caution": ALARM_CAUTION,
+            "acknowledge": {
+                "topic": self.ack_topic,
+                "payload": {"alarm_id": self.alarm_id, "by": "<your name>", "role": "<your role>"},
+                # the alarm returns after this if its condition is still present
+                "valid_s": self.ack_valid_s,
+            },
         }
+
+
+PAGER_MAX = 160
+ALARM_CAUTION = (
+    "Decision support only: a prompt for the treating clinician, to be checked against "
+    "local protocols and licensed practice. Hourwatch controls no pump and no order."
+)
+_STATE_WORD = {
+    State.INACTIVE: "clear",
+    State.PENDING: "pending",
+    State.ACTIVE: "ALARM",
+    State.ESCALATED: "ALARM (escalated)",
+    State.ACKNOWLEDGED: "acknowledged",
+    State.RESOLVED: "resolved",
+}

@@ -5,8 +5,12 @@ from __future__ import annotations
 
 import bisect
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 from .context import BedContext
+
+if TYPE_CHECKING:
+    from .effects import AdviceIssued
 from .series import MinuteSeries
 
 KEEP_S = 3 * 86400.0  # clinical inputs older than this are forgotten
@@ -34,6 +38,8 @@ class BedState:
     last_labs_time: float | None = None
     last_eval_minute: int | None = None
     notices: set[str] = field(default_factory=set)
+    last_advice: AdviceIssued | None = None
+    last_advice_hour: int | None = None  # clock-hour index the advice was computed from
 
     def add_intake(self, t: float, ml: float) -> None:
         i = bisect.bisect_right(self.intake_times, t)

@@ -166,17 +166,19 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
     if end is None:
         return NOT_YET
     w = measure(v.bed.series, end, c.window_h * 60)
+    scaled = w.volume_over_length()  # missing minutes are not counted as no urine
 
     def explain() -> tuple[str, dict[str, Any]]:
-        ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml}
+        ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml,
+              "volume_scaled_ml": round(scaled, 1)}  # fmt: skip
         if not w.covered:
             return f"window only {w.coverage:.0%} measured", ev
         return (
-            f"{_ml(w.volume_ml)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
+            f"{_ml(scaled)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
             ev,
         )
 
-    return Finding(w.covered and w.volume_ml < c.threshold_ml, explain)
+    return Finding(w.covered and scaled < c.threshold_ml, explain)
 
 
 def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:

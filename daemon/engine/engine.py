@@ -11,14 +11,14 @@ import heapq
 import json
 from collections import Counter
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Any
 
 from pydantic import BaseModel, ValidationError
 
 from .advice import replacement_advice
-from .alarms import AlarmEvent, Kind
+from .alarms import AlarmEvent, Kind, State
 from .bedstate import BedState, Vitals
 from .checks import DeviceSeen
 from .cleaning import Cleaner, CumulativeCleaner, IntervalCleaner
@@ -31,11 +31,12 @@ from .evaluator import OPEN, Evaluator
 from .lifecycle import AlarmBook
 from .outcomes import DECODE_REJECTIONS, DeviceQuality, Outcome
 from .profiles import DeviceProfile, Semantics
-from .rules import HourlyAbove, RuleDef, VolumeAbove
+from .rules import HourlyAbove, Hypovolemia, RuleDef, VolumeAbove
 from .series import MinuteSeries
 from .timefmt import as_epoch
 
 DEDUP_HORIZON_S = 86400.0
+ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
 
 
 @dataclass(frozen=True, slots=True)
@@ -112,6 +113,7 @@ class Engine:
         self.prefix = topic_prefix.rstrip("/")
         self._bed_topic = self.prefix + "/beds/"
         self._ack_topic = self.prefix + "/ack"
+        self._slowest_period = max((p.timing.period_s for p in self.profiles), default=60)
         self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
         self.devices: dict[str, _Device] = {}
         self.beds: dict[str, BedState] = {}
@@ -126,12 +128,20 @@ class Engine:
             r.id for r in self.rules
             if isinstance(r.check, HourlyAbove | VolumeAbove) and r.kind is Kind.PHYSIOLOGICAL
         }  # fmt: skip
+        # alarms whose page carries the replacement advice
+        self._advice_rules = self._high_output | {
+            r.id for r in self.rules
+            if set(r.while_active) & self._high_output or isinstance(r.check, Hypovolemia)
+        }  # fmt: skip
         self._due: dict[str, float] = {}  # bed -> its rules' next due time
         self._heap: list[tuple[float, str]] = []  # (due, bed), stale entries skipped
 
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
-        t_now = as_epoch(now)
+        """One inbound message, received at `now`."""
+        return self._finish(self._step(topic, payload, as_epoch(now)))
+
+    def _step(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
@@ -371,19 +381,28 @@ class Engine:
             dev = self.devices.get(dev_id)
             if dev is not None and dev.bed == bed.bed_id and dev.last_seen is not None:
                 seen, period = dev.last_seen, dev.decoder.profile.timing.period_s
-            else:  # bound but never heard from: silent since the binding
+            else:  # bound but never heard from: silent since the binding; its family
+                # is unknown until it speaks, so allow the slowest family's period
                 seen = bed.bound_at
-                period = dev.decoder.profile.timing.period_s if dev else 60
+                period = dev.decoder.profile.timing.period_s if dev else self._slowest_period
             out.append(DeviceSeen(dev_id, seen, period))
         return tuple(out)
 
     def _after_reading(self, bed: BedState, now: float) -> list[Effect]:
         """Rules on windows change only when the latest minute moves on."""
         latest = bed.series.latest_minute()
-        if latest is None or latest == bed.last_eval_minute:
+        prev = bed.last_eval_minute
+        if latest is None or latest == prev:
             return []
-        effects = self._advice(bed, latest, now)
-        return effects + self._evaluate(bed, now)
+        effects = self._evaluate(bed, now)
+        hour_done = prev is not None and (latest + 1) // 60 != (prev + 1) // 60
+        opened = any(
+            isinstance(e, AlarmEvent) and e.rule in self._high_output and e.state is State.ACTIVE
+            for e in effects
+        )
+        if hour_done or opened:  # a new page carries the suggestion with it
+            effects = self._advice(bed, latest, now) + effects
+        return effects
 
     def _evaluate(self, bed: BedState, now: float) -> list[Effect]:
         if not self.rules:
@@ -398,9 +417,11 @@ class Engine:
         return list(events)
 
     def _advice(self, bed: BedState, latest: int, now: float) -> list[Effect]:
-        """At each completed clock hour while a high-output alarm is open."""
-        prev = bed.last_eval_minute
-        if prev is None or latest // 60 == prev // 60:
+        """Replacement advice from the last completed clock hour, while a
+        high-output alarm is open; once per hour."""
+        hour = (latest + 1) // 60 - 1
+        first = bed.series.first_minute
+        if bed.last_advice_hour == hour or first is None or hour * 60 < first:
             return []
         open_ids = tuple(
             a.alarm_id for a in self.book.active(bed.bed_id)
@@ -408,20 +429,38 @@ class Engine:
         )  # fmt: skip
         if not open_ids:
             return []
-        hour_start = (latest // 60 - 1) * 60
-        vol, _ = bed.series.minutes(hour_start, hour_start + 60)
+        s = bed.series.sums(hour * 60, hour * 60 + 60)
         na = bed.labs.get("serum_na_mmol_l")
         una = bed.labs.get("urine_na_mmol_l")
         uk = bed.labs.get("urine_k_mmol_l")
         ctx = bed.context
         advice = replacement_advice(
-            hour_start * 60.0, float(vol.sum()), ctx.replacement,
+            hour * 3600.0, s.volume_ml, ctx.replacement,
             serum_na=na[-1][1] if na else None,
             urine_na=una[-1][1] if una else None,
             urine_k=uk[-1][1] if uk else None,
             weight_kg=ctx.weight_kg, tbw_fraction=ctx.tbw_fraction,
         )  # fmt: skip
-        return [AdviceIssued(now, bed.bed_id, ctx.ward, advice, open_ids)]
+        issued = AdviceIssued(now, bed.bed_id, ctx.ward, advice, open_ids)
+        bed.last_advice, bed.last_advice_hour = issued, hour
+        return [issued]
+
+    def _finish(self, effects: list[Effect]) -> list[Effect]:
+        """Alarm events leave the engine knowing how to be acknowledged and, for
+        high-output alarms, carrying the bed's current replacement advice."""
+        out: list[Effect] = []
+        for e in effects:
+            if isinstance(e, AlarmEvent):
+                bed = self.beds.get(e.bed)
+                adv = bed.last_advice if bed is not None else None
+                fresh = adv is not None and e.time - adv.time <= ADVICE_FRESH_S
+                e = replace(
+                    e, ack_topic=self._ack_topic, ack_valid_s=self.book.ack_validity_s,
+                    advice=adv.to_json() | {"pager": adv.advice.summary}
+                    if adv is not None and fresh and e.rule in self._advice_rules else None,
+                )  # fmt: skip
+            out.append(e)
+        return out
 
     def next_wakeup(self) -> float | None:
         """Epoch seconds of the next time-driven change, or None."""
@@ -448,7 +487,9 @@ class Engine:
 
     def tick(self, now: datetime | float) -> list[Effect]:
         """Carry out everything due at or before `now`."""
-        t = as_epoch(now)
+        return self._finish(self._tick(as_epoch(now)))
+
+    def _tick(self, t: float) -> list[Effect]:
         effects: list[Effect] = list(self.book.tick(t))
         due_beds = set()
         heap = self._heap

@@ -602,6 +602,7 @@ class AlarmBook:
                 by=by,
                 role=role,
                 suppressed_by=rec.suppressed_by,
+                title=rec.spec.title,
             )
         )
         if step.to in _ENDED:

@@ -41,8 +41,18 @@ class Window:
     def covered(self) -> bool:
         return self.coverage >= COVERED_FRACTION
 
+    @property
+    def known_min(self) -> int:
+        return self.measured_min + self.estimated_min
+
     def rate_ml_kg_h(self, weight_kg: float) -> float:
-        return self.volume_ml / weight_kg / (self.length_min / 60.0)
+        """Rate over the minutes with data: a covered window may still lack up to
+        10% of its minutes, and those must not count as no urine."""
+        return self.volume_ml / weight_kg / (max(self.known_min, 1) / 60.0)
+
+    def volume_over_length(self) -> float:
+        """The volume scaled from the minutes with data to the whole window."""
+        return self.volume_ml * self.length_min / max(self.known_min, 1)
 
     def to_json(self) -> dict[str, object]:
         lo, hi = window_bounds(self.end_minute, self.length_min)
