@@ -126,10 +126,12 @@ def run(args: argparse.Namespace) -> int:
         stop.set()
 
     old = signal.signal(signal.SIGTERM, on_signal)
-    wall_h = built.hours * 60 / args.speed / 60
+    wall_s = built.hours * 60.0 / args.speed  # simulated minutes / (minutes per second)
     print(
         f"publishing {len(built.messages)} messages for {beds} beds, {built.hours:g} simulated "
-        f"h in about {wall_h * 60:.0f} min to {host}:{port} (invented data)",
+        f"h in about {wall_s / 60:.1f} min to {host}:{port} (invented data; payload times are "
+        f"the wall clock, so at --speed {args.speed:g} a real-time service sees flows "
+        f"{60 * args.speed:g}x the simulated ones)",
         flush=True,
     )
 
