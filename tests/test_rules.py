@@ -183,12 +183,15 @@ def test_e4_pod_hourly_and_advice() -> None:
     assert ev.priority is Priority.MEDIUM
     assert ev.evidence["threshold_ml_h"] == 200.0
     assert ev.evidence["comparator"] == "gt"
-    # Advice at the next completed clock hour, from that hour's output: 50-75% of 230 mL
-    # = 115-172.5 mL/h of 0.45% NaCl (E4; 50-75% replacement is common practice).
+    # When the alarm opens it carries advice from the last completed clock hour (hour 2,
+    # 250 mL); at the next completed clock hour, advice from hour 3: 50-75% of 230 mL =
+    # 115-172.5 mL/h of 0.45% NaCl (E4; 50-75% replacement is common practice).
     advice = bed.ward.advice()
-    assert advice, "no advice while pod-hourly is active"
-    first = advice[0]
-    assert first.time == at(3)
+    assert [x.time for x in advice] == [ev.time, at(3)]
+    opening = advice[0].advice
+    assert opening.hour_start == at(1) and opening.hour_output_ml == pytest.approx(250.0)
+    assert (opening.rate_low_ml_h, opening.rate_high_ml_h) == pytest.approx((125.0, 187.5))
+    first = advice[1]
     a = first.advice
     assert a.hour_start == at(2)
     assert a.hour_output_ml == pytest.approx(230.0, abs=0.01)
@@ -251,17 +254,9 @@ def test_exactly_200_ml_is_pod_with_the_at_least_comparator() -> None:
     assert "pod-hourly" in bed.ward.fired()
 
 
-WINDOW_END_BUG = (
-    "engine bug: windows end at the minute holding the latest reading "
-    "(MinuteSeries.latest_minute = floor(t/60), used by checks._end), but a reading taken "
-    "on a minute boundary puts its volume in the minute before (series.spread uses "
-    "ceil(t/60)-1), so every window holds length-1 minutes of data plus an empty minute: "
-    "a steady 201 mL/h reads 197.7 mL per hour"
-)
-
-
-@pytest.mark.xfail(strict=True, reason=WINDOW_END_BUG)
 def test_a_steady_201_ml_per_hour_for_two_hours_is_pod() -> None:
+    """Readings on the minute: each window must hold exactly 60 minutes of output (once it
+    held 59 and an empty minute: 201 mL/h read 197.7 mL per hour)."""
     # source: Halbgewachs & Domes, Can Fam Physician 2015: > 200 mL/h for 2 consecutive h
     bed = started(80.0)
     bed.hours([201.0] * 3)
@@ -270,7 +265,6 @@ def test_a_steady_201_ml_per_hour_for_two_hours_is_pod() -> None:
     assert ev.time == at(2)  # (00:00, 01:00] and (01:00, 02:00] each hold 201 mL
 
 
-@pytest.mark.xfail(strict=True, reason=WINDOW_END_BUG)
 def test_pod_hourly_from_the_first_reading() -> None:
     """205 mL/h from the first reading. High-output rules count any window (the volume
     counted is real, DESIGN §3): at 01:59 the rolling hour (23:59, 00:59] holds 59 minutes
@@ -355,8 +349,9 @@ def test_negative_balance_alone_is_medium() -> None:
 FLOW_ML_H = 140.0  # 2 mL/kg/h at 70 kg; 2.33 mL a minute, above the rule's 2-mL "no flow"
 
 
-@pytest.mark.xfail(strict=True, reason=WINDOW_END_BUG + "; so flow-stopped never fires")
 def test_flow_stopped_after_60_minutes_on_minute_readings() -> None:
+    """Exactly 60 min after the flow stopped (once: never, as the last window minute was
+    always the empty one a boundary reading opens)."""
     # common practice, no single source: 60 min without flow after >= 0.5 mL/kg/h
     bed = started(70.0)
     bed.hours([FLOW_ML_H] * 2)
@@ -457,16 +452,6 @@ def test_a_silent_meter_never_looks_like_oliguria() -> None:
     assert w.alarms("oliguria-kdigo-1") == []
 
 
-PARTIAL_WINDOW_BUG = (
-    "engine bug: checks.rate_below (mean mode) divides the window's volume by the whole "
-    "window length (windows.Window.rate_ml_kg_h) although up to 10% of a 'covered' window "
-    "may be unmeasured; the missing minutes count as no urine, so 36 mL/h at 70 kg "
-    "(0.514 mL/kg/h) reads 0.46 at 5.4 h of data and raises stage 1; likewise "
-    "checks.volume_below: 0.9 mL/h reads 9.7 mL per 12 h at 10.8 h and raises anuria-12h"
-)
-
-
-@pytest.mark.xfail(strict=True, reason=PARTIAL_WINDOW_BUG)
 @pytest.mark.parametrize(
     ("rule_id", "ml_h", "hours"),
     [
@@ -479,7 +464,7 @@ PARTIAL_WINDOW_BUG = (
 def test_unmeasured_minutes_never_look_like_oliguria(rule_id: str, ml_h: float, hours: int) -> None:
     """From the first reading on, the output is above the rule's line; the minutes before
     monitoring began are unknown, and DESIGN §3 says missing data must never look like
-    oliguria."""
+    oliguria. (Once counted as no urine: 36 mL/h read 0.46 mL/kg/h at 5.4 h of data.)"""
     bed = started(70.0)
     bed.hours([ml_h] * hours)
     assert bed.ward.alarms(rule_id) == []
