@@ -522,6 +522,22 @@ def test_overlapping_interval_is_refused(name: str) -> None:
 
 
 @pytest.mark.parametrize("name", INTERVAL)
+def test_interval_jitter_of_a_few_seconds_keeps_the_volume(name: str) -> None:
+    """Device times jitter and local-time stamps are truncated to the second: an
+    interval that overlaps the one before by a few seconds is the next interval, not
+    a second report of the same urine."""
+    p = period(name)
+    m = Meter(PROFILES[name])
+    send_steady(m, T0, 3, 10.0)
+    assert m.send(T0 + 3 * p - 20, 10.0) == []  # 20 s early: overlaps by 20 s
+    assert m.send(T0 + 4 * p + 7, 10.0) == []  # 7 s late
+    assert m.outcomes() == {"accepted": 5}
+    assert m.total() == pytest.approx(50.0)
+    vol, _ = m.minutes(T0 - p, T0 + 4 * p + 60)
+    assert (vol >= 0).all()
+
+
+@pytest.mark.parametrize("name", INTERVAL)
 def test_interval_volume_beyond_the_maximum_flow_is_implausible(name: str) -> None:
     p = PROFILES[name]
     m = Meter(p)

@@ -17,7 +17,8 @@ from .outcomes import Outcome
 from .profiles import DeviceProfile
 from .series import ESTIMATED, MEASURED, MinuteSeries
 
-RATE_LOOKBACK_S = 1800.0  # flow before a bag change is judged over the last 30 min
+RATE_LOOKBACK_S = 1800.0
+JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval is jitter  # flow before a bag change is judged over the last 30 min
 
 
 @dataclass(slots=True)
@@ -305,11 +306,19 @@ class IntervalCleaner:
     def feed(self, t: float, r: Reading) -> list[Outcome]:
         if r.volume_ml > self._max_flow_s * self._interval:
             return [Outcome.IMPLAUSIBLE_FLOW]
-        width = self._interval - 1.0  # a second of jitter is not an overlap
-        i = bisect.bisect_left(self._ends, t)
         ends = self._ends
-        if (i < len(ends) and ends[i] - t < width) or (i > 0 and t - ends[i - 1] < width):
+        i = bisect.bisect_left(ends, t)
+        start = t - self._interval
+        # A little overlap is clock jitter (and second-truncated stamps): the volume
+        # is kept and placed after the earlier interval. More is a second report of
+        # the same urine.
+        slack = max(1.0, JITTER_SHARE * self._interval)
+        if i < len(ends) and ends[i] - t < self._interval - slack:
             return [Outcome.CONFLICTING_DUPLICATE]
+        if i > 0 and ends[i - 1] > start:
+            if ends[i - 1] - start > slack:
+                return [Outcome.CONFLICTING_DUPLICATE]
+            start = ends[i - 1]
         ends.insert(i, t)
         if len(ends) > 4096:
             del ends[:2048]
@@ -318,7 +327,7 @@ class IntervalCleaner:
             out = Outcome.REORDERED
         else:
             self.last_t = t
-        self.series.spread(t - self._interval, t, r.volume_ml, MEASURED)
+        self.series.spread(start, t, r.volume_ml, MEASURED)
         return [out]
 
 
