@@ -1,10 +1,17 @@
-"""`hourwatch replay LOG`: a log through the engine on a virtual clock."""
+"""`hourwatch replay LOG`: a log through the engine on a virtual clock; with
+`--report` an HTML review report, with `--compare`/`--compare-profiles` a what-if
+comparison of two rule sets or two device profile sets."""
 
 from __future__ import annotations
 
 import argparse
+import json
+import sqlite3
 import sys
+from collections.abc import Iterator
+from html import escape
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from ..caution import CAUTION
 from ..engine.effects import Effect
@@ -17,6 +24,9 @@ from ..replay import replay_file
 from ..rule_files import load_policy, load_rules
 from ..timeline import effect_json, effect_text
 
+if TYPE_CHECKING:
+    from ..review.plots import BedPicture
+
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r = sub.add_parser("replay", help="replay a JSON Lines log through the engine")
@@ -28,19 +38,57 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.add_argument(
         "--until", default=None, help="run the clock on to this ISO-8601 time after the last line"
     )
+    r.add_argument(
+        "--report",
+        type=Path,
+        default=None,
+        metavar="OUT.html",
+        help="write a self-contained HTML review report",
+    )
+    r.add_argument(
+        "--plots",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="with --report: also write each bed's plot as DIR/BED.png",
+    )
+    r.add_argument(
+        "--compare",
+        type=Path,
+        default=None,
+        metavar="RULES_B",
+        help="what-if: replay again under this rule folder, compare with --rules",
+    )
+    r.add_argument(
+        "--compare-profiles",
+        type=Path,
+        default=None,
+        metavar="PROFILES_B",
+        help="what-if: replay again with this device profile folder",
+    )
     r.set_defaults(run=run)
+
+
+def _where(folder: Path | None) -> str:
+    return str(folder) if folder else "shipped defaults"
 
 
 def run(args: argparse.Namespace) -> int:
     if not args.log.is_file():
         raise UserError(f"{args.log}: no such log file")
-    profiles = load_profiles(args.profiles)
+    if args.plots and not args.report:
+        raise UserError("--plots needs --report")
     until = None
     if args.until:
         try:
             until = parse_iso(args.until)
         except TimeError as exc:
             raise UserError(f"--until: {exc}") from None
+    if args.compare or args.compare_profiles:
+        return _compare(args, until)
+    if args.report:
+        return _report(args, until, comparison=None)
+    profiles = load_profiles(args.profiles)
     engine = Engine(profiles, load_rules(args.rules), load_policy(args.rules))
     out = sys.stdout
     if args.hourly:
@@ -67,4 +115,92 @@ def run(args: argparse.Namespace) -> int:
             f"\n{result.messages} messages replayed, {len(result.bad_lines)} malformed "
             f"line(s) skipped.\n{CAUTION}\n"
         )
+    return 0
+
+
+def _report(args: argparse.Namespace, until: float | None, comparison: str | None) -> int:
+    # imported here: matplotlib is only needed for a report
+    from ..review import report as html_report
+    from ..review.explain import review
+    from ..review.recorder import with_progress
+
+    profiles = load_profiles(args.profiles)
+    rules = load_rules(args.rules)
+    rv = review(
+        args.log,
+        profiles,
+        rules,
+        load_policy(args.rules),
+        until=until,
+        progress=sys.stderr,
+        warn=sys.stderr,
+    )
+    inp = html_report.ReportInput(
+        rv,
+        args.log,
+        _where(args.rules),
+        _where(args.profiles),
+        rv.bad_lines,
+        comparison or "",
+    )
+
+    def bar(items: list[BedPicture]) -> Iterator[BedPicture]:
+        return with_progress(items, len(items), "plots", sys.stderr, every=1)
+
+    text = html_report.render(inp, progress=bar, plots_dir=args.plots)
+    try:
+        html_report.write(args.report, text)
+    except OSError as exc:
+        raise UserError(f"{args.report}: cannot write: {exc.strerror}") from None
+    raised = sum(1 for e in rv.episodes if e.raised)
+    assert rv.engine is not None
+    print(
+        f"{args.report}: report of {rv.messages} messages, {len(rv.engine.beds)} bed(s), "
+        f"{raised} alarm(s) raised.\n{CAUTION}"
+    )
+    return 0
+
+
+def _compare(args: argparse.Namespace, until: float | None) -> int:
+    from ..review import compare as what_if
+    from ..review import verdicts
+    from ..review.episodes import episodes
+    from ..review.recorder import replay_alarms, warn_about
+
+    prof_a = load_profiles(args.profiles)
+    prof_b = load_profiles(args.compare_profiles) if args.compare_profiles else prof_a
+    rules_a, pol_a = load_rules(args.rules), load_policy(args.rules)
+    rules_b = load_rules(args.compare) if args.compare else rules_a
+    pol_b = load_policy(args.compare) if args.compare else pol_a
+    label_a = f"rules {_where(args.rules)}; profiles {_where(args.profiles)}"
+    label_b = (
+        f"rules {_where(args.compare or args.rules)}; "
+        f"profiles {_where(args.compare_profiles or args.profiles)}"
+    )
+    runs = []
+    sides = (("A", prof_a, rules_a, pol_a, label_a), ("B", prof_b, rules_b, pol_b, label_b))
+    for name, prof, rules, pol, label in sides:
+        rec, res = replay_alarms(
+            args.log, prof, rules, pol, progress=sys.stderr, label=f"replay {name}", until=until
+        )
+        warn_about(res, args.log, sys.stderr if name == "A" else None)
+        bound = {b: s.bound_at for b, s in res.engine.beds.items()}
+        runs.append(what_if.summarize(label, episodes(rec.events), bound, rec.end_time))
+    store = verdicts.store_path(args.log)
+    try:
+        anns = verdicts.load(store)
+    except (sqlite3.Error, ValueError, OSError) as exc:  # must not hide the comparison
+        print(f"{store}: annotations not read: {exc}", file=sys.stderr)
+        anns = []
+    c = what_if.compare(runs[0], runs[1], anns)
+    lines = what_if.text(c)
+    if args.json:
+        sys.stdout.write(json.dumps(c) + "\n")
+    else:
+        sys.stdout.write("\n".join(lines) + f"\n\n{CAUTION}\n")
+    if args.report:
+        section = (
+            '<h2 id="what-if">What-if comparison</h2><pre>' + escape("\n".join(lines)) + "</pre>"
+        )
+        return _report(args, until, comparison=section)
     return 0

@@ -1,0 +1,83 @@
+"""`hourwatch annotate SOURCE ALARM_ID --actionable yes|no`: a reviewer's verdict."""
+
+from __future__ import annotations
+
+import argparse
+import sqlite3
+import sys
+from pathlib import Path
+
+from ..errors import UserError
+from ..profile_files import load_profiles
+from ..review import verdicts
+from ..review.episodes import episodes
+from ..review.explain import parse_alarm_id
+from ..review.recorder import replay_alarms
+from ..rule_files import load_policy, load_rules
+
+
+def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    c = sub.add_parser(
+        "annotate",
+        help="store a reviewer's verdict on one alarm (SOURCE.annotations.sqlite)",
+        description="Record whether an alarm was actionable. The verdict is kept in "
+        "SOURCE.annotations.sqlite beside the source; a later verdict on the same alarm "
+        "replaces the earlier one. `replay --compare` counts them per rule set.",
+    )
+    c.add_argument("source", type=Path, help="recorded messages (JSON Lines log or journal)")
+    c.add_argument("alarm_id", help="as `hourwatch replay` prints it: BED/RULE/TIMESTAMP")
+    c.add_argument(
+        "--actionable",
+        required=True,
+        choices=["yes", "no"],
+        help="did the alarm call for a clinical action?",
+    )
+    c.add_argument("--note", default=None, help="free text (no patient identifiers)")
+    c.add_argument("--profiles", type=Path, default=None, help="device profile folder")
+    c.add_argument(
+        "--rules", type=Path, default=None, help="rule folder the alarm was raised under"
+    )
+    c.set_defaults(run=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    if not args.source.is_file():
+        raise UserError(f"{args.source}: no such file")
+    parse_alarm_id(args.alarm_id)
+    if args.note is not None and len(args.note) > 2000:
+        raise UserError("--note: at most 2000 characters")
+    rules = load_rules(args.rules)
+    rec, _ = replay_alarms(
+        args.source,
+        load_profiles(args.profiles),
+        rules,
+        load_policy(args.rules),
+        progress=sys.stderr,
+        label="annotate",
+    )
+    ep = next((e for e in episodes(rec.events) if e.alarm_id == args.alarm_id), None)
+    if ep is None:
+        raise UserError(f"no alarm {args.alarm_id!r} in {args.source} under these rules")
+    start, end = (ep.activated if ep.activated is not None else ep.onset), ep.ended
+    path = verdicts.store_path(args.source)
+    ann = verdicts.Annotation(
+        ep.alarm_id,
+        ep.bed,
+        ep.rule,
+        start,
+        end,
+        args.actionable == "yes",
+        args.note,
+        verdicts.now_iso(),
+    )
+    try:
+        before = verdicts.put(path, ann)
+        total = len(verdicts.load(path))
+    except (sqlite3.Error, ValueError, OSError) as exc:
+        raise UserError(f"{path}: cannot store the annotation: {exc}") from None
+    verdict = "actionable" if ann.actionable else "not actionable"
+    print(f"{ep.alarm_id}: {verdict} (stored in {path}; {total} annotation(s) in all)")
+    if before is not None:
+        was = "actionable" if before.actionable else "not actionable"
+        print(f"  replaced the earlier verdict of {before.annotated_at}: {was}")
+    return 0

@@ -1,0 +1,285 @@
+"""A replay that keeps what review needs: every alarm event and advice, what became
+of each reading (compactly, per bed), documented intake, and a progress bar.
+
+The engine tells the fate of each meter message through its observer hook; the
+recorder only files it. Shell side (reads the source, draws the progress bar).
+"""
+
+from __future__ import annotations
+
+import sys
+from array import array
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TextIO, TypeVar
+
+from pydantic import ValidationError
+
+from ..engine.alarms import AlarmEvent
+from ..engine.clinical import IntakeMessage
+from ..engine.effects import AdviceIssued, Effect
+from ..engine.engine import Engine, ReadingTrace
+from ..engine.escalation import EscalationPolicy
+from ..engine.evaluator import Notice
+from ..engine.outcomes import Outcome
+from ..engine.profiles import DeviceProfile
+from ..engine.rules import RuleDef
+from ..logfile import BadLine, LogRecord
+from ..replay import ReplayResult, drive
+from ..sources import open_source
+
+Record = tuple[int, LogRecord] | BadLine
+T = TypeVar("T")
+
+# Outcomes as small integers, so a month of readings fits in compact arrays.
+OUTCOMES: tuple[Outcome, ...] = tuple(Outcome)
+CODE: dict[Outcome, int] = {o: i for i, o in enumerate(OUTCOMES)}
+HELD = CODE[Outcome.SPIKE_HELD]
+
+BAG_CHANGES = frozenset({Outcome.BAG_CHANGE, Outcome.BAG_CHANGE_INFERRED})
+ARTEFACTS = frozenset({Outcome.ARTEFACT_DROPPED, Outcome.SPIKE_CONFIRMED, Outcome.IMPLAUSIBLE_FLOW})
+
+
+@dataclass(slots=True)
+class BedReadings:
+    """Every traced message of one bed's meters: effective time and final outcome."""
+
+    times: array[float] = field(default_factory=lambda: array("d"))
+    codes: array[int] = field(default_factory=lambda: array("B"))
+
+    def outcome_counts(self, t0: float, t1: float) -> dict[str, int]:
+        """Readings with an effective time in (t0, t1], by outcome (times are near sorted,
+        so a plain scan of the span is enough)."""
+        out: dict[str, int] = {}
+        for t, c in zip(self.times, self.codes, strict=True):
+            if t0 < t <= t1:
+                name = str(OUTCOMES[c])
+                out[name] = out.get(name, 0) + 1
+        return dict(sorted(out.items()))
+
+    def marks(self, wanted: frozenset[Outcome]) -> list[tuple[float, Outcome]]:
+        codes = {CODE[o] for o in wanted}
+        return [(t, OUTCOMES[c]) for t, c in zip(self.times, self.codes, strict=True) if c in codes]
+
+
+@dataclass(frozen=True, slots=True)
+class Intake:
+    time: float
+    volume_ml: float
+    fluid: str
+
+
+def effective_time(tr: ReadingTrace) -> float:
+    """The time the engine used for the reading (receive time if the meter clock was
+    not believed, or if the message never became a reading)."""
+    if tr.device_time is None or Outcome.CLOCK_SKEW in tr.outcomes:
+        return tr.received
+    return tr.device_time
+
+
+class Recorder:
+    """Collects a replay's alarm events, advice, notices, readings and intake."""
+
+    def __init__(self, prefix: str = "hourwatch", keep_traces_for: str | None = None) -> None:
+        self.events: list[AlarmEvent] = []
+        self.advice: list[AdviceIssued] = []
+        self.notices: list[Notice] = []
+        self.readings: dict[str, BedReadings] = {}
+        self.intake: dict[str, list[Intake]] = {}
+        self.first_time: float | None = None
+        self.last_time: float | None = None
+        # full traces of one bed (for explain), each with its final outcome
+        self.trace_bed = keep_traces_for
+        self.traces: list[tuple[ReadingTrace, Outcome]] = []
+        self._held: dict[str, tuple[BedReadings, int, int | None]] = {}
+        self._intake_tail = "/intake"
+        self._bed_prefix = prefix.rstrip("/") + "/beds/"
+
+    # --- the engine's observer -------------------------------------------------
+    def observe(self, tr: ReadingTrace) -> None:
+        bed = tr.bed
+        if bed is None:
+            return
+        log = self.readings.get(bed)
+        if log is None:
+            log = self.readings[bed] = BedReadings()
+        outs = tr.outcomes
+        if len(outs) == 2:  # the first settles the reading this device held before
+            held = self._held.pop(tr.device_id, None)
+            if held is not None:
+                hlog, i, j = held
+                hlog.codes[i] = CODE[outs[0]]
+                if j is not None:
+                    self.traces[j] = (self.traces[j][0], outs[0])
+        last = outs[-1]
+        log.times.append(effective_time(tr))
+        log.codes.append(CODE[last])
+        j = None
+        if bed == self.trace_bed:
+            j = len(self.traces)
+            self.traces.append((tr, last))
+        if last is Outcome.SPIKE_HELD:
+            self._held[tr.device_id] = (log, len(log.codes) - 1, j)
+
+    # --- the replay's effects ------------------------------------------------
+    def on_effects(self, effects: list[Effect]) -> None:
+        for e in effects:
+            if isinstance(e, AlarmEvent):
+                self.events.append(e)
+            elif isinstance(e, AdviceIssued):
+                self.advice.append(e)
+            elif isinstance(e, Notice):
+                self.notices.append(e)
+
+    # --- the records on their way in -------------------------------------------
+    def watch(self, records: Iterable[Record]) -> Iterator[Record]:
+        """Pass records through, noting times and documented intake."""
+        prefix, tail = self._bed_prefix, self._intake_tail
+        for item in records:
+            if not isinstance(item, BadLine):
+                rec = item[1]
+                t = rec.time.timestamp()
+                if self.first_time is None:
+                    self.first_time = t
+                if self.last_time is None or t > self.last_time:
+                    self.last_time = t
+                topic = rec.topic
+                if topic.endswith(tail) and topic.startswith(prefix):
+                    self._note_intake(topic[len(prefix) : -len(tail)], rec)
+            yield item
+
+    def _note_intake(self, bed: str, rec: LogRecord) -> None:
+        try:
+            payload = rec.payload
+            msg = (
+                IntakeMessage.model_validate_json(payload)
+                if isinstance(payload, str)
+                else IntakeMessage.model_validate(payload)
+            )
+        except ValidationError:
+            return  # the engine rejects and counts it
+        self.intake.setdefault(bed, []).append(
+            Intake(msg.time.timestamp(), msg.volume_ml, msg.fluid)
+        )
+
+    @property
+    def end_time(self) -> float:
+        """The replay's last moment: the last record or the last event, whichever is later."""
+        ends = [t for t in (self.last_time, self.events[-1].time if self.events else None) if t]
+        return max(ends) if ends else 0.0
+
+
+def count_records(path: Path) -> int | None:
+    """Lines in a JSON Lines file, for the progress bar; None for anything else."""
+    try:
+        with path.open("rb") as fh:
+            if fh.read(16).startswith(b"SQLite format 3"):
+                return None
+            fh.seek(0)
+            n = 0
+            while chunk := fh.read(1 << 20):
+                n += chunk.count(b"\n")
+            return n
+    except OSError:
+        return None
+
+
+def with_progress(
+    items: Iterable[T], total: int | None, label: str, stream: TextIO, every: int = 5000
+) -> Iterator[T]:
+    """A rich progress bar on `stream` while items pass; nothing when not a terminal."""
+    if not stream.isatty():
+        yield from items
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeElapsedColumn
+
+    columns = (
+        "[progress.description]{task.description}",
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+    )
+    with Progress(*columns, console=Console(file=stream), transient=True) as bar:
+        task = bar.add_task(label, total=total)
+        n = 0
+        for item in items:
+            yield item
+            n += 1
+            if n % every == 0:
+                bar.update(task, completed=n)
+        bar.update(task, completed=n)
+
+
+def run(
+    path: Path,
+    make_engine: Callable[[Callable[[ReadingTrace], None]], Engine],
+    recorder: Recorder,
+    *,
+    until: float | None = None,
+    progress: TextIO | None = None,
+    label: str = "replay",
+    before_each: Callable[[], None] | None = None,
+    also: Callable[[list[Effect]], None] | None = None,
+) -> ReplayResult:
+    """Replay `path` through a fresh engine that reports to `recorder`.
+
+    `before_each` runs between records, when the previous record has been fully
+    processed (explain uses it to follow one alarm's evidence); `also` sees every
+    batch of effects after the recorder."""
+    engine = make_engine(recorder.observe)
+    records: Iterable[Record] = recorder.watch(open_source(path))
+    if before_each is not None:
+        records = _between(records, before_each)
+    if progress is not None and progress.isatty():
+        records = with_progress(records, count_records(path), label, progress)
+    if also is None:
+        return drive(engine, records, recorder.on_effects, until)
+    extra = also
+
+    def both(effects: list[Effect]) -> None:
+        recorder.on_effects(effects)
+        extra(effects)
+
+    return drive(engine, records, both, until)
+
+
+def _between(records: Iterable[Record], hook: Callable[[], None]) -> Iterator[Record]:
+    for item in records:
+        hook()
+        yield item
+    hook()
+
+
+def warn_about(result: ReplayResult, path: Path, stream: TextIO | None = sys.stderr) -> None:
+    if stream is None:
+        return
+    bad = len(result.bad_lines)
+    if bad:
+        print(f"{path}: {bad} malformed line(s) skipped", file=stream)
+    if result.clock_went_back:
+        print(
+            f"{path}: {result.clock_went_back} line(s) had a receive time earlier than the "
+            "line before; replayed at the earlier line's time",
+            file=stream,
+        )
+
+
+def replay_alarms(
+    path: Path,
+    profiles: list[DeviceProfile],
+    rules: list[RuleDef],
+    policy: EscalationPolicy,
+    progress: TextIO | None = None,
+    label: str = "replay",
+    until: float | None = None,
+) -> tuple[Recorder, ReplayResult]:
+    """A replay that keeps alarm events, advice and intake, without reading traces."""
+    recorder = Recorder()
+
+    def make(_: Callable[[ReadingTrace], None]) -> Engine:
+        return Engine(profiles, rules, policy)  # no observer: nothing per reading
+
+    result = run(path, make, recorder, until=until, progress=progress, label=label)
+    return recorder, result
