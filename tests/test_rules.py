@@ -557,9 +557,26 @@ def test_replacement_behind_when_no_intake_is_documented() -> None:
     pod = w.first("pod-hourly")
     behind = w.first("replacement-behind")
     assert pod is not None and behind is not None
-    assert behind.time == pod.time
+    # pending from the moment the diuresis alarm opens; active after its alarm-condition
+    # delay (a setting in alert_rules/replacement-behind.toml)
+    pending = w.first("replacement-behind", State.PENDING)
+    assert pending is not None and pending.time == pod.time
+    delay = rule("replacement-behind").condition_delay_s
+    assert behind.time == pod.time + delay
     assert behind.evidence["intake_ml"] == 0.0
     assert "replacement-excess" not in w.fired()
+
+
+def test_replacement_documented_in_time_keeps_behind_quiet() -> None:
+    """Intake of 60% of the output, charted every half hour: never below 50%."""
+    # common practice: replace 50-75% of the output during a diuresis (DESIGN §4, §6)
+    bed = started(70.0)
+    for h in range(4):
+        for half in (0, 30):
+            bed.intake(at(h, half, 1), 90.0)  # 180 mL an hour against 300 mL out: 60%
+            bed.minutes(per_minute([300.0])[:30])
+    assert "pod-hourly" in bed.ward.fired()
+    assert "replacement-behind" not in bed.ward.fired()
 
 
 def test_replacement_excess_when_intake_exceeds_output() -> None:
