@@ -61,13 +61,17 @@ Item = Inbound | Published | Connection
 
 
 class MqttLink:
-    """Owns the paho client. `out` receives Inbound, Published and Connection items."""
+    """Owns the paho client. Received messages go to `out`; confirmations and connection
+    changes go to `control` (so that, under load, they do not wait behind a backlog of
+    readings) followed by a call of `wake`."""
 
     def __init__(
         self,
         cfg: BrokerConfig,
         subscriptions: list[str],
         out: queue.SimpleQueue[Any],
+        control: queue.SimpleQueue[Any],
+        wake: Callable[[], None],
         clock: Callable[[], float],
         will: tuple[str, bytes],
         log: Any,
@@ -75,6 +79,8 @@ class MqttLink:
         self.cfg = cfg
         self.subscriptions = subscriptions
         self._out = out
+        self._control = control
+        self._wake = wake
         self._clock = clock
         self._log = log
         self.conn = 0  # bumped on every successful connect
@@ -146,6 +152,10 @@ class MqttLink:
         return info.mid, accepted
 
     # --- paho callbacks (paho's thread): convert and enqueue only ---------------
+    def _signal(self, item: Published | Connection) -> None:
+        self._control.put(item)
+        self._wake()
+
     def _on_connect(
         self,
         client: mqtt.Client,
@@ -163,7 +173,7 @@ class MqttLink:
         # Re-issued on every connect: a broker that lost its state still gets them.
         client.subscribe([(f, SUBSCRIBE_QOS) for f in self.subscriptions])
         self.connected.set()
-        self._out.put(Connection(self.conn, True, bool(flags.session_present)))
+        self._signal(Connection(self.conn, True, bool(flags.session_present)))
 
     def _on_disconnect(
         self,
@@ -176,7 +186,7 @@ class MqttLink:
         was_up = self.connected.is_set()
         self.connected.clear()
         if was_up:
-            self._out.put(Connection(self.conn, False, reason=str(reason)))
+            self._signal(Connection(self.conn, False, reason=str(reason)))
         else:
             self.last_error = f"cannot connect: {reason}"
 
@@ -199,7 +209,7 @@ class MqttLink:
         reason: ReasonCode,
         props: Properties | None,
     ) -> None:
-        self._out.put(Published(mid, not reason.is_failure, str(reason)))
+        self._signal(Published(mid, not reason.is_failure, str(reason)))
 
     def _on_subscribe(
         self,

@@ -1,23 +1,27 @@
 """Restart recovery (DESIGN §2, §5): rebuild the engine from the journal, then say what
 is still to be published.
 
-1. The bed contexts in force at the window start (they are retained on the broker and
-   may be days old) are fed first, as if received at the window start.
-2. The journal's messages of the last `window` (the longest rule window plus a margin)
-   are re-fed in receive order, each after `engine.advance(recv_time)`, exactly as live
-   and replay drive the engine. Nothing is published or journaled for them.
-3. `engine.advance(now)` runs the clock over the downtime: an escalation that fell due
+1. Where to start: the longest rule window plus a margin before now, or earlier, so
+   that every alarm episode the journal last saw open is rebuilt from a full rule
+   window before its onset (same alarm id, same escalation clock). Never further back
+   than the retention.
+2. The bed contexts in force at the start (they are retained on the broker and may be
+   days old) are fed first, as if received at the start.
+3. The journal's messages from the start are re-fed in receive order, each after
+   `engine.advance(recv_time)`, exactly as live and replay drive the engine. Nothing is
+   published or journaled for them.
+4. `engine.advance(now)` runs the clock over the downtime: an escalation that fell due
    while the service was down comes out here.
-4. Reconcile with the journal. An event already journaled is never published again.
+5. Reconcile with the journal. An event already journaled is never published again.
    One that is not is new, and is journaled and published once, if it can only come from
    the downtime or from a crash between journaling a batch of messages and journaling
    its effects: that is, if it falls at or after the last journaled event (the live
    service journals effects in time order, one transaction per batch). The live service
    journals each message with the time its engine used, so the re-feed reproduces live
    events exactly (same ids, same times). When the journal reaches back before the
-   window, events in the first `guard_s` (the longest rule window) may differ from what
-   ran live (e.g. an episode that began before the window): those are counted and logged,
-   never published, so nobody is paged twice for an old condition.
+   start, events in the first `guard_s` (the longest rule window) may differ from what
+   ran live (the rebuilt windows are still filling): those are counted and logged, never
+   published, so nobody is paged twice for an old condition.
 """
 
 from __future__ import annotations
@@ -139,12 +143,57 @@ def _has_older(journal: Journal, t0: float) -> bool:
         older.close()  # type: ignore[attr-defined]
 
 
+@dataclass
+class _Journaled:
+    """What the journal says about events since the lookback start."""
+
+    last_time: float | None = None
+    other_keys: set[tuple[object, ...]] = field(default_factory=set)
+    first_seen: dict[str, float] = field(default_factory=dict)  # alarm id -> first event
+    last_state: dict[str, str] = field(default_factory=dict)  # alarm id -> latest state
+
+    def open_onsets(self) -> list[float]:
+        """Onsets of the alarm episodes the journal last saw still open."""
+        return [self.first_seen[a] for a, st in self.last_state.items() if st not in _ENDED_STATES]
+
+
+_ENDED_STATES = frozenset({"resolved", "inactive"})
+
+
+def _read_events(journal: Journal, since: float | None) -> _Journaled:
+    out = _Journaled()
+    for ev in journal.events_between(since, None):
+        out.last_time = ev.time if out.last_time is None else max(out.last_time, ev.time)
+        if ev.kind == "alarm" and ev.alarm_id is not None:
+            out.first_seen.setdefault(ev.alarm_id, ev.time)
+            out.last_state[ev.alarm_id] = str(ev.body.get("state", ""))
+        k = _journaled_key(ev)
+        if k is not None:
+            out.other_keys.add(k)
+    return out
+
+
 def recover(
-    engine: Engine, journal: Journal, now: float, window_s: float, guard_s: float, prefix: str
+    engine: Engine,
+    journal: Journal,
+    now: float,
+    window_s: float,
+    guard_s: float,
+    prefix: str,
+    max_lookback_s: float | None = None,
 ) -> Recovery:
+    """Rebuild `engine` from the journal (see the module text). The re-feed starts at
+    now - window_s, or earlier: `guard_s` (the longest rule window) before the onset of
+    the oldest alarm episode the journal says is still open, so that episode is rebuilt
+    with its own id and escalation clock. Never further back than `max_lookback_s`."""
     started = time.perf_counter()
-    t0 = now - window_s
+    floor = now - max_lookback_s if max_lookback_s is not None else None
+    seen = _read_events(journal, floor)
+    t0 = min([now - window_s] + [t - guard_s for t in seen.open_onsets()])
+    if floor is not None:
+        t0 = max(t0, floor)
     rec = Recovery(t0, now, complete=not _has_older(journal, t0))
+    rec.last_event_time = seen.last_time
     refed: list[Effect] = []
     memory = _LatestContexts(prefix)
     messages = journal.messages_between(t0, None, bed_topics=memory)
@@ -167,15 +216,7 @@ def recover(
     rec.last_message_time = t if rec.messages else None
     downtime = engine.advance(max(now, t))
     journaled = journal.alarm_event_keys(t0)
-    others: set[tuple[object, ...]] = set()
-    for ev in journal.events_between(t0, None):
-        rec.last_event_time = (
-            ev.time if rec.last_event_time is None else max(rec.last_event_time, ev.time)
-        )
-        k = _journaled_key(ev)
-        if k is not None:
-            others.add(k)
-    cut = rec.last_event_time if rec.last_event_time is not None else -math.inf
+    cut = seen.last_time if seen.last_time is not None else -math.inf
     if not rec.complete:
         cut = max(cut, t0 + guard_s)
     for e in refed + downtime:
@@ -187,7 +228,7 @@ def recover(
             else:
                 rec.differs.append(e)
         elif (k := _other_key(e)) is not None:
-            if k in others:
+            if k in seen.other_keys:
                 rec.already_journaled += 1
             elif e.time >= cut:
                 rec.to_publish.append(e)

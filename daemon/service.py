@@ -67,6 +67,7 @@ BATCH_MAX = 16  # mosquitto stops at 20 unacked in-flight messages (FIELD-NOTES.
 BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
 HOUSEKEEPING_S = 0.25
 PRUNE_EVERY_S = 600.0
+PRUNE_BATCH = 500  # rows per pruning transaction: a few ms of the worker's time
 STOP_CONFIRM_S = 2.0  # at stop: wait this long for outstanding confirmations
 JOB_ID = "engine-wakeup"
 
@@ -93,6 +94,22 @@ def topic_level(text: str) -> str:
     """A ward or bed id as one topic level: no separator, no wildcard, never empty."""
     out = text.replace("/", "_").replace("+", "_").replace("#", "_")
     return out or "_"
+
+
+EventRow = tuple[float, str, str | None, str | None, dict[str, object]]
+
+
+def journal_row(e: Effect) -> EventRow:
+    """An engine effect as the journal's (time, kind, bed, alarm_id, body)."""
+    if isinstance(e, AlarmEvent):
+        return (e.time, "alarm", e.bed, e.alarm_id, e.to_json())
+    if isinstance(e, AdviceIssued):
+        return (e.time, "advice", e.bed, None, e.to_json())
+    if isinstance(e, RejectedInput):
+        return (e.time, "rejected", None, None, e.to_json())
+    body: dict[str, object] = {"bed": e.bed, "ward": e.ward, "code": e.code, "text": e.text,
+                               "time": iso(e.time)}  # fmt: skip
+    return (e.time, "notice", e.bed, None, body)
 
 
 class _Stop:
@@ -152,7 +169,8 @@ class Service:
         self.guard_s = longest_window_s(self.rules)
         self.window_s = self.guard_s + cfg.recovery.margin_s
         self.lock = threading.RLock()  # the engine's: worker and timer job
-        self.queue: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self.queue: queue.SimpleQueue[Any] = queue.SimpleQueue()  # received messages
+        self.control: queue.SimpleQueue[Any] = queue.SimpleQueue()  # confirmations, connection
         self.metrics = Metrics()
         self.stats = ServiceStats()
         self.journal: Journal | None = None
@@ -167,7 +185,7 @@ class Service:
         self._connected = False
         self._last_status: tuple[object, ...] | None = None
         self._worker: threading.Thread | None = None
-        self._pruner: threading.Thread | None = None
+        self._next_prune = -math.inf  # monotonic time of the next pruning batch
         self._stopping = threading.Event()
         self._stop_reason = "stopped"
         self.failed: str | None = None  # the worker died: the process must exit non-zero
@@ -180,11 +198,17 @@ class Service:
     def start(self) -> None:
         cfg = self.cfg
         self.stats.started = self.clock()
+        # Recovery reads through the journal's own read connections, whose file checks
+        # open and close the database file: in one process, closing any descriptor of a
+        # file drops all its POSIX locks, including the writer's. So recovery gets a
+        # journal of its own, closed before the worker's long-lived one is opened.
+        with Journal(cfg.journal.path, retention_days=cfg.journal.retention_days) as j:
+            self._recover(j)
         self.journal = Journal(cfg.journal.path, retention_days=cfg.journal.retention_days)
-        self._recover()
         will = offline_status(self.clock(), "connection lost", self.stats.started)
         self.link = MqttLink(
-            cfg.broker, self.subscriptions, self.queue, self.clock,
+            cfg.broker, self.subscriptions, self.queue, self.control,
+            lambda: self.queue.put(_WAKE), self.clock,
             (self._topic("status"), will.to_bytes()), self.log,
         )  # fmt: skip
         self.outbox = Outbox(self.link.publish, cfg.publish.confirm_timeout_s)
@@ -194,8 +218,6 @@ class Service:
             self._arm()
         self._worker = threading.Thread(target=self._work, name="hourwatch-worker", daemon=True)
         self._worker.start()
-        self._pruner = threading.Thread(target=self._prune, name="hourwatch-prune", daemon=True)
-        self._pruner.start()
         if cfg.health.listen:
             host, port = split_address(cfg.health.listen, allow_zero=True)
             self.health = HealthServer(host, port, self.health_report, self.render_metrics)
@@ -224,19 +246,19 @@ class Service:
             self.link.stop()
         if self.health is not None:
             self.health.stop()
-        if self._pruner is not None:
-            self._pruner.join(2.0)
         if self.journal is not None:
             self.journal.close()
             self.journal = None
         self.log.info("service_stopped", reason=reason)
 
     # --- recovery -----------------------------------------------------------------
-    def _recover(self) -> None:
-        assert self.journal is not None
+    def _recover(self, journal: Journal) -> None:
         now = self.clock()
         with self.lock:
-            rec = recover(self.engine, self.journal, now, self.window_s, self.guard_s, self.prefix)
+            rec = recover(
+                self.engine, journal, now, self.window_s, self.guard_s, self.prefix,
+                max_lookback_s=self.cfg.journal.retention_days * 86400.0,
+            )  # fmt: skip
             self._now = max(now, rec.last_message_time or now)
         self.stats.recovery = rec
         with self.metrics.lock:
@@ -333,23 +355,25 @@ class Service:
 
     def _handle(self, items: list[Any]) -> None:
         assert self.journal is not None and self.outbox is not None and self.link is not None
-        inbound: list[Inbound] = []
         confirmed: list[Published] = []
-        for item in items:
-            if isinstance(item, Inbound):
-                inbound.append(item)
-            elif isinstance(item, Published):
+        while True:  # confirmations and connection changes first: they never wait
+            try:
+                item = self.control.get_nowait()
+            except queue.Empty:
+                break
+            if isinstance(item, Published):
                 confirmed.append(item)
             elif isinstance(item, Connection):
                 self._connection(item)
+        if confirmed:
+            self._confirm(confirmed)
+        inbound = [item for item in items if isinstance(item, Inbound)]
         if inbound:
             self._ingest(inbound)
         else:
             with self.lock:
                 effects, self._timer_effects = self._timer_effects, []
             self._emit(effects)
-        if confirmed:
-            self._confirm(confirmed)
         self.outbox.flush(self._connected)
 
     def _ingest(self, batch: list[Inbound]) -> None:
@@ -444,16 +468,16 @@ class Service:
         self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True))
         self.outbox.flush(self._connected)
         deadline = time.monotonic() + STOP_CONFIRM_S
+        # received messages still queued are left unacknowledged: the broker keeps them
         while self.outbox.in_flight and self._connected and time.monotonic() < deadline:
             try:
-                item = self.queue.get(timeout=0.05)
+                item = self.control.get(timeout=0.05)
             except queue.Empty:
                 continue
             if isinstance(item, Published):
                 self._confirm([item])
             elif isinstance(item, Connection):
                 self._connection(item)
-            # received messages are left unacknowledged: the broker keeps them for us
         left = [m for m in self.outbox.waiting if m.event_ids] + [
             m for m in self.outbox.in_flight.values() if m.event_ids
         ]
@@ -466,18 +490,7 @@ class Service:
         if not effects:
             return
         assert self.journal is not None and self.outbox is not None
-        rows: list[tuple[float, str, str | None, str | None, dict[str, object]]] = []
-        for e in effects:
-            if isinstance(e, AlarmEvent):
-                rows.append((e.time, "alarm", e.bed, e.alarm_id, e.to_json()))
-            elif isinstance(e, AdviceIssued):
-                rows.append((e.time, "advice", e.bed, None, e.to_json()))
-            elif isinstance(e, RejectedInput):
-                rows.append((e.time, "rejected", None, None, e.to_json()))
-            elif isinstance(e, Notice):
-                rows.append((e.time, "notice", e.bed, None,
-                             {"bed": e.bed, "ward": e.ward, "code": e.code, "text": e.text,
-                              "time": iso(e.time)}))  # fmt: skip
+        rows = [journal_row(e) for e in effects]
         ids = self.journal.append_events(rows)  # journaled before it is published
         now = self.clock()
         for e, event_id in zip(effects, ids, strict=True):
@@ -566,6 +579,7 @@ class Service:
         self._publish_states(force=False)
         self._publish_status()
         self.outbox.flush(self._connected)
+        self._prune()
 
     def _publish_states(self, force: bool) -> None:
         assert self.outbox is not None
@@ -705,19 +719,22 @@ class Service:
             self._arm()
         self.queue.put(_WAKE)
 
-    # --- pruning (own thread, own journal connection: never blocks ingest for long) ---
+    # --- pruning: one small batch at a time, between ingest batches ------------------
     def _prune(self) -> None:
-        cfg = self.cfg.journal
-        wait = 5.0  # soon after the start, then every PRUNE_EVERY_S
-        while not self._stopping.wait(wait):
-            wait = PRUNE_EVERY_S
-            try:
-                with Journal(cfg.path, retention_days=cfg.retention_days) as j:
-                    n = j.prune(self.clock())
-                if n:
-                    self.log.info("journal_pruned", rows=n, retention_days=cfg.retention_days)
-            except Exception:
-                self.log.error("journal_prune_failed", exc_info=True)
+        """Retention: a batch of at most PRUNE_BATCH rows per call (a few ms), then again
+        soon while there is more, else in PRUNE_EVERY_S. Done by the worker itself, so the
+        journal keeps one connection per process (see `start`)."""
+        if time.monotonic() < self._next_prune:
+            return
+        assert self.journal is not None
+        try:
+            n = self.journal.prune(self.clock(), batch=PRUNE_BATCH, pause_s=0, max_batches=2)
+        except Exception:  # e.g. the disk is busy: ingest matters more, try later
+            self.log.error("journal_prune_failed", exc_info=True)
+            n = 0
+        if n:
+            self.log.info("journal_pruned", rows=n, retention_days=self.cfg.journal.retention_days)
+        self._next_prune = time.monotonic() + (1.0 if n >= PRUNE_BATCH else PRUNE_EVERY_S)
 
     # --- helpers ----------------------------------------------------------------------
     def _topic(self, kind: str, ward: str | None = None, bed: str | None = None,

@@ -228,13 +228,22 @@ def broker() -> Iterator[Broker]:
 class Watcher:
     """A paho subscriber that records everything on a filter (retained flag included)."""
 
-    def __init__(self, b: Broker, topic: str = "hourwatch/#", client_id: str = "test-watch"):
+    def __init__(
+        self,
+        b: Broker,
+        topic: str = "hourwatch/#",
+        client_id: str = "test-watch",
+        persistent: bool = False,  # keep the session (and queued messages) over a restart
+    ):
         import paho.mqtt.client as mqtt
         from paho.mqtt.enums import CallbackAPIVersion
 
         self.messages: list[tuple[str, bytes, bool]] = []
         self._cond = threading.Condition()
-        c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=client_id)
+        c = mqtt.Client(
+            CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=not persistent
+        )
+        c.reconnect_delay_set(1, 1)
 
         def on_message(client: Any, userdata: Any, msg: Any) -> None:
             with self._cond:
