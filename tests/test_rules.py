@@ -600,16 +600,6 @@ def test_gated_rules_stay_quiet_without_pod() -> None:
     assert not {"replacement-behind", "replacement-excess", "labs-due"} & bed.ward.fired()
 
 
-PARTIAL_MINUTE_BUG = (
-    "engine bug: MinuteSeries.latest_minute is ceil(t/60)-1, so after a reading s seconds "
-    "past the minute the windows end at that partly observed minute and hold only 59 min "
-    "+ s s of output: a steady 201 mL/h read 1 s or 30 s past the minute never raises "
-    "pod-hourly. Ending windows at the last complete minute, floor(t/60)-1, passes this "
-    "and every other rule test"
-)
-
-
-@pytest.mark.xfail(strict=True, reason=PARTIAL_MINUTE_BUG)
 @pytest.mark.parametrize("second", [1.0, 30.0])
 def test_a_steady_201_ml_per_hour_is_pod_whatever_second_the_meter_reads(second: float) -> None:
     """A meter whose readings fall 1 s or 30 s past the minute: each completed rolling

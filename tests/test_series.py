@@ -108,7 +108,9 @@ def test_latest_reading_never_moves_back() -> None:
     assert s.latest_time == T0 + 600
     # a reading on a minute boundary measures up to it: it completes the minute before
     assert s.latest_minute() == M0 + 9
-    s.note_reading(T0 + 630)
+    s.note_reading(T0 + 630)  # half of minute M0 + 10 observed: not yet a whole minute
+    assert s.latest_minute() == M0 + 9
+    s.note_reading(T0 + 660)
     assert s.latest_minute() == M0 + 10
 
 

@@ -146,12 +146,13 @@ class MinuteSeries:
 
     # --- reading -------------------------------------------------------------
     def latest_minute(self) -> int | None:
-        """The last minute the latest accepted reading covers (windows end here).
+        """The last whole minute the latest accepted reading covers (windows end here).
 
-        A reading at t measures up to t, so one on a minute boundary completes the
-        minute before it; spreads use the same rule (minute ceil(t/60) - 1).
+        A reading at t measures up to t; the minute t falls in is only partly
+        observed, so windows end at the minute before it and every window holds
+        whole minutes (a reading on a minute boundary completes that minute).
         """
-        return None if self.latest_time is None else math.ceil(self.latest_time / 60.0) - 1
+        return None if self.latest_time is None else math.floor(self.latest_time / 60.0) - 1
 
     def _refresh(self) -> None:
         d, n = self._dirty, self._n
