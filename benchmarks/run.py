@@ -10,7 +10,7 @@ import platform
 import sys
 from collections.abc import Sequence
 
-from benchmarks import bench_intake, bench_journal, bench_review
+from benchmarks import bench_intake, bench_journal, bench_replay, bench_review
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -20,6 +20,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_intake.main(args)
     print()
     rc = bench_journal.main([]) or rc
+    print()
+    rc = bench_replay.main([]) or rc
     print()
     rc = bench_review.main([]) or rc
     return rc
