@@ -61,6 +61,10 @@ class BrokerConfig(_Strict):
     keepalive_s: Annotated[int, Field(ge=5, le=3600)] = 30
     # MQTT 5 only: how long the broker keeps the session while we are away.
     session_expiry_s: Annotated[int, Field(ge=60, le=0xFFFFFFFE)] = 7 * 86400
+    # MQTT 5 only: how many unacknowledged readings the broker may send us at once. We
+    # acknowledge after the journal's fsync, so this bounds the batch (3.1.1: the
+    # broker's own max_inflight_messages, 20 by default, bounds it).
+    receive_maximum: Annotated[int, Field(ge=20, le=65535)] = 256
     reconnect_min_s: Annotated[int, Field(ge=1, le=60)] = 1
     reconnect_max_s: Annotated[int, Field(ge=1, le=600)] = 30
     username: Annotated[str, Field(min_length=1, max_length=256)] | None = None

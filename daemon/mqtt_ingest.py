@@ -121,6 +121,7 @@ class MqttLink:
         if self.v5:
             props = Properties(PacketTypes.CONNECT)  # type: ignore[no-untyped-call]
             props.SessionExpiryInterval = cfg.session_expiry_s
+            props.ReceiveMaximum = cfg.receive_maximum
             self.client.connect_async(
                 cfg.host, cfg.port, cfg.keepalive_s, clean_start=False, properties=props
             )

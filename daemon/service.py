@@ -29,7 +29,6 @@ from typing import Any, TextIO
 
 import structlog
 from apscheduler.executors.pool import ThreadPoolExecutor  # type: ignore[import-untyped]
-from apscheduler.jobstores.base import JobLookupError  # type: ignore[import-untyped]
 from apscheduler.schedulers.background import BackgroundScheduler  # type: ignore[import-untyped]
 from apscheduler.triggers.date import DateTrigger  # type: ignore[import-untyped]
 from pydantic import ValidationError
@@ -63,9 +62,14 @@ from .recovery import Recovery, longest_window_s, recover
 from .rule_files import load_policy, load_rules
 
 OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
-BATCH_MAX = 16  # mosquitto stops at 20 unacked in-flight messages (FIELD-NOTES.md)
+# Received messages journaled per fsync. The broker stops sending once this many are
+# unacknowledged: mosquitto's default is 20 (FIELD-NOTES.md), which MQTT 5's Receive
+# Maximum raises; half of it leaves the broker sending while a batch is written.
+BATCH_MAX_311 = 16
+BATCH_MAX_CAP = 256
 BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
-HOUSEKEEPING_S = 0.25
+HOUSEKEEPING_S = 0.25  # the worker wakes at least this often
+HOUSEKEEPING_EVERY_S = 0.05  # timeouts, retained state and status at most this often
 PRUNE_EVERY_S = 600.0
 PRUNE_BATCH = 500  # rows per pruning transaction: a few ms of the worker's time
 STOP_CONFIRM_S = 2.0  # at stop: wait this long for outstanding confirmations
@@ -168,6 +172,11 @@ class Service:
         self.engine = Engine(profiles, self.rules, self.policy, topic_prefix=self.prefix)
         self.guard_s = longest_window_s(self.rules)
         self.window_s = self.guard_s + cfg.recovery.margin_s
+        self.batch_max = (
+            min(BATCH_MAX_CAP, cfg.broker.receive_maximum // 2)
+            if cfg.broker.protocol == "5"
+            else BATCH_MAX_311
+        )
         self.lock = threading.RLock()  # the engine's: worker and timer job
         self.queue: queue.SimpleQueue[Any] = queue.SimpleQueue()  # received messages
         self.control: queue.SimpleQueue[Any] = queue.SimpleQueue()  # confirmations, connection
@@ -185,7 +194,8 @@ class Service:
         self._connected = False
         self._last_status: tuple[object, ...] | None = None
         self._worker: threading.Thread | None = None
-        self._next_prune = -math.inf  # monotonic time of the next pruning batch
+        self._next_prune = -math.inf
+        self._next_housekeeping = -math.inf  # monotonic time of the next pruning batch
         self._stopping = threading.Event()
         self._stop_reason = "stopped"
         self.failed: str | None = None  # the worker died: the process must exit non-zero
@@ -321,7 +331,9 @@ class Service:
                 if stop:
                     self._finish()
                     return
-                self._housekeeping()
+                if time.monotonic() >= self._next_housekeeping:
+                    self._next_housekeeping = time.monotonic() + HOUSEKEEPING_EVERY_S
+                    self._housekeeping()
         except Exception as exc:  # never ack what was not journaled: die loudly instead
             self.failed = f"{type(exc).__name__}: {exc}"
             self.log.critical("worker_failed", error=self.failed, exc_info=True)
@@ -329,7 +341,7 @@ class Service:
             self.done.set()
 
     def _collect(self) -> tuple[list[Any], bool]:
-        """Block for the first item, then take what is already queued, up to BATCH_MAX
+        """Block for the first item, then take what is already queued, up to `batch_max`
         received messages (a group commit: under load batches fill, when idle a lone
         reading is journaled at once)."""
         items: list[Any] = []
@@ -342,7 +354,7 @@ class Service:
         items.append(first)
         n = 1 if isinstance(first, Inbound) else 0
         deadline = time.perf_counter() + BATCH_WAIT_S
-        while n < BATCH_MAX and time.perf_counter() < deadline:
+        while n < self.batch_max and time.perf_counter() < deadline:
             try:
                 item = self.queue.get_nowait()
             except queue.Empty:
@@ -691,13 +703,12 @@ class Service:
     def _arm(self) -> None:
         """Re-arm the one wake-up job to the engine's next wake-up (under the lock)."""
         nxt = self.engine.next_wakeup()
-        if nxt == self._armed or not self.scheduler.running:
+        armed = self._armed
+        if nxt is None or not self.scheduler.running or (armed is not None and armed <= nxt):
+            # An armed job that fires before the next wake-up finds nothing due and re-arms:
+            # far cheaper than re-arming the scheduler after every message.
             return
         self._armed = nxt
-        if nxt is None:
-            with contextlib.suppress(JobLookupError):
-                self.scheduler.remove_job(JOB_ID)
-            return
         delay = max(0.0, nxt - self.clock())  # the service clock may be a test's fake one
         run_at = datetime.now(UTC) + timedelta(seconds=delay)
         self.scheduler.add_job(

@@ -66,12 +66,13 @@ def journal_rows(path: Path) -> tuple[list, list]:
         return list(j.messages_between(None, None)), list(j.events_between(None, None))
 
 
-def test_store_and_forward_upload_raises_pod_hourly_alarm(broker, tmp_path):  # noqa: F811
+@pytest.mark.parametrize("protocol", ["5", "3.1.1"])
+def test_store_and_forward_upload_raises_pod_hourly_alarm(broker, tmp_path, protocol):  # noqa: F811
     """3 h of buffered readings at 300 mL/h (device times in the past), uploaded at once:
     journaled, acknowledged, and a pod-hourly alarm on the alarm topic within a second."""
     jpath = tmp_path / "j.db"
     w = Watcher(broker)
-    with running_service(broker, jpath, w) as svc:
+    with running_service(broker, jpath, w, broker__protocol=protocol) as svc:
         pub = publisher(broker)
         now = time.time()
         msgs = readings("rc-0101", now - 3 * 3600, 3.0)
@@ -173,14 +174,14 @@ def test_manual_ack_only_after_journaling_broker_redelivers(broker, tmp_path, mo
     publish_all(pub, [("hourwatch/beds/b01/context", context(["rc-1"]))], retain=True)
     with monkeypatch.context() as m:
         m.setattr(MqttLink, "ack", lambda self, mid, qos: True)  # journal, then no ack
-        with running_service(broker, jpath) as svc:
+        with running_service(broker, jpath, broker__receive_maximum=20) as svc:
             publish_all(pub, msgs)
             deadline = time.monotonic() + 3
             while time.monotonic() < deadline and svc.metrics.journaled < 21:
                 time.sleep(0.05)
             time.sleep(0.3)
             first = svc.metrics.journaled
-    # mosquitto's in-flight window (20 QoS 1 messages) stalls without acks
+    # the in-flight window (Receive Maximum 20 QoS 1 messages) stalls without acks
     assert 1 < first < len(msgs) + 1
     with running_service(broker, jpath) as svc:
         deadline = time.monotonic() + 5
