@@ -421,7 +421,7 @@ def explanation(rv: Review, ep: Episode, with_readings: bool = False) -> dict[st
     ]
     if notices:
         out["notices"] = notices
-    out["lifecycle"] = [_event_json(e) for e in ep.events]
+    out["lifecycle"] = [_event_json(e) for e in ep.events] if with_readings else _folded(ep.events)
     out["caution"] = CAUTION
     return out
 
@@ -545,7 +545,7 @@ def text(d: dict[str, Any]) -> list[str]:
     lines.append("")
     readings = d.get("readings")
     if readings is not None:
-        lines += _reading_lines(readings)
+        lines += _reading_lines(readings, bool(wins))
         lines.append("")
     sup = d.get("suppression")
     if sup:
@@ -600,6 +600,23 @@ def text(d: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _folded(events: list[AlarmEvent]) -> list[dict[str, Any]]:
+    """Events as JSON, each run of re-notifications as one item with `repeats` and
+    `until` (a month of an unacknowledged alarm is thousands of them)."""
+    out: list[dict[str, Any]] = []
+    i = 0
+    while i < len(events):
+        j = i
+        while j + 1 < len(events) and events[j + 1].reason == "renotify" == events[i].reason:
+            j += 1
+        item = _event_json(events[i])
+        if j > i:
+            item |= {"repeats": j - i + 1, "until": iso(events[j].time)}
+        out.append(item)
+        i = j + 1
+    return out
+
+
 def lifecycle_lines(events: list[dict[str, Any]]) -> list[str]:
     """One line per event; a run of re-notifications is folded into one line."""
     lines: list[str] = []
@@ -612,7 +629,9 @@ def lifecycle_lines(events: list[dict[str, Any]]) -> list[str]:
         who = f" by {e['by']} ({e['role']})" if e["by"] else ""
         page = f" -> page {', '.join(e['notify'])}" if e["notify"] else ""
         sup_ = f" [suppressed by {e['suppressed_by']}]" if e["suppressed_by"] else ""
-        what = e["reason"] if j == i else f"renotify x {j - i + 1} until {_when(events[j]['time'])}"
+        n = sum(int(x.get("repeats", 1)) for x in events[i : j + 1])
+        last = events[j].get("until", events[j]["time"])
+        what = e["reason"] if n == 1 else f"renotify x {n} until {_when(last)}"
         lines.append(
             f"  {_when(e['time'])}  {e['state'].upper():<12} {e['priority']:<6} "
             f"{what}{who}{sup_}{page}"
@@ -621,10 +640,11 @@ def lifecycle_lines(events: list[dict[str, Any]]) -> list[str]:
     return lines
 
 
-def _reading_lines(readings: list[dict[str, Any]]) -> list[str]:
+def _reading_lines(readings: list[dict[str, Any]], windowed: bool = True) -> list[str]:
     n = len(readings)
     plain = sum(1 for r in readings if r["outcome"] == "accepted" and "settled_later_as" not in r)
-    head = f"Readings that fed these windows: {n} ({plain} plain accepted)"
+    what = "that fed these windows" if windowed else "of the bed's meters in the hour before"
+    head = f"Readings {what}: {n} ({plain} plain accepted)"
     shown = (
         readings
         if n <= TEXT_READINGS_MAX

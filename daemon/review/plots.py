@@ -14,6 +14,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
+from itertools import pairwise
 from typing import Any
 
 import numpy as np
@@ -24,7 +25,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FixedLocator, FuncFormatter
 
 from ..engine import rules as r
-from ..engine.alarms import Priority
+from ..engine.alarms import URGENCY, Priority
 from ..engine.effects import AdviceIssued
 from ..engine.outcomes import Outcome
 from ..engine.series import ESTIMATED, UNKNOWN, MinuteSeries
@@ -98,7 +99,8 @@ def _time_axis(ax: Axes, t0: float, t1: float) -> None:
         return datetime.fromtimestamp(x * 86400.0, UTC).strftime(fmt)
 
     ax.xaxis.set_major_formatter(FuncFormatter(label))
-    ax.set_xlim(*_dt([t0, t1]))
+    pad = 0.012 * (t1 - t0)  # room for the first and last tick labels
+    ax.set_xlim(*_dt([t0 - pad, t1 + pad]))
 
 
 def _runs(mask: npt.NDArray[np.bool_]) -> list[tuple[int, int]]:
@@ -109,13 +111,21 @@ def _runs(mask: npt.NDArray[np.bool_]) -> list[tuple[int, int]]:
     return list(zip(np.flatnonzero(d == 1).tolist(), np.flatnonzero(d == -1).tolist(), strict=True))
 
 
-def _union(spans: list[tuple[float, float]]) -> list[tuple[float, float]]:
-    out: list[tuple[float, float]] = []
-    for a, b in sorted(spans):
-        if out and a <= out[-1][1]:
-            out[-1] = (out[-1][0], max(out[-1][1], b))
+def _most_urgent(
+    spans: list[tuple[float, float, Priority]],
+) -> list[tuple[float, float, Priority]]:
+    """Cut overlapping spans into pieces, each with the most urgent priority open."""
+    edges = sorted({t for a, b, _ in spans for t in (a, b)})
+    out: list[tuple[float, float, Priority]] = []
+    for a, b in pairwise(edges):
+        open_ = [p for s, e, p in spans if s <= a and e >= b]
+        if not open_:
+            continue
+        prio = max(open_, key=lambda p: URGENCY[p])
+        if out and out[-1][1] == a and out[-1][2] is prio:
+            out[-1] = (out[-1][0], b, prio)
         else:
-            out.append((a, b))
+            out.append((a, b, prio))
     return out
 
 
@@ -201,20 +211,21 @@ def draw(pic: BedPicture, dpi: int = 96) -> Figure:
             for ax in (ax_h, ax_d):
                 tag = name if (k == 0 and ax is ax_h) else None
                 ax.axvspan(a, b, zorder=0, label=tag, **style)
-    # alarm spans on the hourly panel: the union per priority, so overlaps do not darken
-    for prio in (Priority.INFO, Priority.LOW, Priority.MEDIUM, Priority.HIGH):
-        spans = _union(
-            [ep.span(pic.end) for ep in pic.episodes if ep.raised and ep.priority is prio]
+    # alarm spans on the hourly panel: at each moment the most urgent alarm open, so
+    # overlapping alarms neither darken nor hide one another's colour
+    shown: set[Priority] = set()
+    for a, b, prio in _most_urgent(
+        [(*ep.span(pic.end), ep.priority) for ep in pic.episodes if ep.raised]
+    ):
+        ax_h.axvspan(
+            *_dt([a, max(b, a + 60.0)]),
+            color=PRIORITY_COLOUR[prio],
+            alpha=0.45,
+            lw=0,
+            zorder=0.5,
+            label=f"alarm active ({prio})" if prio not in shown else None,
         )
-        for k, (a, b) in enumerate(spans):
-            ax_h.axvspan(
-                *_dt([a, max(b, a + 60.0)]),
-                color=PRIORITY_COLOUR[prio],
-                alpha=0.3,
-                lw=0,
-                zorder=0.5,
-                label=f"alarm active ({prio})" if k == 0 else None,
-            )
+        shown.add(prio)
     tr = ax_h.get_xaxis_transform()
     if pic.bag_changes:
         ax_h.plot(
@@ -307,7 +318,7 @@ def _fluids(ax: Axes, pic: BedPicture) -> None:
         lo = np.array([a.advice.rate_low_ml_h for a in pic.advice])
         hi = np.array([a.advice.rate_high_ml_h for a in pic.advice])
         ax.vlines(t, lo, hi, color=ADVICE, lw=2.2, label="suggested replacement (mL/h)")
-    ax.set_ylabel("fluids")
+    ax.set_ylabel("fluids (mL, mL/h)")
     ax.set_ylim(bottom=0)
     ax.legend(loc="upper left", fontsize=7, ncols=2, framealpha=0.85)
 

@@ -269,7 +269,7 @@ def _bed_section(pic: BedPicture, rv: Review, plots_dir: Path | None) -> str:
         f'<img class="plot" src="data:image/png;base64,{b64}" alt="{_e(alt)}">'
         '<p class="muted">Top: output in the 60 minutes ending at each minute, with alarm '
         "spans shaded by priority (darker = more urgent), bag changes (triangles) and "
-        "artefacts (crosses); grey bands are minutes with no data, light bands estimated "
+        "artefacts (crosses); grey bands are minutes with no data, hatched bands estimated "
         "minutes. Dashed lines are rule thresholds (weight-based ones at this bed's weight; "
         "KDIGO rules compare the mean over their window, not a single hour). Then: output "
         "in the last 24 hours; one lane per rule with alarms (triangles = acknowledgements); "
