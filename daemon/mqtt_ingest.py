@@ -113,6 +113,7 @@ class MqttLink:
         c.on_message = self._on_message
         c.on_publish = self._on_publish
         c.on_subscribe = self._on_subscribe
+        c.on_connect_fail = self._on_connect_fail
         self.client = c
 
     # --- control (service threads) -------------------------------------------
@@ -188,8 +189,13 @@ class MqttLink:
         self.connected.clear()
         if was_up:
             self._signal(Connection(self.conn, False, reason=str(reason)))
-        else:
-            self.last_error = f"cannot connect: {reason}"
+        elif not (self.last_error or "").startswith("broker refused"):
+            self.last_error = f"cannot connect: {reason}"  # a refusal says more: keep it
+
+    def _on_connect_fail(self, client: mqtt.Client, userdata: Any) -> None:
+        if self.last_error is None or not self.last_error.startswith("broker refused"):
+            self.last_error = f"cannot reach the broker at {self.cfg.host}:{self.cfg.port}"
+        self._log.warning("mqtt_unreachable", error=self.last_error)  # retried with backoff
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
         try:

@@ -58,10 +58,14 @@ def _wait_port(host: str, port: int, timeout: float, proc: subprocess.Popen[byte
     raise RuntimeError(f"mosquitto did not open {host}:{port} within {timeout} s")
 
 
-def broker_config(port: int, data_dir: Path, extra: str = "") -> str:
-    lines = [
-        f"listener {port} 127.0.0.1",
-        "allow_anonymous true",
+def broker_config(port: int, data_dir: Path, listener: str = "") -> str:
+    """mosquitto.conf; `listener` replaces the anonymous plaintext listener's settings
+    (e.g. TLS files, allow_anonymous false, password_file)."""
+    if listener:
+        lines = ["per_listener_settings true", f"listener {port} 127.0.0.1", listener.strip()]
+    else:
+        lines = [f"listener {port} 127.0.0.1", "allow_anonymous true"]
+    lines += [
         "persistence true",
         f"persistence_location {data_dir}/",
         # 1000 by default: an offline persistent session would silently lose the rest
@@ -76,7 +80,7 @@ def broker_config(port: int, data_dir: Path, extra: str = "") -> str:
         # otherwise it drops to user mosquitto, cannot write the 0700 temp dir, and
         # keeps serving while silently persisting nothing (FIELD-NOTES.md)
         lines.append("user root")
-    return "\n".join(lines) + "\n" + extra
+    return "\n".join(lines) + "\n"
 
 
 @dataclass
@@ -87,7 +91,7 @@ class LocalBroker:
     data_dir: Path
     host: str = "127.0.0.1"
     port: int = field(default_factory=free_port)
-    extra_config: str = ""
+    listener_config: str = ""
     proc: subprocess.Popen[bytes] | None = None
     kind: str = "local-binary"
 
@@ -97,7 +101,7 @@ class LocalBroker:
 
     def start(self) -> None:
         conf = self.data_dir / "mosquitto.conf"
-        conf.write_text(broker_config(self.port, self.data_dir, self.extra_config))
+        conf.write_text(broker_config(self.port, self.data_dir, self.listener_config))
         self.proc = subprocess.Popen(
             [self.binary, "-c", str(conf)],
             stdout=subprocess.DEVNULL,
@@ -198,11 +202,12 @@ def _try_container(data_dir: Path) -> ContainerBroker | None:
 
 
 @contextlib.contextmanager
-def running_broker(extra_config: str = "") -> Iterator[Broker]:
-    """A started broker, stopped on exit. `extra_config` applies to the local binary only."""
+def running_broker(listener_config: str = "") -> Iterator[Broker]:
+    """A started broker, stopped on exit. `listener_config` (see broker_config) needs the
+    local binary."""
     with tempfile.TemporaryDirectory(prefix="hw-broker-") as tmp:
         data_dir = Path(tmp)
-        b: Broker | None = None if extra_config else _try_container(data_dir)
+        b: Broker | None = None if listener_config else _try_container(data_dir)
         if b is None:
             binary = mosquitto_binary()
             if binary is None:
@@ -210,7 +215,7 @@ def running_broker(extra_config: str = "") -> Iterator[Broker]:
                     "no MQTT broker: no Docker engine reachable and no mosquitto binary "
                     "(apt-get install mosquitto, or run `make mosquitto`)"
                 )
-            b = LocalBroker(binary, data_dir, extra_config=extra_config)
+            b = LocalBroker(binary, data_dir, listener_config=listener_config)
             b.start()
         try:
             yield b

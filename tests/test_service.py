@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -177,7 +178,7 @@ def test_manual_ack_only_after_journaling_broker_redelivers(broker, tmp_path, mo
         with running_service(broker, jpath, broker__receive_maximum=20) as svc:
             publish_all(pub, msgs)
             deadline = time.monotonic() + 3
-            while time.monotonic() < deadline and svc.metrics.journaled < 21:
+            while time.monotonic() < deadline and svc.metrics.journaled < 20:
                 time.sleep(0.05)
             time.sleep(0.3)
             first = svc.metrics.journaled
@@ -287,3 +288,79 @@ def test_health_and_metrics_endpoints(broker, tmp_path):  # noqa: F811
         with pytest.raises(urllib.error.HTTPError) as err:
             urllib.request.urlopen(f"http://{host}:{port}/health", timeout=5)
         assert err.value.code == 503
+
+
+def _tls_files(d: Path) -> tuple[Path, Path, Path]:
+    """A throw-away CA and a server certificate for 127.0.0.1, made with openssl."""
+    openssl = shutil.which("openssl")
+    if openssl is None:
+        pytest.skip("openssl not found: cannot make test certificates")
+
+    def run(*args: str) -> None:
+        subprocess.run([openssl, *args], cwd=d, check=True, capture_output=True, timeout=30)
+
+    run("req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2", "-subj", "/CN=test-ca",
+        "-keyout", "ca.key", "-out", "ca.crt")  # fmt: skip
+    run("req", "-newkey", "rsa:2048", "-nodes", "-subj", "/CN=localhost",
+        "-keyout", "server.key", "-out", "server.csr")  # fmt: skip
+    (d / "san.ext").write_text("subjectAltName=DNS:localhost,IP:127.0.0.1\n")
+    run("x509", "-req", "-in", "server.csr", "-CA", "ca.crt", "-CAkey", "ca.key",
+        "-CAcreateserial", "-days", "2", "-extfile", "san.ext", "-out", "server.crt")  # fmt: skip
+    return d / "ca.crt", d / "server.crt", d / "server.key"
+
+
+def test_tls_with_password_is_accepted_and_anonymous_refused(tmp_path):
+    import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
+
+    from daemon.config import load_config
+    from daemon.service import Service
+    from tests.broker import running_broker
+
+    ca, cert, key = _tls_files(tmp_path)
+    passwd = shutil.which("mosquitto_passwd") or "/usr/bin/mosquitto_passwd"
+    if not os.access(passwd, os.X_OK):
+        pytest.skip("mosquitto_passwd not found")
+    pwfile = tmp_path / "passwords"
+    subprocess.run([passwd, "-c", "-b", str(pwfile), "hw-service", "invented-secret"],
+                   check=True, capture_output=True, timeout=30)  # fmt: skip
+    listener = (f"cafile {ca}\ncertfile {cert}\nkeyfile {key}\n"
+                f"allow_anonymous false\npassword_file {pwfile}\n")  # fmt: skip
+    conf = tmp_path / "hw.toml"
+    conf.write_text(
+        f'[broker]\nusername = "hw-service"\n[broker.tls]\nca_file = "{ca}"\n'
+        f'[health]\nlisten = ""\n[journal]\npath = "{tmp_path / "j.db"}"\n'
+    )
+    with running_broker(listener) as b:
+
+        def attempt(password: str) -> Service:
+            env = {"HOURWATCH_MQTT_PASSWORD": password}
+            svc = Service(load_config(conf, broker=b.address, env=env))
+            svc.start()
+            deadline = time.monotonic() + 5
+            while time.monotonic() < deadline and not (svc.connected or svc.link.last_error):
+                time.sleep(0.02)
+            return svc
+
+        good = attempt("invented-secret")
+        try:
+            assert good.connected, good.link.last_error
+        finally:
+            good.stop()
+        bad = attempt("wrong")
+        try:
+            assert not bad.connected and "authorized" in (bad.link.last_error or "").lower()
+        finally:
+            bad.stop()
+        # an anonymous client over TLS is refused too
+        refused: list[str] = []
+        anon = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="anon")
+        anon.tls_set(ca_certs=str(ca))
+        anon.on_connect = lambda c, u, f, rc, p: refused.append(str(rc))
+        anon.connect(b.host, b.port)
+        anon.loop_start()
+        deadline = time.monotonic() + 5
+        while not refused and time.monotonic() < deadline:
+            time.sleep(0.02)
+        anon.loop_stop()
+        assert refused and "authorized" in refused[0].lower()
