@@ -9,6 +9,8 @@ the patients have no names. Three beds on 60-s reference-cumulative meters:
             threshold, below 250 mL/h;
 - bed-norm: a normal output, 60 mL/h (0.75 mL/kg/h at 80 kg).
 
+The bedside nurse acknowledges bed-sev's pod-hourly alarm 20 minutes after it fires.
+
 Volumes are exact (no noise), so the expected windows follow from the flows.
 """
 
@@ -40,6 +42,8 @@ SEVERE_ML_H = 600.0  # invented
 BORDERLINE_ML_H = 220.0  # invented
 NORMAL_ML_H = 60.0  # invented
 SPIKE_AT_S = 50 * 60.0  # offset of the spike reading on bed-sev (invented)
+ACK_AFTER_S = 20 * 60.0  # invented
+ACK_BY = "nurse-17"  # invented
 
 
 def write_night(path: Path) -> Path:
@@ -59,6 +63,11 @@ def write_night(path: Path) -> Path:
         if bed == "bed-sev":  # the broker redelivers one message 5 s later
             t, topic, payload = next(r for r in s.records if r[0] > t0 + 70 * 60.0)
             recs.append((t + 5.0, topic, payload))
+    write_log(path, recs)
+    # the alarm id is known once the night has been replayed: acknowledge it then
+    pod = first_active(alarm_events(path), "bed-sev", "pod-hourly")
+    ack = {"alarm_id": pod.alarm_id, "by": ACK_BY, "role": "bedside-nurse"}
+    recs.append((pod.time + ACK_AFTER_S, "hourwatch/ack", ack))
     write_log(path, recs)
     return path
 

@@ -14,6 +14,7 @@ from daemon.profile_files import load_profiles
 from daemon.review.explain import explain
 from daemon.rule_files import load_policy, load_rules
 from tests.reviewtools import (
+    ACK_BY,
     BORDERLINE_ML_H,
     SEVERE_ML_H,
     T0,
@@ -146,3 +147,11 @@ def test_unknown_alarm_is_one_line_exit_2(
     assert main(["explain", str(night), alarm_id]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith("hourwatch: ") and "\n" not in err
+
+
+def test_acknowledgement_is_in_the_lifecycle(night: Path) -> None:
+    event = first_active(alarm_events(night), "bed-sev", "pod-hourly")
+    d = _explain(night, event.alarm_id)
+    acks = [e for e in d["lifecycle"] if e["reason"] == "acknowledged"]
+    assert len(acks) == 1 and acks[0]["by"] == ACK_BY and acks[0]["role"] == "bedside-nurse"
+    assert acks[0]["state"] == "acknowledged"

@@ -13,7 +13,7 @@ import pytest
 
 from daemon.caution import CAUTION
 from daemon.cli import main
-from tests.reviewtools import alarm_events, write_night
+from tests.reviewtools import ACK_BY, alarm_events, write_night
 
 VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source",
         "track", "wbr"}  # fmt: skip
@@ -122,6 +122,11 @@ def test_alarm_table_links_to_explanations(made: tuple[Path, str, Checker, Path]
         anchor = "alarm-" + re.sub(r"[^A-Za-z0-9_.-]", "-", alarm_id)
         assert anchor in ids and f'href="#{anchor}"' in text
     assert "recomputed windows equal the alarm event" in text
+
+
+def test_acknowledgement_shown(made: tuple[Path, str, Checker, Path]) -> None:
+    _, text, _, _ = made
+    assert f"{ACK_BY} (bedside-nurse)" in text  # in the alarm table and the lifecycle
 
 
 def test_quality_and_caution(made: tuple[Path, str, Checker, Path]) -> None:

@@ -169,7 +169,7 @@ def draw(pic: BedPicture, dpi: int = 96) -> Figure:
     axes = fig.subplots(len(heights), 1, sharex=True, gridspec_kw={"height_ratios": heights})
     # fixed margins: the constrained layout engine costs a draw of its own per figure
     fig.subplots_adjust(
-        left=0.105, right=0.985, top=1 - 0.4 / total, bottom=0.5 / total, hspace=0.18
+        left=0.105, right=0.985, top=1 - 0.62 / total, bottom=0.5 / total, hspace=0.18
     )
     ax_h, ax_d = axes[0], axes[1]
     fig.suptitle(f"Bed {pic.bed}: urine output", fontsize=11, x=0.01, ha="left")
@@ -254,7 +254,8 @@ def draw(pic: BedPicture, dpi: int = 96) -> Figure:
     for ax, values, lines in ((ax_h, hourly, hourly_thr), (ax_d, daily, day_thr)):
         top = max([float(values.max()) if values.size else 0.0] + [v for v, _ in lines])
         ax.set_ylim(0, max(top, 1.0) * 1.12)
-    ax_h.legend(loc="upper left", fontsize=7, ncols=4, framealpha=0.85)
+    # above the panel, so it hides no data
+    ax_h.legend(loc="lower left", bbox_to_anchor=(0.0, 1.0), fontsize=7, ncols=7, frameon=False)
     k = 2
     if lanes:
         _lanes(axes[k], pic, lanes)
