@@ -112,6 +112,7 @@ class Recovery:
     already_journaled: int = 0
     differs: list[AlarmEvent] = field(default_factory=list)  # re-fed, not journaled, old
     undelivered: list[StoredEvent] = field(default_factory=list)  # journaled, never confirmed
+    engine_errors: list[str] = field(default_factory=list)  # messages the engine choked on
     seconds: float = 0.0
 
 
@@ -206,8 +207,11 @@ def recover(
                 refed += engine.step(topic, payload, t0)
                 rec.contexts += 1
         t = max(t, m.recv_time)  # the engine's clock never runs backwards
-        refed += engine.advance(t)
-        refed += engine.step(m.topic, m.payload, t)
+        try:
+            refed += engine.advance(t)
+            refed += engine.step(m.topic, m.payload, t)
+        except Exception as exc:  # as live: one bad message must not stop every restart
+            rec.engine_errors.append(f"message {m.id} on {m.topic[:100]}: {exc!r}"[:300])
         rec.messages += 1
     if first:  # no message in the window: still bind the beds
         for topic, payload in sorted(memory.latest.items()):

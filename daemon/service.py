@@ -253,6 +253,15 @@ class Service:
             self.queue.put(_STOP)
             self._worker.join(STOP_CONFIRM_S * 3 + 5)
         if self.link is not None:
+            if self.failed is not None and self.link.connected.is_set():
+                # the worker is gone: say so in the retained status before the clean
+                # disconnect (which sends no last will)
+                status = offline_status(self.clock(), reason, self.stats.started)
+                info = self.link.client.publish(
+                    self._topic("status"), status.to_bytes(), qos=1, retain=True
+                )
+                with contextlib.suppress(RuntimeError, ValueError):
+                    info.wait_for_publish(STOP_CONFIRM_S)
             self.link.stop()
         if self.health is not None:
             self.health.stop()
@@ -275,12 +284,17 @@ class Service:
             self.metrics.recovery_s = rec.seconds
             self.metrics.recovered_messages = rec.messages
         self.log.info(
-            "recovery_done", seconds=round(rec.seconds, 3), window_h=round(self.window_s / 3600, 2),
+            "recovery_done", seconds=round(rec.seconds, 3),
+            window_h=round((rec.now - rec.window_start) / 3600, 2), complete=rec.complete,
             messages=rec.messages, contexts=rec.contexts, beds=len(self.engine.beds),
             already_journaled=rec.already_journaled, new_events=len(rec.to_publish),
             undelivered=len(rec.undelivered), differs=len(rec.differs),
+            engine_errors=len(rec.engine_errors),
         )  # fmt: skip
-        for e in rec.differs:
+        for err in rec.engine_errors[:10]:
+            self.log.error("recovery_engine_error", error=err)
+        self.stats.engine_errors += len(rec.engine_errors)
+        for e in rec.differs[:20]:  # the count is in recovery_done; a sample is enough
             self.log.warning(
                 "recovery_differs", alarm_id=e.alarm_id, bed=e.bed, state=str(e.state),
                 reason=e.reason, time=iso(e.time),

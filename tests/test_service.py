@@ -364,3 +364,45 @@ def test_tls_with_password_is_accepted_and_anonymous_refused(tmp_path):
             time.sleep(0.02)
         anon.loop_stop()
         assert refused and "authorized" in refused[0].lower()
+
+
+def test_a_journal_that_cannot_write_stops_the_service_without_acking(broker, tmp_path):  # noqa: F811
+    """Disk full or failing: the reading is not acknowledged, the service says it is
+    offline and why, and the next start gets the reading again from the broker."""
+    import sqlite3
+
+    from daemon.journal import Journal as J
+
+    jpath = tmp_path / "j.db"
+    w = Watcher(broker)
+    pub = publisher(broker)
+    reading = readings("rc-1", time.time() - 600, 2 / 60)[:1]
+    real = J.append_messages
+
+    def failing(self, rows):
+        raise sqlite3.OperationalError("database or disk is full")
+
+    J.append_messages = failing  # type: ignore[method-assign]
+    try:
+        with running_service(broker, jpath, w) as svc:
+            publish_all(pub, reading)
+            svc.done.wait(5)
+            assert svc.failed is not None and "disk is full" in svc.failed
+            ok, health = svc.health_report()
+            assert not ok and health["worker_alive"] is False
+            assert svc.metrics.acked == 0
+            svc.stop(f"worker failed: {svc.failed}")
+    finally:
+        J.append_messages = real  # type: ignore[method-assign]
+    st = w.wait_for(
+        lambda w: [s for s in w.json("hourwatch/status") if s["status"] == "offline"], 5, "offline"
+    )
+    assert "disk is full" in st[-1]["reason"]
+    with running_service(broker, jpath) as svc:  # the broker kept the unacknowledged reading
+        deadline = time.monotonic() + 5
+        while svc.metrics.acked < 1 and time.monotonic() < deadline:
+            time.sleep(0.02)
+    messages, _ = journal_rows(jpath)
+    assert [json.loads(m.payload)["seq"] for m in messages] == [reading[0][1]["seq"]]
+    pub.disconnect()
+    w.close()
