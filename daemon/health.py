@@ -166,6 +166,7 @@ class HealthServer:
         self._thread.start()
 
     def stop(self) -> None:
-        self.server.shutdown()
+        if self._thread.is_alive():  # shutdown() would wait forever for a loop never run
+            self.server.shutdown()
+            self._thread.join(2.0)
         self.server.server_close()
-        self._thread.join(2.0)

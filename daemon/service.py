@@ -41,6 +41,7 @@ from .engine.engine import Engine
 from .engine.evaluator import Notice
 from .engine.outcomes import Outcome
 from .engine.timefmt import iso
+from .errors import UserError
 from .health import HealthServer, Metrics
 from .journal import Journal, StoredEvent
 from .messages import (
@@ -194,8 +195,8 @@ class Service:
         self._connected = False
         self._last_status: tuple[object, ...] | None = None
         self._worker: threading.Thread | None = None
-        self._next_prune = -math.inf
-        self._next_housekeeping = -math.inf  # monotonic time of the next pruning batch
+        self._next_prune = -math.inf  # monotonic time of the next pruning batch
+        self._next_housekeeping = -math.inf
         self._stopping = threading.Event()
         self._stop_reason = "stopped"
         self.failed: str | None = None  # the worker died: the process must exit non-zero
@@ -206,8 +207,24 @@ class Service:
 
     # --- lifecycle --------------------------------------------------------------
     def start(self) -> None:
+        """Recover from the journal, then connect. A UserError (bad journal, health address
+        taken) leaves nothing running."""
+        try:
+            self._start()
+        except BaseException:
+            self.stop("start failed")
+            raise
+
+    def _start(self) -> None:
         cfg = self.cfg
         self.stats.started = self.clock()
+        if cfg.health.listen:  # first: a taken address should fail before anything runs
+            host, port = split_address(cfg.health.listen, allow_zero=True)
+            try:
+                self.health = HealthServer(host, port, self.health_report, self.render_metrics)
+            except OSError as exc:
+                raise UserError(f"health.listen: cannot listen on {host}:{port}: "
+                                f"{exc.strerror or exc}") from None  # fmt: skip
         # Recovery reads through the journal's own read connections, whose file checks
         # open and close the database file: in one process, closing any descriptor of a
         # file drops all its POSIX locks, including the writer's. So recovery gets a
@@ -228,9 +245,7 @@ class Service:
             self._arm()
         self._worker = threading.Thread(target=self._work, name="hourwatch-worker", daemon=True)
         self._worker.start()
-        if cfg.health.listen:
-            host, port = split_address(cfg.health.listen, allow_zero=True)
-            self.health = HealthServer(host, port, self.health_report, self.render_metrics)
+        if self.health is not None:
             self.health.start()
             self.log.info("health_listening", address=f"{self.health.address[0]}:"
                           f"{self.health.address[1]}")  # fmt: skip
@@ -268,7 +283,8 @@ class Service:
         if self.journal is not None:
             self.journal.close()
             self.journal = None
-        self.log.info("service_stopped", reason=reason)
+        if self._worker is not None:  # a start that failed says so in its own error line
+            self.log.info("service_stopped", reason=reason)
 
     # --- recovery -----------------------------------------------------------------
     def _recover(self, journal: Journal) -> None:

@@ -128,3 +128,22 @@ def test_hourwatch_run_with_a_bad_config_exits_2_with_one_line(tmp_path):
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "broker.port" in lines[0], r.stderr
     assert r.stdout == ""
+
+
+def test_a_health_address_in_use_exits_2_naming_the_key(tmp_path):
+    import socket
+
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        p = write(tmp_path, f'[health]\nlisten = "127.0.0.1:{port}"\n')
+        r = subprocess.run(
+            [sys.executable, "-m", "daemon.cli", "run", "--config", str(p),
+             "--journal", str(tmp_path / "j.db"), "--broker", "127.0.0.1:9"],
+            capture_output=True, text=True, timeout=60, cwd=ROOT,
+        )  # fmt: skip
+    assert r.returncode == 2, r.stderr
+    (line,) = r.stderr.strip().splitlines()
+    assert line.startswith("hourwatch: health.listen: cannot listen on 127.0.0.1:"), r.stderr
+    assert not (tmp_path / "j.db").exists()  # failed before touching the journal
