@@ -158,9 +158,18 @@ class ServiceStats:
 
 
 class Service:
-    def __init__(self, cfg: ServiceConfig, *, clock: Callable[[], float] = time.time) -> None:
+    def __init__(
+        self,
+        cfg: ServiceConfig,
+        *,
+        clock: Callable[[], float] = time.time,
+        clock_rate: float = 1.0,
+    ) -> None:
         self.cfg = cfg
         self.clock = clock
+        # seconds of `clock` per wall-clock second: the demo runs a simulated day in
+        # minutes, and the wake-up job must then wait in wall time
+        self.clock_rate = clock_rate
         self.prefix = cfg.topic_prefix
         self.log = structlog.get_logger("hourwatch")
         profiles = load_profiles(cfg.profiles)
@@ -739,7 +748,8 @@ class Service:
             # far cheaper than re-arming the scheduler after every message.
             return
         self._armed = nxt
-        delay = max(0.0, nxt - self.clock())  # the service clock may be a test's fake one
+        # the service clock may be a test's fake one or the demo's fast one
+        delay = max(0.0, nxt - self.clock()) / self.clock_rate
         run_at = datetime.now(UTC) + timedelta(seconds=delay)
         self.scheduler.add_job(
             self.timer_fired, DateTrigger(run_date=run_at, timezone=UTC), id=JOB_ID,
