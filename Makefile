@@ -35,8 +35,13 @@ lint: install
 
 typecheck: lint
 
-demo: install
-	$(BIN)/hourwatch replay examples/ward-night.jsonl --profiles device_profiles --hourly
+# The demo needs a broker: Debian's mosquitto (installed when root), else the
+# embedded pure-Python one from the optional extra.
+demo: install mosquitto
+	@if ! command -v mosquitto >/dev/null 2>&1 && [ ! -x /usr/sbin/mosquitto ]; then \
+	  $(BIN)/python -m pip install --quiet -e '.[test,embedded-broker]'; \
+	fi
+	$(BIN)/hourwatch demo
 
 bench: install
 	$(BIN)/python -m benchmarks.run
