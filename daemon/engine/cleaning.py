@@ -17,8 +17,8 @@ from .outcomes import Outcome
 from .profiles import DeviceProfile
 from .series import ESTIMATED, MEASURED, MinuteSeries
 
-RATE_LOOKBACK_S = 1800.0
-JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval is jitter  # flow before a bag change is judged over the last 30 min
+RATE_LOOKBACK_S = 1800.0  # flow before a bag change is judged over the last 30 min
+JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval is jitter
 
 
 @dataclass(slots=True)
