@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import logging
 import os
 import shutil
 import signal
@@ -138,6 +139,9 @@ class EmbeddedBroker:
 
     def start(self) -> None:
         from amqtt.broker import Broker  # type: ignore[import-not-found]  # optional extra
+
+        # it logs every probe of its port and every missing optional setting
+        logging.getLogger("amqtt").setLevel(logging.CRITICAL)
 
         config = {
             "listeners": {"default": {"type": "tcp", "bind": f"{self.host}:{self.port}"}},
