@@ -135,3 +135,31 @@ def test_quality_and_caution(made: tuple[Path, str, Checker, Path]) -> None:
     for meter in ("rc-9001", "rc-9002", "rc-9003"):
         assert meter in text
     assert text.count(CAUTION) >= 2  # top and bottom
+
+
+def test_a_journal_source_gives_the_same_report(
+    made: tuple[Path, str, Checker, Path], tmp_path: Path
+) -> None:
+    import json
+
+    from daemon.journal import Journal
+    from daemon.logfile import BadLine, read_log
+
+    night, text, _, _ = made
+    journal = Journal(tmp_path / "night.journal")
+    rows = []
+    for item in read_log(night):
+        assert not isinstance(item, BadLine)
+        _, rec = item
+        p = rec.payload
+        raw = (json.dumps(p) if isinstance(p, dict) else p).encode()
+        rows.append((rec.time.timestamp(), rec.topic, raw, 1))
+    journal.append_messages(rows)
+    out = tmp_path / "journal.html"
+    assert main(["replay", str(tmp_path / "night.journal"), "--report", str(out)]) == 0
+    from_journal = out.read_text(encoding="utf-8")
+
+    def alarm_rows(html_text: str) -> list[str]:
+        return re.findall(r'<tr><td><a href="#alarm-[^"]+">[^<]+</a>.*?</tr>', html_text)
+
+    assert alarm_rows(from_journal) == alarm_rows(text) != []
