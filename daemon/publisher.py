@@ -41,7 +41,9 @@ class Outbox:
     def __len__(self) -> int:
         return len(self.waiting) + len(self.in_flight)
 
-    def put(self, msg: Outgoing) -> None:
+    def put(self, msg: Outgoing, first: bool = False) -> None:
+        """Queue a message; `first` puts it ahead of those waiting (a status that says a
+        backlog follows)."""
         if msg.retain and not msg.event_ids:
             # a retained snapshot (bed state, status): only the newest matters
             older = self._latest.get(msg.topic)
@@ -49,7 +51,10 @@ class Outbox:
                 older.payload = msg.payload
                 return
             self._latest[msg.topic] = msg
-        self.waiting.append(msg)
+        if first:
+            self.waiting.appendleft(msg)
+        else:
+            self.waiting.append(msg)
 
     def flush(self, connected: bool) -> int:
         """Hand waiting messages to paho, in order, while connected."""
@@ -67,13 +72,16 @@ class Outbox:
             sent += 1
         return sent
 
+    def unconfirmed(self) -> list[Outgoing]:
+        return [*self.waiting, *self.in_flight.values()]
+
     def confirmed(self, mid: int) -> Outgoing | None:
         return self.in_flight.pop(mid, None)
 
     def newly_overdue(self, now: float) -> list[Outgoing]:
         """Alarm events older than the bound and not confirmed, each reported once."""
         out = []
-        for msg in (*self.waiting, *self.in_flight.values()):
+        for msg in self.unconfirmed():
             if msg.alarm_id is not None and not msg.overdue and now - msg.created > self.timeout:
                 msg.overdue = True
                 out.append(msg)

@@ -202,6 +202,7 @@ class Service:
         self._beds: dict[str, _Bed] = {}
         self._readings_since_state = False  # a message may have changed any bed's output
         self._connected = False
+        self._connected_at = -math.inf  # service clock at the latest connect
         self._last_status: tuple[object, ...] | None = None
         self._worker: threading.Thread | None = None
         self._next_prune = -math.inf  # monotonic time of the next pruning batch
@@ -479,9 +480,11 @@ class Service:
             else:
                 self.metrics.disconnects += 1
         if c.up:
+            self._connected_at = self.clock()
             self.log.info("mqtt_connected", connection=c.conn, session_present=c.session_present,
                           waiting=len(self.outbox.waiting))  # fmt: skip
             self._last_status = None  # the broker may have lost the retained one
+            self._publish_status()  # before the backlog: "degraded" while it goes out
         else:
             self.log.warning("mqtt_disconnected", connection=c.conn, reason=c.reason)
 
@@ -714,8 +717,9 @@ class Service:
         assert self.outbox is not None
         if not self._connected or self.outbox.overdue_count():
             return "degraded"
-        if any(m.alarm_id for m in self.outbox.waiting):
-            return "degraded"  # a backlog from an outage is still going out
+        since = self._connected_at
+        if any(m.alarm_id and m.created < since for m in self.outbox.unconfirmed()):
+            return "degraded"  # alarms held during the outage are still going out
         return "ok"
 
     def _publish_status(self) -> None:
@@ -734,7 +738,7 @@ class Service:
             technical_alarms=[TechnicalAlarm(code=t.code, text=t.text, since=iso(t.since),
                                              alarm_id=t.alarm_id) for t in tech],
         )  # fmt: skip
-        self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True))
+        self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True), first=True)
         self.log.info("status", status=status.status, delivery=delivery,
                       technical_alarms=len(tech))  # fmt: skip
 

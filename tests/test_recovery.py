@@ -339,6 +339,7 @@ def test_broker_restart_loses_nothing_and_the_outage_alarm_goes_out_on_reconnect
         time.sleep(0.5)
         ok, health = svc.health_report()
         assert [t["code"] for t in health["technical_alarms"]][:1] == ["alarm_not_delivered"]
+        outage_end = len(w.messages)
         broker.start()
         esc = w.wait_for(
             lambda w: [a for a in alarm_msgs(w) if a["state"] == "escalated"], 10, "escalation"
@@ -347,6 +348,15 @@ def test_broker_restart_loses_nothing_and_the_outage_alarm_goes_out_on_reconnect
         while svc.stats.technical and time.monotonic() < deadline:
             time.sleep(0.05)
         assert svc.stats.technical == {}  # delivered late: cleared
+        w.wait_for(lambda w: w.json("hourwatch/status")[-1]["status"] == "online", 5, "online")
+    # after the outage: the status says delivery is degraded before the held alarms go out
+    after = [(t, json.loads(p)) for t, p, _ in w.messages[outage_end:] if p]
+    kinds = [b["status"] if t == "hourwatch/status" else b.get("state") for t, b in after]
+    assert "degraded" in kinds and kinds.index("degraded") < kinds.index("escalated")
+    # (mosquitto may send the service's last will "offline" as it shuts down)
+    degraded = next(b for t, b in after if t == "hourwatch/status" and b["status"] != "offline")
+    assert degraded["delivery"] == "degraded"
+    assert [x["code"] for x in degraded["technical_alarms"]][:1] == ["alarm_not_delivered"]
     assert {a["alarm_id"] for a in esc} == before_outage
     assert len(esc) == len({a["alarm_id"] for a in esc})  # once each
     with Journal(jpath) as j:
