@@ -79,20 +79,39 @@ JOB_ID = "engine-wakeup"
 
 def configure_logging(level: str = "info", stream: TextIO | None = None) -> None:
     """structlog JSON lines: one event per line, with bed and alarm ids, never patient
-    names (the engine knows none)."""
+    names (the engine knows none). Libraries' stdlib warnings come out as JSON too."""
+    out = stream or sys.stderr
+    stamp = structlog.processors.TimeStamper(fmt="iso", utc=True)
     structlog.configure(
         processors=[
             structlog.processors.add_log_level,
-            structlog.processors.TimeStamper(fmt="iso", utc=True),
+            stamp,
             structlog.processors.format_exc_info,
             structlog.processors.JSONRenderer(),
         ],
         wrapper_class=structlog.make_filtering_bound_logger(
             logging.getLevelNamesMapping()[level.upper()]
         ),
-        logger_factory=structlog.PrintLoggerFactory(stream or sys.stderr),
+        logger_factory=structlog.PrintLoggerFactory(out),
         cache_logger_on_first_use=False,
     )
+    handler = logging.StreamHandler(out)
+    handler.setFormatter(
+        structlog.stdlib.ProcessorFormatter(
+            processors=[
+                structlog.stdlib.ProcessorFormatter.remove_processors_meta,
+                structlog.processors.JSONRenderer(),
+            ],
+            foreign_pre_chain=[
+                structlog.stdlib.add_logger_name,
+                structlog.processors.add_log_level,
+                stamp,
+            ],
+        )
+    )
+    root = logging.getLogger()
+    root.handlers = [handler]
+    root.setLevel(logging.WARNING)  # paho and APScheduler: only what needs attention
 
 
 def topic_level(text: str) -> str:
