@@ -845,7 +845,7 @@ class Service:
             "delivery": self._delivery() if outbox is not None else "unknown",
             "technical_alarms": [
                 {"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
-                for t in self.stats.technical.values()
+                for t in list(self.stats.technical.values())  # the worker may change it
             ],
             "caution": CAUTION,
         }
