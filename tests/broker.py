@@ -14,9 +14,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import shutil
 import signal
-import socket
 import subprocess
 import tempfile
 import threading
@@ -29,58 +27,16 @@ from typing import Any
 
 import pytest
 
-FALLBACK_BINARY = "/usr/sbin/mosquitto"  # Debian puts it outside a normal user's PATH
-START_TIMEOUT_S = 5.0
-STOP_GRACE_S = 5.0
-
-
-def mosquitto_binary() -> str | None:
-    found = shutil.which("mosquitto")
-    if found:
-        return found
-    return FALLBACK_BINARY if os.access(FALLBACK_BINARY, os.X_OK) else None
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _wait_port(host: str, port: int, timeout: float, proc: subprocess.Popen[bytes] | None) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc is not None and proc.poll() is not None:
-            raise RuntimeError(f"mosquitto exited with status {proc.returncode} at start")
-        with contextlib.suppress(OSError), socket.create_connection((host, port), timeout=0.2):
-            return
-        time.sleep(0.01)
-    raise RuntimeError(f"mosquitto did not open {host}:{port} within {timeout} s")
-
-
-def broker_config(port: int, data_dir: Path, listener: str = "") -> str:
-    """mosquitto.conf; `listener` replaces the anonymous plaintext listener's settings
-    (e.g. TLS files, allow_anonymous false, password_file)."""
-    if listener:
-        lines = ["per_listener_settings true", f"listener {port} 127.0.0.1", listener.strip()]
-    else:
-        lines = [f"listener {port} 127.0.0.1", "allow_anonymous true"]
-    lines += [
-        "persistence true",
-        f"persistence_location {data_dir}/",
-        # 1000 by default: an offline persistent session would silently lose the rest
-        "max_queued_messages 0",
-        "max_queued_bytes 0",
-        f"log_dest file {data_dir}/mosquitto.log",
-        "log_type error",
-        "log_type warning",
-        "log_type notice",
-    ]
-    if os.geteuid() == 0:
-        # otherwise it drops to user mosquitto, cannot write the 0700 temp dir, and
-        # keeps serving while silently persisting nothing (FIELD-NOTES.md)
-        lines.append("user root")
-    return "\n".join(lines) + "\n"
+# One definition of how a local mosquitto is found, configured and waited for: the
+# demo's and the tests' must not drift apart.
+from daemon.local_broker import (
+    START_TIMEOUT_S,
+    STOP_GRACE_S,
+    free_port,
+    mosquitto_binary,
+    mosquitto_config,
+    wait_port,
+)
 
 
 @dataclass
@@ -101,7 +57,7 @@ class LocalBroker:
 
     def start(self) -> None:
         conf = self.data_dir / "mosquitto.conf"
-        conf.write_text(broker_config(self.port, self.data_dir, self.listener_config))
+        conf.write_text(mosquitto_config(self.port, self.data_dir, self.listener_config))
         self.proc = subprocess.Popen(
             [self.binary, "-c", str(conf)],
             stdout=subprocess.DEVNULL,
@@ -109,7 +65,7 @@ class LocalBroker:
             start_new_session=True,
         )
         try:
-            _wait_port(self.host, self.port, START_TIMEOUT_S, self.proc)
+            wait_port(self.host, self.port, START_TIMEOUT_S, self.proc)
         except RuntimeError:
             self.stop()
             raise
@@ -160,7 +116,7 @@ class ContainerBroker:
         self.container.start(configfile=str(conf))
         self.host = self.container.get_container_host_ip()
         self.port = int(self.container.get_exposed_port(1883))
-        _wait_port(self.host, self.port, 30.0, None)
+        wait_port(self.host, self.port, 30.0, None)
 
     def stop(self) -> None:
         self.container.stop()
@@ -172,7 +128,7 @@ class ContainerBroker:
             time.sleep(down_s)
         wrapped.start()
         self.port = int(self.container.get_exposed_port(1883))
-        _wait_port(self.host, self.port, 30.0, None)
+        wait_port(self.host, self.port, 30.0, None)
 
     def log(self) -> str:
         out, err = self.container.get_logs()
@@ -203,7 +159,7 @@ def _try_container(data_dir: Path) -> ContainerBroker | None:
 
 @contextlib.contextmanager
 def running_broker(listener_config: str = "") -> Iterator[Broker]:
-    """A started broker, stopped on exit. `listener_config` (see broker_config) needs the
+    """A started broker, stopped on exit. `listener_config` (see mosquitto_config) needs the
     local binary."""
     with tempfile.TemporaryDirectory(prefix="hw-broker-") as tmp:
         data_dir = Path(tmp)
