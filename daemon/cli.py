@@ -7,11 +7,22 @@ import sys
 from collections.abc import Sequence
 
 from .caution import CAUTION
-from .commands import annotate, check_profiles, demo, explain, export, replay, run, simulate
+from .commands import (
+    annotate,
+    check,
+    check_profiles,
+    demo,
+    explain,
+    export,
+    probe,
+    replay,
+    run,
+    simulate,
+)
 from .errors import UserError
 
 # Each command module adds its own parser; add new commands to this list.
-COMMANDS = [replay, check_profiles, export, run, simulate, demo, explain, annotate]
+COMMANDS = [replay, check_profiles, export, run, check, probe, simulate, demo, explain, annotate]
 
 
 def _parser() -> argparse.ArgumentParser:
