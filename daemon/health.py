@@ -42,6 +42,32 @@ class Histogram:
                 return self.buckets[i] if i < len(self.buckets) else float("inf")
         return float("inf")
 
+    def lines(self, name: str) -> list[str]:
+        """Prometheus exposition lines: cumulative buckets, sum and count."""
+        out: list[str] = []
+        cum = 0
+        for bound, n in zip(self.buckets, self.counts, strict=False):
+            cum += n
+            out.append(f'{name}_bucket{{le="{bound:g}"}} {cum}')
+        out.append(f'{name}_bucket{{le="+Inf"}} {self.count}')
+        out.append(f"{name}_sum {self.total:g}")
+        out.append(f"{name}_count {self.count}")
+        return out
+
+
+# Help texts of the gauges and labelled counters the service samples at each scrape.
+GAUGE_HELP = {
+    "journal_bytes": "size of the journal on disk: the database file plus its WAL",
+    "queue_depth": "received messages waiting for the worker",
+    "outbox_depth": "messages to publish not yet confirmed by the broker",
+    "connected": "1 while connected to the broker",
+    "engine_errors": "engine failures caught (each one logged)",
+    "technical_alarms": "technical alarms of the service itself now active",
+}
+LABELLED_HELP = {
+    "duplicates_total": "readings dropped as duplicates of one already counted, by profile",
+}
+
 
 class Metrics:
     """Service counters. Written by the worker and the MQTT thread, read by the HTTP
@@ -60,6 +86,7 @@ class Metrics:
         self.connects = 0
         self.disconnects = 0
         self.latency = Histogram()
+        self.alarm_latency = Histogram()
         self.recovery_s = 0.0
         self.recovered_messages = 0
 
@@ -103,21 +130,20 @@ class Metrics:
                    self.recovered_messages)  # fmt: skip
             metric("ingest_latency_seconds", "histogram",
                    "arrival to journaled, acknowledged and evaluated")  # fmt: skip
-            cum = 0
-            for bound, n in zip(self.latency.buckets, self.latency.counts, strict=False):
-                cum += n
-                out.append(f'hourwatch_ingest_latency_seconds_bucket{{le="{bound:g}"}} {cum}')
-            out.append(f'hourwatch_ingest_latency_seconds_bucket{{le="+Inf"}} {self.latency.count}')
-            out.append(f"hourwatch_ingest_latency_seconds_sum {self.latency.total:g}")
-            out.append(f"hourwatch_ingest_latency_seconds_count {self.latency.count}")
+            out += self.latency.lines("hourwatch_ingest_latency_seconds")
+            metric("alarm_latency_seconds", "histogram",
+                   "end to end: arrival of the reading that raised an alarm event to the "
+                   "broker's confirmation (PUBACK) of that event")  # fmt: skip
+            out += self.alarm_latency.lines("hourwatch_alarm_latency_seconds")
         for name, value in sorted(gauges.items()):
-            metric(name, "gauge", name.replace("_", " "), value)
-        last = ""
-        for name, label, value in sorted(labelled):
-            if name != last:
-                metric(name, "counter", name.replace("_", " "))
-                last = name
-            out.append(f"hourwatch_{name}{{{label}}} {value:g}")
+            metric(name, "gauge", GAUGE_HELP.get(name, name.replace("_", " ")), value)
+        by_name: dict[str, list[tuple[str, float]]] = {name: [] for name in LABELLED_HELP}
+        for name, label, value in labelled:
+            by_name.setdefault(name, []).append((label, value))
+        for name, samples in sorted(by_name.items()):
+            # declared even while empty, so a dashboard finds every series from the start
+            metric(name, "counter", LABELLED_HELP.get(name, name.replace("_", " ")))
+            out += [f"hourwatch_{name}{{{label}}} {value:g}" for label, value in sorted(samples)]
         return "\n".join(out) + "\n"
 
 

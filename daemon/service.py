@@ -78,9 +78,10 @@ JOB_ID = "engine-wakeup"
 
 
 def configure_logging(level: str = "info", stream: TextIO | None = None) -> None:
-    """structlog JSON lines: one event per line, with bed and alarm ids, never patient
-    names (the engine knows none). Libraries' stdlib warnings come out as JSON too."""
-    out = stream or sys.stderr
+    """structlog JSON lines on stdout (or `stream`): one event per line, with bed and alarm
+    ids, never patient names (the engine knows none). Libraries' stdlib warnings come out
+    as JSON too. stdout, so that systemd's journal or a container runtime collects them."""
+    out = stream or sys.stdout
     stamp = structlog.processors.TimeStamper(fmt="iso", utc=True)
     structlog.configure(
         processors=[
@@ -112,6 +113,14 @@ def configure_logging(level: str = "info", stream: TextIO | None = None) -> None
     root = logging.getLogger()
     root.handlers = [handler]
     root.setLevel(logging.WARNING)  # paho and APScheduler: only what needs attention
+
+
+def bed_of(alarm_id: str | None) -> str | None:
+    """The bed of an alarm id (BED/RULE/ONSET, engine/lifecycle.py), for log lines."""
+    return alarm_id.split("/", 1)[0] if alarm_id else None
+
+
+ALARM_LATENCY_KEPT = 10_000  # arrival times kept for alarms awaiting their PUBACK
 
 
 def topic_level(text: str) -> str:
@@ -217,6 +226,8 @@ class Service:
         self.health: HealthServer | None = None
         self._now = -math.inf  # engine time so far (monotone)
         self._timer_effects: list[Effect] = []
+        # journal event id -> perf_counter arrival of the reading that raised the alarm
+        self._alarm_arrived: dict[int, float] = {}
         self._armed: float | None = None
         self._beds: dict[str, _Bed] = {}
         self._readings_since_state = False  # a message may have changed any bed's output
@@ -470,13 +481,19 @@ class Service:
                 else:
                     stale += 1  # an earlier connection's id: the broker redelivers it
             effects, self._timer_effects = self._timer_effects, []
+            arrived: dict[int, float] = {}  # id(alarm event) -> its reading's arrival
             for t, m in zip(times, batch, strict=True):
                 try:
                     effects += self.engine.advance(t)
-                    effects += self.engine.step(m.topic, m.payload, t)
+                    stepped = self.engine.step(m.topic, m.payload, t)
                 except Exception:  # an engine bug must not stop the ward's monitoring
                     self.stats.engine_errors += 1
                     self.log.error("engine_error", topic=m.topic[:200], exc_info=True)
+                    continue
+                effects += stepped
+                for e in stepped:
+                    if isinstance(e, AlarmEvent):
+                        arrived[id(e)] = m.arrived
             self._arm()
         self._readings_since_state = True
         with self.metrics.lock:
@@ -484,7 +501,7 @@ class Service:
             self.metrics.journaled += len(batch)
             self.metrics.acked += acked
             self.metrics.stale_acks += stale
-        self._emit(effects)
+        self._emit(effects, arrived)
         done = time.perf_counter()
         with self.metrics.lock:
             for m in batch:
@@ -517,16 +534,22 @@ class Service:
                 continue
             if not p.ok:
                 self.log.error("publish_refused", topic=msg.topic, alarm_id=msg.alarm_id,
-                               reason=p.reason)  # fmt: skip
+                               bed=bed_of(msg.alarm_id), reason=p.reason)  # fmt: skip
                 if msg.alarm_id is not None:
                     self._publish_failed(msg, f"broker refused: {p.reason}")
                 continue
             delivered += msg.event_ids
             if msg.alarm_id is not None:
+                t_confirmed = time.perf_counter()
                 with self.metrics.lock:
                     self.metrics.alarms_published += 1
+                    for eid in msg.event_ids:
+                        t_arrived = self._alarm_arrived.pop(eid, None)
+                        if t_arrived is not None:
+                            self.metrics.alarm_latency.observe(t_confirmed - t_arrived)
                 if msg.overdue:
                     self.log.warning("alarm_delivered_late", alarm_id=msg.alarm_id,
+                                     bed=bed_of(msg.alarm_id),
                                      after_s=round(now - msg.created, 1))  # fmt: skip
         self.journal.mark_delivered(delivered, now)
 
@@ -559,7 +582,7 @@ class Service:
                              note="sent again at the next start")  # fmt: skip
 
     # --- effects → journal → outbox ----------------------------------------------------
-    def _emit(self, effects: list[Effect]) -> None:
+    def _emit(self, effects: list[Effect], arrived: dict[int, float] | None = None) -> None:
         if not effects:
             return
         assert self.journal is not None and self.outbox is not None
@@ -569,6 +592,8 @@ class Service:
         for e, event_id in zip(effects, ids, strict=True):
             if isinstance(e, AlarmEvent):
                 self._alarm(e, event_id, now)
+                if arrived and id(e) in arrived and len(self._alarm_arrived) < ALARM_LATENCY_KEPT:
+                    self._alarm_arrived[event_id] = arrived[id(e)]
             elif isinstance(e, AdviceIssued):
                 body = self._body(AdviceMessage, e)
                 topic = self._topic("advice", e.ward, e.bed)
@@ -624,8 +649,8 @@ class Service:
         self.journal.append_events([(now, "publish_failed", None, msg.alarm_id, body)])
         with self.metrics.lock:
             self.metrics.publish_failures += 1
-        self.log.error("alarm_not_delivered", alarm_id=msg.alarm_id, reason=why,
-                       waited_s=round(now - msg.created, 1))  # fmt: skip
+        self.log.error("alarm_not_delivered", alarm_id=msg.alarm_id, bed=bed_of(msg.alarm_id),
+                       reason=why, waited_s=round(now - msg.created, 1))  # fmt: skip
         key = f"alarm_not_delivered:{msg.alarm_id}"
         self.stats.technical.setdefault(
             key, _Technical("alarm_not_delivered",
@@ -648,7 +673,7 @@ class Service:
                 if tech.code == "alarm_not_delivered" and tech.alarm_id not in unconfirmed:
                     del self.stats.technical[key]
                     self.log.info("technical_alarm_cleared", code=tech.code,
-                                  alarm_id=tech.alarm_id)  # fmt: skip
+                                  alarm_id=tech.alarm_id, bed=bed_of(tech.alarm_id))  # fmt: skip
         self._publish_states(force=False)
         self._publish_status()
         self.outbox.flush(self._connected)
