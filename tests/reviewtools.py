@@ -88,15 +88,21 @@ def first_active(events: list[AlarmEvent], bed: str, rule: str) -> AlarmEvent:
     return next(e for e in events if e.bed == bed and e.rule == rule and e.state == "active")
 
 
+def edited_rules(tmp: Path, name: str, rule_id: str, old: str, new: str) -> Path:
+    """A copy of the shipped rules with one line of one rule file changed."""
+    out = tmp / name
+    shutil.copytree(BUNDLED_RULES, out)
+    f = out / f"{rule_id}.toml"
+    text = f.read_text(encoding="utf-8")
+    assert old in text
+    f.write_text(text.replace(old, new))
+    return out
+
+
 def raised_pod_threshold(tmp: Path, threshold_ml_h: int) -> Path:
     """A copy of the shipped rules with pod-hourly's threshold changed (a what-if)."""
-    out = tmp / f"rules-pod-{threshold_ml_h}"
-    shutil.copytree(BUNDLED_RULES, out)
-    f = out / "pod-hourly.toml"
-    text = f.read_text(encoding="utf-8")
-    assert "threshold_ml_h = 200" in text
-    f.write_text(text.replace("threshold_ml_h = 200", f"threshold_ml_h = {threshold_ml_h}"))
-    return out
+    return edited_rules(tmp, f"rules-pod-{threshold_ml_h}", "pod-hourly",
+                        "threshold_ml_h = 200", f"threshold_ml_h = {threshold_ml_h}")  # fmt: skip
 
 
 def json_out(text: str) -> Any:

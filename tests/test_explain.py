@@ -19,6 +19,7 @@ from tests.reviewtools import (
     SEVERE_ML_H,
     T0,
     alarm_events,
+    edited_rules,
     first_active,
     write_night,
 )
@@ -155,3 +156,21 @@ def test_acknowledgement_is_in_the_lifecycle(night: Path) -> None:
     acks = [e for e in d["lifecycle"] if e["reason"] == "acknowledged"]
     assert len(acks) == 1 and acks[0]["by"] == ACK_BY and acks[0]["role"] == "bedside-nurse"
     assert acks[0]["state"] == "acknowledged"
+
+
+def test_with_a_condition_delay_the_evidence_is_the_last_evaluation(
+    night: Path, tmp_path: Path
+) -> None:
+    # invented what-if: pod-hourly waits 10 minutes before it annunciates. The clock,
+    # not a reading, then activates it, with the evidence of the last evaluation
+    # before: explain must show the windows of that evaluation.
+    rules_dir = edited_rules(tmp_path, "delayed", "pod-hourly",
+                             "condition_delay_s = 0 ", "condition_delay_s = 600 ")  # fmt: skip
+    event = first_active(alarm_events(night, rules_dir), "bed-sev", "pod-hourly")
+    assert event.reason == "delay_elapsed"
+    d = explain(night, event.alarm_id, load_profiles(), load_rules(rules_dir),
+                load_policy(rules_dir))  # fmt: skip
+    assert d["evidence_check"]["all_equal"], d["evidence_check"]
+    assert d["moment"] <= d["activated"]
+    ev = event.evidence["windows"]
+    assert [w["volume_ml"] for w in d["windows"]] == [w["volume_ml"] for w in ev]

@@ -188,7 +188,10 @@ class Follower:
                 if m is not None:
                     m.evidence = dict(e.evidence)
                     self.moments[aid] = m
-                if e.state not in ENDED:
+                rule = self.rules.get(e.rule)
+                if e.state not in ENDED and rule is not None and rule.condition_delay_s > 0:
+                    # only a delay lets the clock activate it after its last evaluation;
+                    # a suppressed alarm activates in the evaluation that lifts it
                     self._pending[aid] = (e.bed, e.rule)
             elif e.state in ENDED:
                 self._pending.pop(aid, None)

@@ -111,6 +111,15 @@ def _runs(mask: npt.NDArray[np.bool_]) -> list[tuple[int, int]]:
     return list(zip(np.flatnonzero(d == 1).tolist(), np.flatnonzero(d == -1).tolist(), strict=True))
 
 
+def _bands(ax: Axes, spans: list[tuple[float, float]], label: str | None, **style: Any) -> None:
+    """Full-height bands over time spans (epoch s), drawn as one collection: a month
+    has hundreds of them, and one artist each is what made plots slow."""
+    if not spans:
+        return
+    days = [(a / 86400.0, (b - a) / 86400.0) for a, b in spans]
+    ax.broken_barh(days, (0.0, 1.0), transform=ax.get_xaxis_transform(), label=label, **style)
+
+
 def _most_urgent(
     spans: list[tuple[float, float, Priority]],
 ) -> list[tuple[float, float, Priority]]:
@@ -206,26 +215,16 @@ def draw(pic: BedPicture, dpi: int = 96) -> Figure:
             if state == UNKNOWN
             else {"facecolor": "none", "edgecolor": ESTIMATED_EDGE, "hatch": "////", "lw": 0}
         )
-        for k, (i0, i1) in enumerate(_runs(st == state)):
-            a, b = _dt([(first + i0) * 60.0, (first + i1) * 60.0])
-            for ax in (ax_h, ax_d):
-                tag = name if (k == 0 and ax is ax_h) else None
-                ax.axvspan(a, b, zorder=0, label=tag, **style)
+        runs = [((first + i0) * 60.0, (first + i1) * 60.0) for i0, i1 in _runs(st == state)]
+        for ax in (ax_h, ax_d):
+            _bands(ax, runs, name if ax is ax_h else None, zorder=0, **style)
     # alarm spans on the hourly panel: at each moment the most urgent alarm open, so
     # overlapping alarms neither darken nor hide one another's colour
-    shown: set[Priority] = set()
-    for a, b, prio in _most_urgent(
-        [(*ep.span(pic.end), ep.priority) for ep in pic.episodes if ep.raised]
-    ):
-        ax_h.axvspan(
-            *_dt([a, max(b, a + 60.0)]),
-            color=PRIORITY_COLOUR[prio],
-            alpha=0.45,
-            lw=0,
-            zorder=0.5,
-            label=f"alarm active ({prio})" if prio not in shown else None,
-        )
-        shown.add(prio)
+    pieces = _most_urgent([(*ep.span(pic.end), ep.priority) for ep in pic.episodes if ep.raised])
+    for prio in (Priority.HIGH, Priority.MEDIUM, Priority.LOW, Priority.INFO):
+        spans = [(a, max(b, a + 60.0)) for a, b, p in pieces if p is prio]
+        _bands(ax_h, spans, f"alarm active ({prio})", color=PRIORITY_COLOUR[prio], alpha=0.45,
+               lw=0, zorder=0.5)  # fmt: skip
     tr = ax_h.get_xaxis_transform()
     if pic.bag_changes:
         ax_h.plot(

@@ -73,9 +73,11 @@ class Intake:
 def effective_time(tr: ReadingTrace) -> float:
     """The time the engine used for the reading (receive time if the meter clock was
     not believed, or if the message never became a reading)."""
-    if tr.device_time is None or Outcome.CLOCK_SKEW in tr.outcomes:
-        return tr.received
-    return tr.device_time
+    t = tr.device_time
+    return tr.received if t is None or tr.outcomes[-1] is _SKEW else t
+
+
+_SKEW = Outcome.CLOCK_SKEW  # the engine marks the reading's own (last) outcome
 
 
 class Recorder:
@@ -88,7 +90,7 @@ class Recorder:
         self.readings: dict[str, BedReadings] = {}
         self.intake: dict[str, list[Intake]] = {}
         self.first_time: float | None = None
-        self.last_time: float | None = None
+        self._last: LogRecord | None = None  # the latest record passed on
         # full traces of one bed (for explain), each with its final outcome
         self.trace_bed = keep_traces_for
         self.traces: list[tuple[ReadingTrace, Outcome]] = []
@@ -98,6 +100,7 @@ class Recorder:
 
     # --- the engine's observer -------------------------------------------------
     def observe(self, tr: ReadingTrace) -> None:
+        """Called once per meter message (a month is ~900,000 calls): kept lean."""
         bed = tr.bed
         if bed is None:
             return
@@ -105,6 +108,7 @@ class Recorder:
         if log is None:
             log = self.readings[bed] = BedReadings()
         outs = tr.outcomes
+        last = outs[-1]
         if len(outs) == 2:  # the first settles the reading this device held before
             held = self._held.pop(tr.device_id, None)
             if held is not None:
@@ -112,8 +116,8 @@ class Recorder:
                 hlog.codes[i] = CODE[outs[0]]
                 if j is not None:
                     self.traces[j] = (self.traces[j][0], outs[0])
-        last = outs[-1]
-        log.times.append(effective_time(tr))
+        t = tr.device_time
+        log.times.append(tr.received if t is None or last is _SKEW else t)
         log.codes.append(CODE[last])
         j = None
         if bed == self.trace_bed:
@@ -133,21 +137,30 @@ class Recorder:
                 self.notices.append(e)
 
     # --- the records on their way in -------------------------------------------
-    def watch(self, records: Iterable[Record]) -> Iterator[Record]:
-        """Pass records through, noting times and documented intake."""
+    def watch(
+        self, records: Iterable[Record], between: Callable[[], None] | None = None
+    ) -> Iterator[Record]:
+        """Pass records through, noting times and documented intake; `between` runs
+        before each record, when the one before has been fully processed."""
         prefix, tail = self._bed_prefix, self._intake_tail
         for item in records:
+            if between is not None:
+                between()
             if not isinstance(item, BadLine):
-                rec = item[1]
-                t = rec.time.timestamp()
+                rec = self._last = item[1]
                 if self.first_time is None:
-                    self.first_time = t
-                if self.last_time is None or t > self.last_time:
-                    self.last_time = t
+                    self.first_time = rec.time.timestamp()
                 topic = rec.topic
                 if topic.endswith(tail) and topic.startswith(prefix):
                     self._note_intake(topic[len(prefix) : -len(tail)], rec)
             yield item
+        if between is not None:
+            between()
+
+    @property
+    def last_time(self) -> float | None:
+        """Receive time of the latest record passed on."""
+        return None if self._last is None else self._last.time.timestamp()
 
     def _note_intake(self, bed: str, rec: LogRecord) -> None:
         try:
@@ -229,9 +242,7 @@ def run(
     processed (explain uses it to follow one alarm's evidence); `also` sees every
     batch of effects after the recorder."""
     engine = make_engine(recorder.observe)
-    records: Iterable[Record] = recorder.watch(open_source(path))
-    if before_each is not None:
-        records = _between(records, before_each)
+    records: Iterable[Record] = recorder.watch(open_source(path), before_each)
     if progress is not None and progress.isatty():
         records = with_progress(records, count_records(path), label, progress)
     if also is None:
@@ -243,13 +254,6 @@ def run(
         extra(effects)
 
     return drive(engine, records, both, until)
-
-
-def _between(records: Iterable[Record], hook: Callable[[], None]) -> Iterator[Record]:
-    for item in records:
-        hook()
-        yield item
-    hook()
 
 
 def warn_about(result: ReplayResult, path: Path, stream: TextIO | None = sys.stderr) -> None:
