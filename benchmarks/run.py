@@ -10,7 +10,7 @@ import platform
 import sys
 from collections.abc import Sequence
 
-from benchmarks import bench_intake, bench_journal, bench_replay, bench_review
+from benchmarks import bench_intake, bench_journal, bench_replay, bench_review, bench_service
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -24,6 +24,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_replay.main([]) or rc
     print()
     rc = bench_review.main([]) or rc
+    print()
+    rc = bench_service.main([]) or rc
     return rc
 
 
