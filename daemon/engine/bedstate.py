@@ -38,6 +38,7 @@ class BedState:
     last_labs_time: float | None = None
     last_eval_minute: int | None = None
     notices: set[str] = field(default_factory=set)
+    quiet_until: dict[str, int] = field(default_factory=dict)  # rule id -> minute
     last_advice: AdviceIssued | None = None
     last_advice_hour: int | None = None  # clock-hour index the advice was computed from
 

@@ -15,6 +15,7 @@ from . import rules as r
 from .alarms import Priority
 from .bedstate import BedState
 from .haemo import mean_arterial_pressure, shock_index
+from .series import MinuteSeries
 from .timefmt import iso
 from .windows import Window, hours_ending, measure, window_bounds
 
@@ -49,6 +50,9 @@ class Finding:
     priority: Priority | None = None  # overrides the rule's priority for this episode
     due: float | None = None  # time at which the answer may change without new input
     skipped: str | None = None  # why the check could not run (e.g. no weight)
+    # the condition is false and provably stays false, whatever new readings bring,
+    # until windows end after this minute (low-output rules: new minutes only add)
+    quiet_until: int | None = None
 
 
 def _say(summary: str, evidence: dict[str, Any] | None = None) -> Explain:
@@ -57,6 +61,21 @@ def _say(summary: str, evidence: dict[str, Any] | None = None) -> Explain:
 
 
 NOT_YET = Finding(False, _say("no data yet"))
+
+QUIET_LIMIT_MIN = 60  # re-check at least hourly even when provably quiet
+# corrections of recent minutes (a refit, a reordered reading) may take back a little
+QUIET_MARGIN_ML = 5.0
+QUIET_MARGIN_SHARE = 0.05
+
+
+def _quiet_until(w: Window, series: MinuteSeries, threshold_ml: float) -> int | None:
+    """While a low-output window keeps more than `threshold_ml` (plus a margin) of
+    what it holds now, the alarm condition cannot be met."""
+    budget = w.volume_ml - threshold_ml - max(QUIET_MARGIN_ML, QUIET_MARGIN_SHARE * threshold_ml)
+    if budget < 0:
+        return None
+    lo, hi = window_bounds(w.end_minute, w.length_min)
+    return w.end_minute + series.slide_budget(lo, hi, budget, QUIET_LIMIT_MIN)
 
 
 def _ml(x: float) -> str:
@@ -141,7 +160,12 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
                 ev,
             )
 
-        return Finding(w.covered and rate < c.threshold_ml_kg_h, explain_mean)
+        cond = w.covered and rate < c.threshold_ml_kg_h
+        # the rate over the known minutes is at least volume / whole window
+        quiet = None if cond else _quiet_until(
+            w, v.bed.series, c.threshold_ml_kg_h * kg * c.window_h
+        )  # fmt: skip
+        return Finding(cond, explain_mean, quiet_until=quiet)
     wins = hours_ending(v.bed.series, end, c.window_h)
     rates = [w.rate_ml_kg_h(kg) for w in wins]
     covered = all(w.covered for w in wins)
@@ -178,7 +202,9 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
             ev,
         )
 
-    return Finding(w.covered and scaled < c.threshold_ml, explain)
+    cond = w.covered and scaled < c.threshold_ml
+    quiet = None if cond else _quiet_until(w, v.bed.series, c.threshold_ml)
+    return Finding(cond, explain, quiet_until=quiet)
 
 
 def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
@@ -190,7 +216,11 @@ def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
     last = measure(v.bed.series, end, c.stopped_min)
     if last.volume_ml > c.max_ml or last.measured_min < c.stopped_min:
         # the common case, O(1): flowing, or not all measured
-        return Finding(False, lambda: ("urine is flowing", {"last": last.to_json()}))
+        return Finding(
+            False,
+            lambda: ("urine is flowing", {"last": last.to_json()}),
+            quiet_until=_quiet_until(last, v.bed.series, c.max_ml),
+        )
     # the trailing run of measured minutes holding at most max_ml in all
     run = v.bed.series.trailing_quiet(end, c.max_ml, 1440)
     stop_end = end - run  # last minute before the stop

@@ -394,7 +394,7 @@ class Engine:
         prev = bed.last_eval_minute
         if latest is None or latest == prev:
             return []
-        effects = self._evaluate(bed, now)
+        effects = self._evaluate(bed, now, reading=True)
         hour_done = prev is not None and (latest + 1) // 60 != (prev + 1) // 60
         opened = any(
             isinstance(e, AlarmEvent) and e.rule in self._high_output and e.state is State.ACTIVE
@@ -404,11 +404,11 @@ class Engine:
             effects = self._advice(bed, latest, now) + effects
         return effects
 
-    def _evaluate(self, bed: BedState, now: float) -> list[Effect]:
+    def _evaluate(self, bed: BedState, now: float, reading: bool = False) -> list[Effect]:
         if not self.rules:
             return []
         bed.last_eval_minute = bed.series.latest_minute()
-        events, due = self.evaluator.run(bed, now, self._devices_of(bed))
+        events, due = self.evaluator.run(bed, now, self._devices_of(bed), reading)
         if due is None:
             self._due.pop(bed.bed_id, None)
         elif self._due.get(bed.bed_id) != due:

@@ -55,15 +55,21 @@ class Evaluator:
         self.book = book
 
     def run(
-        self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...]
+        self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...], reading: bool = False
     ) -> tuple[list[AlarmEvent | Notice], float | None]:
-        """Evaluate every rule on the bed; return events and the next due time."""
+        """Evaluate every rule on the bed; return events and the next due time.
+
+        After a reading, a low-output rule that proved itself quiet until a later
+        minute is not re-checked before then (nothing a reading adds can meet it);
+        any other cause (an input, a context, a wake-up) re-checks every rule."""
         out: list[AlarmEvent | Notice] = []
         due: float | None = None
         bed_id, ward = bed.bed_id, bed.context.ward
         disabled = bed.context.disabled_rules
         book = self.book
         view = BedView(bed, now, devices, {})
+        quiet = bed.quiet_until
+        end = bed.series.latest_minute()
         stage = -1
         opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
@@ -74,6 +80,8 @@ class Evaluator:
                 stage = plan.stage
                 opened = book.open_rules(bed_id)  # these must hear every answer
                 suppressor = book.suppressor(bed_id)
+            if reading and rid not in opened and end is not None and quiet.get(rid, -1) >= end:
+                continue
             if disabled and rid in disabled:
                 if rid in opened:
                     off = "disabled for this bed"
@@ -89,6 +97,10 @@ class Evaluator:
                     continue
                 view.gates = gates
             f = plan.check(rule.check, view)
+            if f.quiet_until is not None:
+                quiet[rid] = f.quiet_until
+            else:
+                quiet.pop(rid, None)
             if f.skipped is not None and f.skipped not in bed.notices:
                 bed.notices.add(f.skipped)
                 out.append(Notice(now, bed_id, ward, f.skipped,

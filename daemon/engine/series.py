@@ -13,6 +13,7 @@ rules ask for many windows per minute, while writes touch the last few minutes.
 
 from __future__ import annotations
 
+import bisect
 import math
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -196,6 +197,21 @@ class MinuteSeries:
         b = min(max(hi - base, 0), n)
         cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
         return Sums(cv[b] - cv[a], cm[b] - cm[a], ce[b] - ce[a])
+
+    def slide_budget(self, lo: int, hi: int, budget_ml: float, limit: int) -> int:
+        """How many minutes window [lo, hi) can slide forward before the minutes it
+        sheds hold more than `budget_ml` (at most `limit`). New minutes only add
+        volume, so until then its volume stays above (current - budget)."""
+        if self._base is None or budget_ml < 0:
+            return 0
+        if self._dirty < self._n:
+            self._refresh()
+        a = min(max(lo - self._base, 0), self._n)
+        b = min(max(hi - self._base, 0), self._n)
+        cv = self._cum_vol
+        # the last slot k in [a, b] with cv[k] - cv[a] <= budget (prefix sums ~monotone)
+        k = bisect.bisect_right(cv, cv[a] + budget_ml, a, b + 1) - 1
+        return max(0, min(k - a + max(0, a - (lo - self._base)), limit))
 
     def trailing_quiet(self, end: int, max_ml: float, limit: int) -> int:
         """Length of the run of measured minutes ending at `end` (inclusive) whose
