@@ -257,7 +257,7 @@ def test_kill_9_under_load_loses_no_reading_and_journals_no_alarm_twice(broker, 
         for k, chunk in enumerate(chunks):
             n_status = len(w.json("hourwatch/status"))
             with (tmp_path / f"service-{k}.log").open("w") as log:  # kept for a post-mortem
-                proc = subprocess.Popen(cmd, env=env, stderr=log)
+                proc = subprocess.Popen(cmd, env=env, stdout=log, stderr=log)
             w.wait_for(lambda w, n=n_status: [s for s in w.json("hourwatch/status")[n:]
                                              if s["status"] == "online"], 20, "online")  # fmt: skip
             infos = [pub.publish(t, json.dumps(p), qos=1) for t, p in chunk]

@@ -210,7 +210,7 @@ def test_sigterm_stops_cleanly_and_status_goes_offline(broker, tmp_path):  # noq
     proc = subprocess.Popen(
         _hourwatch("run", "--config", str(conf), "--broker", broker.address,
                    "--journal", str(tmp_path / "j.db")),
-        stderr=subprocess.PIPE, text=True, env=env,
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
     )  # fmt: skip
     try:
         online = w.wait_for(
@@ -219,12 +219,12 @@ def test_sigterm_stops_cleanly_and_status_goes_offline(broker, tmp_path):  # noq
         )  # fmt: skip
         assert online[-1]["caution"] == CAUTION and online[-1]["schema"] == 1
         proc.send_signal(signal.SIGTERM)
-        _, err = proc.communicate(timeout=15)
+        out, err = proc.communicate(timeout=15)
     finally:
         if proc.poll() is None:
             proc.kill()
     assert proc.returncode == 0, err[-2000:]
-    lines = [json.loads(x) for x in err.splitlines() if x.startswith("{")]
+    lines = [json.loads(x) for x in out.splitlines() if x.startswith("{")]  # logs on stdout
     assert any(x["event"] == "service_stopped" for x in lines)
     assert all("level" in x and "timestamp" in x for x in lines)  # structured, one per line
     w.close()
