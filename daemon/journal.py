@@ -13,6 +13,14 @@ connection of their own, so they see one consistent snapshot and never take the 
 
 The file says what it is: the SQLite header carries APPLICATION_ID, and PRAGMA user_version
 the schema version. Any other SQLite file, or a journal from a newer Hourwatch, is refused.
+Both are read through SQLite, never with open(): on Linux, closing any descriptor of a file
+drops all of the process's POSIX locks on it, the writer connection's included, and another
+process closing its own connection could then checkpoint and delete the WAL under the writer.
+SQLite's own connections share their locks within a process, so they are safe.
+
+Checkpoints: the writer does not checkpoint inside commits (wal_autocheckpoint=0; that stalled
+a commit for 100-800 ms). The owner calls `checkpoint()` between batches instead; see there
+for how the WAL is kept bounded when readers hold it back.
 
 Ids (`messages.id`, `events.id`) follow receive/append order and are never reused, even after
 pruning (AUTOINCREMENT).
@@ -23,7 +31,9 @@ from __future__ import annotations
 import base64
 import json
 import math
+import os
 import sqlite3
+import stat
 import time
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
@@ -47,6 +57,13 @@ DELIVERABLE = ("alarm", "advice")  # event kinds the service must get confirmed 
 # and the bytes in base64. U+FFFE is a Unicode noncharacter, so no meter text starts with it.
 BINARY_MARKER = "\ufffebase64:"
 MAX_TOPIC = 512  # the JSON Lines log format's limit (daemon/logfile.py)
+# A reset WAL file is cut back to this size; a WAL bigger than this has not been reset since
+# it grew, so it is also the size past which a stuck checkpoint is forced (see `checkpoint`).
+WAL_LIMIT_BYTES = 64 * 1024 * 1024
+CHECKPOINT_EVERY_S = 1.0  # `checkpoint()` does its work at most this often by default
+CHECKPOINT_STUCK_CALLS = 10  # incomplete PASSIVE checkpoints in a row before forcing one
+FORCE_BUSY_MS = 200  # a forced checkpoint waits this long for readers, then gives up
+CHECKPOINT_MODES = ("PASSIVE", "FULL", "RESTART", "TRUNCATE")
 
 _SCHEMA = (
     """CREATE TABLE messages (
@@ -80,6 +97,21 @@ class StoredMessage:
     topic: str
     payload: bytes
     qos: int
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    """What one `PRAGMA wal_checkpoint` did (frame counts as SQLite reports them)."""
+
+    mode: str
+    busy: bool  # a FULL/RESTART/TRUNCATE checkpoint could not finish (readers or a writer)
+    wal_frames: int  # frames in the WAL
+    checkpointed: int  # of these, copied into the database file
+    forced: bool = False  # the fallback after PASSIVE checkpoints kept falling short
+
+    @property
+    def complete(self) -> bool:
+        return not self.busy and self.checkpointed == self.wal_frames
 
 
 @dataclass(frozen=True)
@@ -163,7 +195,10 @@ class Journal:
             raise UserError(f"journal retention must be positive, got {retention_days} days")
         self.path = path
         self.retention_s = retention_days * DAY_S
-        _check_header(path, allow_missing=True)
+        self._wal = path.with_name(path.name + "-wal")
+        self._next_checkpoint = -math.inf  # monotonic time
+        self._stuck = 0  # incomplete checkpoints in a row
+        _check_file(path, allow_missing=True)
         try:
             db = sqlite3.connect(
                 str(path), isolation_level=None, check_same_thread=False, timeout=5.0
@@ -172,15 +207,16 @@ class Journal:
             raise UserError(f"{path}: cannot open journal: {exc}") from None
         try:
             db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-            _init_schema(db, path)
+            _init_schema(db, path)  # the first read: a file that is not SQLite fails here
             mode = db.execute("PRAGMA journal_mode = WAL").fetchone()[0]
             if str(mode).lower() != "wal":
                 raise UserError(f"{path}: journal needs WAL mode; this file system gave {mode}")
             db.execute("PRAGMA synchronous = FULL")  # fsync the WAL at every commit
-            db.execute("PRAGMA journal_size_limit = 67108864")  # WAL shrinks back to 64 MiB
+            db.execute(f"PRAGMA journal_size_limit = {WAL_LIMIT_BYTES}")  # a reset WAL shrinks
+            db.execute("PRAGMA wal_autocheckpoint = 0")  # no checkpoint inside a commit
         except sqlite3.Error as exc:
             db.close()
-            raise UserError(f"{path}: not a usable journal: {exc}") from None
+            raise _db_error(path, exc, "not a usable journal") from None
         except UserError:
             db.close()
             raise
@@ -241,23 +277,25 @@ class Journal:
         """Delete messages and events older than the retention, `batch` rows per transaction.
 
         Between batches the write lock is free for `pause_s`, so a writer on another
-        connection gets in within about one batch; `max_batches` > 0 stops early (call again
-        later). Undelivered alarms past the retention go too: they are no longer news.
+        connection gets in within about one batch; `max_batches` > 0 stops early, after at
+        most that many batches per table (call again later). The limit is per table so that
+        each call makes progress on both: a backlog of messages cannot starve the events.
+        Undelivered alarms past the retention go too: they are no longer news.
         The file does not shrink; SQLite reuses the freed pages. Returns rows deleted.
         """
         cutoff = now - self.retention_s
-        deleted = batches = 0
+        deleted = total = 0
         for table, col in (("messages", "recv_time"), ("events", "time")):
+            batches = 0
             while True:
-                if batches and pause_s > 0:
+                if total and pause_s > 0:
                     time.sleep(pause_s)
                 n = self._delete_batch(table, col, cutoff, batch)
                 deleted += n
                 batches += 1
+                total += 1
                 if n < batch or (max_batches and batches >= max_batches):
                     break
-            if max_batches and batches >= max_batches:
-                break
         return deleted
 
     def _delete_batch(self, table: str, col: str, cutoff: float, batch: int) -> int:
@@ -274,6 +312,56 @@ class Journal:
             db.execute("ROLLBACK")
             raise
         return cur.rowcount
+
+    # --- checkpoints --------------------------------------------------------------
+    def checkpoint(
+        self, mode: str = "PASSIVE", *, min_interval_s: float = CHECKPOINT_EVERY_S
+    ) -> Checkpoint | None:
+        """Copy the WAL into the database file; None if skipped (last one < min_interval_s ago).
+
+        Call it between write batches, e.g. at every housekeeping step: the writer never
+        checkpoints inside a commit (wal_autocheckpoint=0). PASSIVE waits for nobody, so it
+        takes only the copying and one fsync of the database file, and it cannot finish past
+        the snapshot of a reader that is still open (an export, another process's review).
+        The WAL then keeps growing while such a reader lasts. Bound: after
+        CHECKPOINT_STUCK_CALLS (10) incomplete checkpoints in a row, with the WAL file over
+        WAL_LIMIT_BYTES (64 MiB), a TRUNCATE checkpoint waits up to FORCE_BUSY_MS (200 ms)
+        for the readers and empties the WAL; if they are still there it gives up and tries
+        again after another 10 calls (so at most 200 ms of waiting per ~10 s at 1 call/s).
+        """
+        if mode not in CHECKPOINT_MODES:
+            raise ValueError(f"checkpoint mode must be one of {CHECKPOINT_MODES}, got {mode!r}")
+        now = time.monotonic()
+        if now < self._next_checkpoint:
+            return None
+        self._next_checkpoint = now + min_interval_s
+        result = self._wal_checkpoint(mode)
+        if result.complete:
+            self._stuck = 0
+            return result
+        self._stuck += 1
+        if self._stuck >= CHECKPOINT_STUCK_CALLS and self.wal_bytes() > WAL_LIMIT_BYTES:
+            self._stuck = 0  # success or not: the next forced try is 10 calls away
+            result = self._wal_checkpoint("TRUNCATE", busy_ms=FORCE_BUSY_MS)
+        return result
+
+    def _wal_checkpoint(self, mode: str, busy_ms: int | None = None) -> Checkpoint:
+        db = self._db
+        if busy_ms is not None:
+            db.execute(f"PRAGMA busy_timeout = {busy_ms}")
+        try:
+            busy, frames, done = db.execute(f"PRAGMA wal_checkpoint({mode})").fetchone()
+        finally:
+            if busy_ms is not None:
+                db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        return Checkpoint(mode, bool(busy), frames, done, forced=busy_ms is not None)
+
+    def wal_bytes(self) -> int:
+        """Size of the WAL file (0 if there is none); stat only, the file is not opened."""
+        try:
+            return self._wal.stat().st_size
+        except OSError:
+            return 0
 
     def close(self) -> None:
         self._db.close()
@@ -329,20 +417,25 @@ def _event(r: tuple[Any, ...]) -> StoredEvent:
     return StoredEvent(r[0], r[1], r[2], r[3], r[4], json.loads(r[5]), r[6])
 
 
-def _check_header(path: Path, *, allow_missing: bool) -> None:
-    if not path.exists():
+def _check_file(path: Path, *, allow_missing: bool) -> None:
+    """Exists and is a regular file. Only stat: opening the file here would drop this
+    process's locks on it (see the module docstring); SQLite itself tells what is inside."""
+    try:
+        st = path.stat()
+    except FileNotFoundError:
         if allow_missing:
             return
-        raise UserError(f"{path}: no such file")
-    if not path.is_file():
-        raise UserError(f"{path}: not a file")
-    try:
-        with path.open("rb") as fh:
-            head = fh.read(len(SQLITE_HEADER))
+        raise UserError(f"{path}: no such file") from None
     except OSError as exc:
         raise UserError(f"{path}: cannot read: {exc.strerror}") from None
-    if head and head != SQLITE_HEADER:
-        raise UserError(f"{path}: not a Hourwatch journal (not an SQLite database)")
+    if not stat.S_ISREG(st.st_mode):
+        raise UserError(f"{path}: not a file")
+
+
+def _db_error(path: Path, exc: sqlite3.Error, what: str) -> UserError:
+    if exc.sqlite_errorcode == sqlite3.SQLITE_NOTADB:
+        return UserError(f"{path}: not a Hourwatch journal (not an SQLite database)")
+    return UserError(f"{path}: {what}: {exc}")
 
 
 def _identify(db: sqlite3.Connection, path: Path) -> bool:
@@ -379,7 +472,7 @@ def _init_schema(db: sqlite3.Connection, path: Path) -> None:
 
 
 def _open_reader(path: Path) -> sqlite3.Connection:
-    _check_header(path, allow_missing=False)
+    _check_file(path, allow_missing=False)
     uri = path.resolve().as_uri() + "?mode=ro"
     try:
         db = sqlite3.connect(uri, uri=True, isolation_level=None, check_same_thread=False)
@@ -387,11 +480,11 @@ def _open_reader(path: Path) -> sqlite3.Connection:
         raise UserError(f"{path}: cannot read journal: {exc}") from None
     try:
         db.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-        if not _identify(db, path):
+        if not _identify(db, path):  # the first read: a file that is not SQLite fails here
             raise UserError(f"{path}: not a Hourwatch journal (an empty SQLite database)")
     except sqlite3.Error as exc:
         db.close()
-        raise UserError(f"{path}: cannot read journal: {exc}") from None
+        raise _db_error(path, exc, "cannot read journal") from None
     except UserError:
         db.close()
         raise
@@ -444,18 +537,43 @@ def _events(
         db.close()
 
 
+def _application_id(path: Path) -> int | None:
+    """The header's application id, read by a read-only SQLite connection (never open(),
+    so this is safe beside a live writer in the same process); None for a missing or empty
+    file; sqlite3.DatabaseError (SQLITE_NOTADB) for a file that is not SQLite."""
+    try:
+        st = path.stat()
+    except OSError:
+        return None
+    if not stat.S_ISREG(st.st_mode) or st.st_size == 0:
+        return None  # an empty file would read as an empty database
+    db = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
+    try:
+        return int(db.execute("PRAGMA application_id").fetchone()[0])
+    finally:
+        db.close()
+
+
 def is_journal(path: Path) -> bool:
     """An existing Hourwatch journal (of any schema version)? Never raises, never creates."""
     try:
-        with path.open("rb") as fh:
-            if fh.read(len(SQLITE_HEADER)) != SQLITE_HEADER:
-                return False
-        db = sqlite3.connect(path.resolve().as_uri() + "?mode=ro", uri=True)
-        try:
-            return bool(db.execute("PRAGMA application_id").fetchone()[0] == APPLICATION_ID)
-        finally:
-            db.close()
+        return _application_id(path) == APPLICATION_ID
     except (OSError, sqlite3.Error):
+        return False
+
+
+def is_sqlite(path: Path) -> bool:
+    """A non-empty SQLite file (a journal or another database), as SQLite itself reads it.
+    False for anything else, e.g. a JSON Lines log, or a file this process may not read;
+    True when SQLite knows the file but cannot read it just now (e.g. a WAL database in a
+    read-only folder): opening it as a journal then says why."""
+    if not os.access(path, os.R_OK):
+        return False
+    try:
+        return _application_id(path) is not None
+    except sqlite3.Error as exc:
+        return exc.sqlite_errorcode != sqlite3.SQLITE_NOTADB
+    except OSError:
         return False
 
 

@@ -8,6 +8,9 @@ from __future__ import annotations
 import base64
 import json
 import sqlite3
+import subprocess
+import sys
+import threading
 from pathlib import Path
 
 import pytest
@@ -22,6 +25,7 @@ from daemon.journal import (
     Journal,
     StoredMessage,
     is_journal,
+    is_sqlite,
     journal_items,
     journal_records,
     log_payload,
@@ -152,6 +156,7 @@ def test_wal_full_sync_and_schema_marks_are_set(jpath: Path) -> None:
     j = Journal(jpath)
     assert j._db.execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL: fsync every commit
     assert j._db.execute("PRAGMA busy_timeout").fetchone()[0] > 0
+    assert j._db.execute("PRAGMA wal_autocheckpoint").fetchone()[0] == 0  # not inside commits
     j.append_messages([(T0, "m/x", b"{}", 1)])
     other = sqlite3.connect(jpath)  # journal_mode and the header marks live in the file
     assert other.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
@@ -235,8 +240,26 @@ def test_prune_max_batches_stops_early(jpath: Path) -> None:
     now = T0 + 40 * DAY_S
     with Journal(jpath) as j:
         _fill(j, 300, 0, now)
-        assert j.prune(now, batch=100, max_batches=2) == 200
-        assert j.prune(now, batch=100) == 100 + 30
+        # at most 2 batches per table: 200 of the 300 messages, and all 30 events
+        assert j.prune(now, batch=100, max_batches=2) == 200 + 30
+        assert j.prune(now, batch=100) == 100
+
+
+@pytest.mark.parametrize("n_old_messages", [0, 1000])
+def test_prune_one_batch_at_a_time_reaches_the_events_too(jpath: Path, n_old_messages: int) -> None:
+    """With max_batches=1 (the service prunes in small steps) an expired event goes, whether
+    the messages have nothing to prune or a backlog of many batches."""
+    now = T0 + 40 * DAY_S
+    old = now - 31 * DAY_S  # past the 30-day default retention
+    with Journal(jpath) as j:
+        j.append_messages([(old + k, "m/x", b"{}", 1) for k in range(n_old_messages)])
+        j.append_events([(old, "notice", "b01", None, {})])
+        j.append_events([(now, "notice", "b01", None, {})])  # within retention: stays
+        deleted = [j.prune(now, batch=100, max_batches=1) for _ in range(3)]
+        assert [e.time for e in j.events_between(None, None)] == [now]
+        remaining = len(list(j.messages_between(None, None)))
+    assert remaining == max(n_old_messages - 300, 0)
+    assert sum(deleted) == min(n_old_messages, 300) + 1
 
 
 # --- refusing what is not a journal ----------------------------------------------------
@@ -383,3 +406,191 @@ def test_bed_filter_uses_the_topic_prefix(jpath: Path) -> None:
         ])  # fmt: skip
     assert len(list(journal_records(jpath, bed="b01", prefix="ward7"))) == 2
     assert list(journal_records(jpath, bed="b01")) == []
+
+
+# --- checkpoints: outside commits, and a WAL that stays bounded --------------------------
+PAYLOAD = b'{"volume_ml": 12.5, "seq": 3, "note": "' + b"x" * 150 + b'"}'  # invented reading
+
+
+def _batch(k: int) -> list[tuple[float, str, bytes, int]]:
+    return [(T0 + k + i / 16, "meters/m-01/volume", PAYLOAD, 1) for i in range(16)]
+
+
+def test_wal_stays_small_with_checkpoints_and_grows_without(tmp_path: Path) -> None:
+    sizes = {}
+    for with_checkpoints in (True, False):
+        path = tmp_path / f"{with_checkpoints}.db"
+        with Journal(path) as j:
+            largest = 0
+            for k in range(250):
+                j.append_messages(_batch(k))
+                if with_checkpoints and k % 10 == 9:  # about the service's once a second
+                    done = j.checkpoint(min_interval_s=0)
+                    assert done is not None and done.complete
+                largest = max(largest, j.wal_bytes())
+            assert j.wal_bytes() == (path.parent / f"{path.name}-wal").stat().st_size
+            sizes[with_checkpoints] = largest
+            # durability settings as before
+            assert j._db.execute("PRAGMA synchronous").fetchone()[0] == 2
+            assert j._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+        with Journal(path) as j:
+            assert len(list(j.messages_between(None, None))) == 250 * 16
+    # 10 commits of a few 4 KiB pages each between checkpoints
+    assert sizes[True] < 512 * 1024
+    # no automatic checkpoint: SQLite's default one would have stopped near 4 MiB (1000 pages)
+    assert sizes[False] > 5 * 1024 * 1024
+
+
+def test_checkpoint_runs_at_most_once_per_interval(jpath: Path) -> None:
+    with Journal(jpath) as j:
+        j.append_messages(_batch(0))
+        assert j.checkpoint(min_interval_s=60) is not None
+        j.append_messages(_batch(1))
+        assert j.checkpoint(min_interval_s=60) is None  # skipped: the last one was just now
+        with pytest.raises(ValueError):
+            j.checkpoint("EVERYTHING")
+
+
+def test_a_stuck_checkpoint_is_forced_once_the_wal_is_large(
+    jpath: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A reader holding an old snapshot stops PASSIVE checkpoints short and the WAL grows;
+    past the size limit the journal waits for the reader (briefly) and empties the WAL."""
+    monkeypatch.setattr("daemon.journal.WAL_LIMIT_BYTES", 256 * 1024)
+    monkeypatch.setattr("daemon.journal.CHECKPOINT_STUCK_CALLS", 3)
+    monkeypatch.setattr("daemon.journal.FORCE_BUSY_MS", 5000)
+    with Journal(jpath) as j:
+        j.append_messages(_batch(0))
+        reader = sqlite3.connect(jpath, isolation_level=None, check_same_thread=False)
+        reader.execute("BEGIN")
+        reader.execute("SELECT count(*) FROM messages").fetchone()  # holds this snapshot
+        for k in range(1, 200):
+            j.append_messages(_batch(k))
+            if j.wal_bytes() > 256 * 1024:
+                break
+        assert j.wal_bytes() > 256 * 1024
+        for _ in range(2):
+            r = j.checkpoint(min_interval_s=0)
+            assert r is not None and not r.complete and not r.forced  # the reader holds it
+        # the third incomplete one forces: the reader ends 0.2 s into the forced wait
+        ender = threading.Timer(0.2, lambda: reader.execute("COMMIT"))
+        ender.start()
+        r = j.checkpoint(min_interval_s=0)
+        ender.join()
+        reader.close()
+        assert r is not None and r.forced and r.complete
+        assert j.wal_bytes() == 0  # TRUNCATE empties the file
+        j.append_messages(_batch(500))
+        assert len(list(j.messages_between(None, None))) == (k + 2) * 16
+
+
+def test_a_forced_checkpoint_gives_up_while_the_reader_stays(
+    jpath: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr("daemon.journal.WAL_LIMIT_BYTES", 128 * 1024)
+    monkeypatch.setattr("daemon.journal.CHECKPOINT_STUCK_CALLS", 2)
+    monkeypatch.setattr("daemon.journal.FORCE_BUSY_MS", 50)
+    with Journal(jpath) as j:
+        j.append_messages(_batch(0))
+        reader = j.messages_between(None, None)
+        next(reader)  # an export in progress holds its snapshot
+        for k in range(1, 100):
+            j.append_messages(_batch(k))
+        forced = []
+        for _ in range(6):
+            r = j.checkpoint(min_interval_s=0)
+            assert r is not None and not r.complete
+            forced.append(r.forced)
+        assert forced == [False, True] * 3  # one forced try per 2 calls, not at every call
+        assert sum(1 for _ in reader) == 15  # the export still reads its own snapshot
+        # the reader is gone: the next checkpoint completes and the WAL shrinks at its reset
+        r = j.checkpoint(min_interval_s=0)
+        assert r is not None and r.complete
+        j.append_messages(_batch(200))
+        assert j.wal_bytes() <= 128 * 1024
+
+
+# --- never opening the database file outside SQLite -----------------------------------
+# Closing any descriptor of a file drops all of the process's POSIX locks on it, the
+# writer's included; another process closing its journal then deleted the live WAL.
+HOLDER = """
+import json, sys
+from pathlib import Path
+from daemon.journal import Journal, is_journal, is_sqlite, journal_records
+path, t0 = Path(sys.argv[1]), float(sys.argv[2])
+wal = path.with_name(path.name + "-wal")
+j = Journal(path)
+j.append_messages([(t0 + k, "meters/m-01/volume", b"{}", 1) for k in range(10)])
+# every way this process looks at its own file while the writer is open
+n = len(list(j.messages_between(None, None))) + len(list(j.events_between(None, None)))
+n += len(list(journal_records(path))) + is_journal(path) + is_sqlite(path)
+print(json.dumps({"read": n, "wal": wal.exists()}), flush=True)
+sys.stdin.readline()  # the other process has opened and closed its own journal
+out = {"wal": wal.exists()}
+try:
+    j.append_messages([(t0 + 100 + k, "meters/m-01/volume", b"{}", 1) for k in range(10)])
+    out["read"] = len(list(j.messages_between(None, None)))
+except Exception as exc:
+    out["error"] = repr(exc)
+j.close()
+print(json.dumps(out), flush=True)
+"""
+
+
+def test_another_process_closing_its_journal_leaves_the_writers_wal_alone(jpath: Path) -> None:
+    root = Path(__file__).resolve().parent.parent
+    holder = subprocess.Popen(
+        [sys.executable, "-c", HOLDER, str(jpath), str(T0)],
+        cwd=root, stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+    )  # fmt: skip
+    assert holder.stdin is not None and holder.stdout is not None
+    try:
+        before = json.loads(holder.stdout.readline())
+        assert before == {"read": 10 + 0 + 10 + 2, "wal": True}
+        with Journal(jpath) as other:  # e.g. a review tool, or a restart attempt
+            assert len(list(other.messages_between(None, None))) == 10
+        assert is_journal(jpath) and is_sqlite(jpath)
+        holder.stdin.write("go\n")
+        holder.stdin.flush()
+        after = json.loads(holder.stdout.readline())
+    finally:
+        holder.stdin.close()
+        assert holder.wait(30) == 0
+    assert after == {"wal": True, "read": 20}
+    db = sqlite3.connect(jpath)
+    assert db.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert db.execute("SELECT count(*) FROM messages").fetchone()[0] == 20
+    db.close()
+
+
+def test_a_file_that_is_not_sqlite_is_refused_untouched(tmp_path: Path) -> None:
+    log = tmp_path / "night.jsonl"
+    log.write_text('{"time": "2026-03-14T00:00:00Z", "topic": "t", "payload": "x"}\n' * 50)
+    before = log.read_bytes()
+    with pytest.raises(UserError) as exc:
+        Journal(log)
+    assert "not an SQLite database" in _one_line(exc)
+    with pytest.raises(UserError) as exc:
+        journal_records(log)
+    assert "not an SQLite database" in _one_line(exc)
+    assert not is_sqlite(log) and not is_journal(log)
+    assert log.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["night.jsonl"]  # no -wal, no -shm
+
+
+def test_is_sqlite(tmp_path: Path, jpath: Path) -> None:
+    Journal(jpath).close()
+    other = tmp_path / "other.db"
+    db = sqlite3.connect(other)
+    db.execute("CREATE TABLE t (x)")
+    db.commit()
+    db.close()
+    empty = tmp_path / "empty.jsonl"
+    empty.touch()
+    assert is_sqlite(jpath) and is_sqlite(other)
+    assert not is_sqlite(empty) and not is_journal(empty)  # an empty log, not a database
+    assert not is_sqlite(tmp_path / "missing.db") and not is_sqlite(tmp_path)
+    # nothing created beside a file that is not a WAL database (a closed journal's reader
+    # may leave an empty -wal and -shm, as SQLite's read-only connections do)
+    names = sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith("j.db"))
+    assert names == ["empty.jsonl", "other.db"]
