@@ -659,7 +659,7 @@ class Service:
 
     # --- housekeeping: timeouts, retained state, status ------------------------------
     def _housekeeping(self) -> None:
-        assert self.outbox is not None
+        assert self.outbox is not None and self.journal is not None
         now = self.clock()
         for msg in self.outbox.newly_overdue(now):
             self._publish_failed(
@@ -678,6 +678,10 @@ class Service:
         self._publish_status()
         self.outbox.flush(self._connected)
         self._prune()
+        try:  # at most once a second; the journal never checkpoints inside a commit
+            self.journal.checkpoint()
+        except Exception:  # the WAL just grows a little longer: try again next time
+            self.log.error("journal_checkpoint_failed", exc_info=True)
 
     def _publish_states(self, force: bool) -> None:
         assert self.outbox is not None
