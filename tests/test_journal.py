@@ -95,7 +95,8 @@ def test_an_open_ended_range_is_read_through_the_time_index(jpath: Path) -> None
 
 
 def test_events_round_trip_by_time_and_bed(jpath: Path) -> None:
-    body = {"alarm_id": "b01/pod-hourly/1", "state": "active", "evidence": {"ml": [1.5, 2]}}
+    body: dict[str, object] = {"alarm_id": "b01/pod-hourly/1", "state": "active"}
+    body["evidence"] = {"ml": [1.5, 2]}
     rows: list[tuple[float, str, str | None, str | None, dict[str, object]]] = [
         (T0, "alarm", "b01", "b01/pod-hourly/1", body),
         (T0 + 5, "notice", "b02", None, {"text": "no weight"}),
