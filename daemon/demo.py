@@ -32,6 +32,7 @@ from simulator.scenario import load_scenario
 
 from .caution import CAUTION
 from .config import BrokerConfig, HealthConfig, JournalConfig, PublishConfig, ServiceConfig
+from .engine.timefmt import iso
 from .local_broker import EmbeddedBroker, Mosquitto, start_local_broker
 from .profile_files import load_profiles
 from .service import Service, configure_logging
@@ -84,6 +85,7 @@ class Tally:
     acks: int = 0
     advice: int = 0
     first_alarm: str | None = None
+    end: float = 0.0  # simulated time the ward stopped at
 
 
 class Nurse:
@@ -271,6 +273,7 @@ def run_demo(
         broker.stop()
         log_file.close()
     tally.acks = nurse.sent
+    tally.end = clock.now()
     _summary(console, tally, journal, work)
     return 0
 
@@ -306,8 +309,9 @@ def _summary(console: Console, tally: Tally, journal: Path, work: Path) -> None:
     )
     console.print(f"  journal: {journal}   (service log: {work / 'service.log'})")
     console.print("  review it:")
-    console.print(f"    hourwatch replay {journal}")
-    console.print(f"    hourwatch replay {journal} --report {work / 'report.html'}")
+    until = f"--until {iso(tally.end)}"  # the service's clock ran on to the ward's end
+    console.print(f"    hourwatch replay {journal} {until}")
+    console.print(f"    hourwatch replay {journal} {until} --report {work / 'report.html'}")
     if tally.first_alarm:
         console.print(f"    hourwatch explain {journal} {tally.first_alarm}")
     console.print(CAUTION)

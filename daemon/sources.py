@@ -6,17 +6,8 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from .errors import UserError
-from .journal import SQLITE_HEADER, journal_items
+from .journal import is_sqlite, journal_items
 from .logfile import BadLine, LogRecord, read_log
-
-
-def is_sqlite(path: Path) -> bool:
-    """An SQLite file, told by its 16-byte header (a journal, or another database)."""
-    try:
-        with path.open("rb") as fh:
-            return fh.read(len(SQLITE_HEADER)) == SQLITE_HEADER
-    except OSError:
-        return False
 
 
 def open_source(path: Path) -> Iterator[tuple[int, LogRecord] | BadLine]:
