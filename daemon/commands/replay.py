@@ -30,7 +30,7 @@ if TYPE_CHECKING:
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r = sub.add_parser("replay", help="replay a JSON Lines log through the engine")
-    r.add_argument("log", type=Path, help="JSON Lines log: {time, topic, payload} per line")
+    r.add_argument("log", type=Path, help="recorded messages: a JSON Lines log or a journal")
     r.add_argument("--profiles", type=Path, default=None, help="device profile folder")
     r.add_argument("--rules", type=Path, default=None, help="rule folder (with escalation.toml)")
     r.add_argument("--hourly", action="store_true", help="print completed clock-hour totals")
