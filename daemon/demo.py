@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any, TextIO
 
 import paho.mqtt.client as mqtt
+import structlog
 from paho.mqtt.enums import CallbackAPIVersion
 from rich.console import Console
 from rich.live import Live
@@ -219,6 +220,7 @@ def run_demo(
         log_level="warning",
     )  # fmt: skip
     log_file = (work / "service.log").open("w", encoding="utf-8")
+    saved_log = structlog.get_config(), logging.getLogger().handlers[:], logging.getLogger().level
     configure_logging("info", stream=log_file)
     # with a fast clock, a coalesced wake-up job often finds one still running
     logging.getLogger("apscheduler").setLevel(logging.ERROR)
@@ -271,6 +273,10 @@ def run_demo(
             c.disconnect()
         service.stop("demo finished")
         broker.stop()
+        # the service's logging went to the demo's file; hand it back before closing it
+        structlog.configure(**saved_log[0])
+        logging.getLogger().handlers = saved_log[1]
+        logging.getLogger().setLevel(saved_log[2])
         log_file.close()
     tally.acks = nurse.sent
     tally.end = clock.now()
