@@ -25,6 +25,7 @@ from ..engine.evaluator import Notice
 from ..engine.outcomes import Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
+from ..journal import is_sqlite
 from ..logfile import BadLine, LogRecord
 from ..replay import ReplayResult, drive
 from ..sources import open_source
@@ -184,12 +185,14 @@ class Recorder:
 
 
 def count_records(path: Path) -> int | None:
-    """Lines in a JSON Lines file, for the progress bar; None for anything else."""
+    """Lines in a JSON Lines file, for the progress bar; None for anything else.
+
+    A journal is never opened as a plain file here: closing such a handle would drop
+    the SQLite locks of a writer in this same process."""
+    if is_sqlite(path):
+        return None
     try:
         with path.open("rb") as fh:
-            if fh.read(16).startswith(b"SQLite format 3"):
-                return None
-            fh.seek(0)
             n = 0
             while chunk := fh.read(1 << 20):
                 n += chunk.count(b"\n")
