@@ -82,6 +82,13 @@ def _ml(x: float) -> str:
     return f"{x:.0f} mL"
 
 
+def _rate(rate: float, threshold: float) -> str:
+    """Two decimals, or three where two would round onto the threshold (0.4985 is
+    below 0.5, and must not read as 0.50)."""
+    text = f"{rate:.2f}"
+    return f"{rate:.3f}" if float(text) == threshold and rate != threshold else text
+
+
 def _end(v: BedView) -> int | None:
     return v.bed.series.latest_minute()
 
@@ -155,8 +162,8 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
             if not w.covered:
                 return f"window only {w.coverage:.0%} measured", ev
             return (
-                f"{rate:.2f} mL/kg/h over {c.window_h} h ({_ml(w.volume_ml)} at {kg:g} kg; "
-                f"alarm below {c.threshold_ml_kg_h:g})",
+                f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over {c.window_h} h "
+                f"({_ml(w.volume_ml)} at {kg:g} kg; alarm below {c.threshold_ml_kg_h:g})",
                 ev,
             )
 
