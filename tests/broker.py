@@ -14,14 +14,12 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import signal
-import subprocess
 import tempfile
 import threading
 import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -30,56 +28,18 @@ import pytest
 # One definition of how a local mosquitto is found, configured and waited for: the
 # demo's and the tests' must not drift apart.
 from daemon.local_broker import (
-    START_TIMEOUT_S,
     STOP_GRACE_S,
-    free_port,
+    Mosquitto,
     mosquitto_binary,
-    mosquitto_config,
     wait_port,
 )
 
 
 @dataclass
-class LocalBroker:
+class LocalBroker(Mosquitto):
     """Debian's mosquitto binary on a free loopback port, in its own session."""
 
-    binary: str
-    data_dir: Path
-    host: str = "127.0.0.1"
-    port: int = field(default_factory=free_port)
-    listener_config: str = ""
-    proc: subprocess.Popen[bytes] | None = None
     kind: str = "local-binary"
-
-    @property
-    def address(self) -> str:
-        return f"{self.host}:{self.port}"
-
-    def start(self) -> None:
-        conf = self.data_dir / "mosquitto.conf"
-        conf.write_text(mosquitto_config(self.port, self.data_dir, self.listener_config))
-        self.proc = subprocess.Popen(
-            [self.binary, "-c", str(conf)],
-            stdout=subprocess.DEVNULL,
-            stderr=subprocess.DEVNULL,
-            start_new_session=True,
-        )
-        try:
-            wait_port(self.host, self.port, START_TIMEOUT_S, self.proc)
-        except RuntimeError:
-            self.stop()
-            raise
-
-    def stop(self) -> None:
-        proc, self.proc = self.proc, None
-        if proc is None or proc.poll() is not None:
-            return
-        proc.send_signal(signal.SIGTERM)  # lets it write its persistence file
-        try:
-            proc.wait(STOP_GRACE_S)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(STOP_GRACE_S)
 
     def restart(self, down_s: float = 0.0) -> None:
         """SIGTERM, optionally stay down a while, start again on the same port."""

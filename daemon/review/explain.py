@@ -22,7 +22,7 @@ from ..engine.effects import Effect
 from ..engine.engine import Engine, ReadingTrace
 from ..engine.escalation import EscalationPolicy
 from ..engine.evaluator import OPEN
-from ..engine.outcomes import Outcome
+from ..engine.outcomes import COUNTED_IN_SERIES, Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
 from ..engine.timefmt import iso
@@ -53,18 +53,7 @@ OUTCOME_WORDS: dict[Outcome, str] = {
     Outcome.OUT_OF_RANGE: "outside the physical range; rejected",
     Outcome.DEVICE_FAULT: "the meter reported a fault; rejected",
 }
-COUNTED = frozenset(
-    {
-        Outcome.ACCEPTED,
-        Outcome.REORDERED,
-        Outcome.STORE_FORWARD,
-        Outcome.CLOCK_SKEW,
-        Outcome.NOISE_FALL,
-        Outcome.BAG_CHANGE,
-        Outcome.BAG_CHANGE_INFERRED,
-        Outcome.SPIKE_CONFIRMED,
-    }
-)
+COUNTED = COUNTED_IN_SERIES
 TEXT_READINGS_MAX = 120  # longer windows list only the readings that were not plain
 
 
