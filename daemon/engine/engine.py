@@ -249,7 +249,11 @@ class Engine:
 
     def _remember(self, dev: _Device, r: Reading) -> None:
         dev.by_time[r.device_time] = r.raw_value
-        bisect.insort(dev.dedup_times, r.device_time)
+        times = dev.dedup_times
+        if not times or r.device_time >= times[-1]:
+            times.append(r.device_time)  # the usual case: in order
+        else:
+            bisect.insort(times, r.device_time)
         if r.seq is not None:
             dev.by_seq[r.seq] = r.device_time
         if len(dev.dedup_times) > 4096:  # prune lazily, by device time
