@@ -7,6 +7,7 @@ its answer could next change, so the engine can declare a wake-up.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -83,10 +84,13 @@ def _ml(x: float) -> str:
 
 
 def _rate(rate: float, threshold: float) -> str:
-    """Two decimals, or three where two would round onto the threshold (0.4985 is
-    below 0.5, and must not read as 0.50)."""
+    """Two decimals; where two would round onto the threshold, three, rounded away
+    from it (0.49997 is below 0.5 and reads 0.499, not 0.50)."""
     text = f"{rate:.2f}"
-    return f"{rate:.3f}" if float(text) == threshold and rate != threshold else text
+    if float(text) != threshold or rate == threshold:
+        return text
+    step = math.floor if rate < threshold else math.ceil
+    return f"{step(rate * 1000) / 1000:.3f}"
 
 
 def _end(v: BedView) -> int | None:

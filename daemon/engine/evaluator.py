@@ -107,10 +107,10 @@ class Evaluator:
                                   f"{rid} and other weight-based rules are not running: "
                                   "no body weight in the bed context"))  # fmt: skip
             if f.condition or rid in opened:
-                summary, evidence = f.explain()
                 out += book.update(
-                    now, bed_id, ward, spec, f.condition, summary, evidence,
+                    now, bed_id, ward, spec, f.condition, "", {},
                     suppressed_by=suppressor if spec.low_output else None, priority=f.priority,
+                    explain=f.explain,
                 )  # fmt: skip
             if f.due is not None and f.due > now and (due is None or f.due < due):
                 due = f.due

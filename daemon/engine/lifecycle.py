@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 from types import MappingProxyType
@@ -239,6 +239,9 @@ class AlarmBook:
         self._slots: dict[tuple[str, str], _Slot] = {}
         self._live: dict[str, _Slot] = {}  # alarm id -> slot, in onset order
         self._by_bed: dict[str, dict[str, _Slot]] = {}  # bed -> its live slots, by alarm id
+        # the latest summary and evidence of a live alarm, built only when needed: an
+        # open alarm is re-evaluated every minute, but its words are read rarely
+        self._explain: dict[str, Callable[[], tuple[str, dict[str, object]]]] = {}
         # next due time per live alarm, and their minimum (recomputed only when one
         # of them changed): next_due is asked after every message
         self._dues: dict[str, float] = {}
@@ -259,10 +262,13 @@ class AlarmBook:
         evidence: dict[str, object],
         suppressed_by: str | None = None,
         priority: Priority | None = None,
+        explain: Callable[[], tuple[str, dict[str, object]]] | None = None,
     ) -> list[AlarmEvent]:
         """The rule `spec` was evaluated for `bed` at `now`. `suppressed_by` names an
         active, unacknowledged technical alarm on the bed; it only affects
-        low-output rules. `priority` overrides the rule's for this evaluation."""
+        low-output rules. `priority` overrides the rule's for this evaluation.
+        `explain`, if given, stands in for `summary` and `evidence` and is called
+        only when they are read (an event, a view, a snapshot)."""
         now = self._clock(now)
         slot = self._slots.get((bed, spec.rule_id))
         if not condition and (slot is None or slot.record is None):
@@ -277,10 +283,16 @@ class AlarmBook:
         rec = slot.record
         if rec is None:
             if condition:
+                if explain is not None:
+                    summary, evidence = explain()
                 self._open(slot, now, ward, spec, prio, summary, evidence, sup, out)
             return out
-        rec.spec, rec.ward, rec.summary = spec, ward, summary
-        rec.evidence = dict(evidence)
+        rec.spec, rec.ward = spec, ward
+        if explain is not None:
+            self._explain[rec.alarm_id] = explain
+        else:
+            self._explain.pop(rec.alarm_id, None)
+            rec.summary, rec.evidence = summary, dict(evidence)
         rec.t_last = max(rec.t_last, now)
         # 1. the condition itself
         if condition and not rec.present:
@@ -357,9 +369,23 @@ class AlarmBook:
     def active(self, bed: str | None = None) -> list[AlarmView]:
         """Current alarms (pending to acknowledged), most urgent first."""
         slots = self._live.values() if bed is None else self._by_bed.get(bed, {}).values()
-        views = [_view(s.record) for s in slots if s.record is not None]
+        views = [_view(self._resolve(s.record)) for s in slots if s.record is not None]
         views.sort(key=lambda v: (-URGENCY[v.priority], v.onset, v.alarm_id))
         return views
+
+    def _resolve(self, rec: _Record) -> _Record:
+        fn = self._explain.pop(rec.alarm_id, None)
+        if fn is not None:
+            rec.summary, evidence = fn()
+            rec.evidence = dict(evidence)
+        return rec
+
+    def __getstate__(self) -> dict[str, object]:
+        """Pickling (snapshot of a whole engine) resolves the pending words first."""
+        for slot in self._live.values():
+            if slot.record is not None:
+                self._resolve(slot.record)
+        return {k: getattr(self, k) for k in self.__dict__}
 
     def open_rules(self, bed: str) -> dict[str, tuple[State, float]]:
         """Rule id -> (state, activation or onset time) of the bed's current alarms:
@@ -391,6 +417,9 @@ class AlarmBook:
     def snapshot(self) -> dict[str, object]:
         # live episodes first, in the order the book holds them (tick order)
         live = list(self._live.values())
+        for slot in live:
+            if slot.record is not None:
+                self._resolve(slot.record)
         rest = [s for _, s in sorted(self._slots.items()) if s.record is None]
         snap = _Snapshot(1, self.ack_validity_s, self._now, live + rest)
         data: dict[str, object] = _SNAPSHOT.dump_python(snap, mode="json")
@@ -546,6 +575,7 @@ class AlarmBook:
     ) -> bool:
         rec = slot.record
         assert rec is not None
+        self._resolve(rec)
         step = TRANSITIONS.get((rec.state, trig))
         if step is None:
             self.refused[(rec.state, trig)] += 1
@@ -610,6 +640,7 @@ class AlarmBook:
             slot.ended_id = rec.alarm_id
             del self._live[rec.alarm_id]
             del self._by_bed[slot.bed][rec.alarm_id]
+            self._explain.pop(rec.alarm_id, None)
             self._set_due(rec.alarm_id, None)
         return True
 
