@@ -35,10 +35,12 @@ def _no_shortcut(engine: Engine) -> Engine:
     return engine
 
 
-@settings(max_examples=12, deadline=None)
+@settings(max_examples=16, deadline=None)
 @given(
     profile=st.sampled_from(["reference-cumulative", "gravimetric-text", "nested-telemetry"]),
-    base=st.floats(5, 90),  # mL/h: around the KDIGO lines for 70 kg (21 and 35 mL/h)
+    # mL/h: around the KDIGO lines for 70 kg (21 and 35 mL/h), or around the
+    # post-obstructive diuresis line (200 mL/h, 3 L/24 h)
+    base=st.one_of(st.floats(5, 90), st.floats(100, 320)),
     swing=st.floats(0, 60),
     stop_at=st.one_of(st.none(), st.integers(60, 600)),  # a blocked catheter (invented)
     seed=st.integers(0, 1000),
@@ -53,7 +55,8 @@ def test_the_quiet_shortcut_changes_no_alarm(
 
     s = simulate(PROFILES[profile], "m-1", START, 14, flow,
                  MeterFaults(noise_sd_ml=1.0, duplicate_p=0.03, reorder_p=0.02,
-                             bag_change_every_s=3 * 3600 + 7 * seed), seed=seed)  # fmt: skip
+                             bag_change_every_s=3 * 3600 + 7 * seed,
+                             spike_times_s=[5 * 3600.0 + seed]), seed=seed)  # fmt: skip
     records = [context_record(START.timestamp() - 60, "bed-1", "ward-q", ["m-1"], 70.0)]
     records += s.records
 

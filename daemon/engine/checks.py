@@ -26,6 +26,9 @@ class DeviceSeen:
     device_id: str
     last_seen: float  # receive time of its last message, or when it was bound
     period_s: int
+    # the most a reading the cleaner accepts as it comes can add per minute: the
+    # family's maximum plausible flow plus its noise allowance on every reading
+    max_ml_per_min: float = 0.0
 
 
 @dataclass(slots=True)
@@ -67,6 +70,20 @@ QUIET_LIMIT_MIN = 60  # re-check at least hourly even when provably quiet
 # corrections of recent minutes (a refit, a reordered reading) may take back a little
 QUIET_MARGIN_ML = 5.0
 QUIET_MARGIN_SHARE = 0.05
+
+
+def _quiet_below(v: BedView, volume_ml: float, threshold_ml: float) -> int | None:
+    """A high-output window gains at most the meters' plausible flow per minute
+    (readings beyond it are held, and a confirmed one makes the engine re-check
+    every rule), so while it stays at or under `threshold_ml` (with a margin)
+    the alarm condition cannot be met."""
+    end = _end(v)
+    per_min = sum(d.max_ml_per_min for d in v.devices)
+    margin = max(QUIET_MARGIN_ML, QUIET_MARGIN_SHARE * threshold_ml)
+    if end is None or per_min <= 0:
+        return None
+    k = math.floor((threshold_ml - margin - volume_ml) / per_min)
+    return end + min(k, QUIET_LIMIT_MIN) if k > 0 else None
 
 
 def _quiet_until(w: Window, series: MinuteSeries, threshold_ml: float) -> int | None:
@@ -115,7 +132,8 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
              "comparator": c.comparator},
         )  # fmt: skip
 
-    return Finding(cond, explain)
+    quiet = None if cond else _quiet_below(v, wins[-1].volume_ml, c.threshold_ml_h)
+    return Finding(cond, explain, quiet_until=quiet)
 
 
 def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
@@ -127,13 +145,15 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     if c.since_start_if_shorter:
         length = min(length, end - first + 1)
     w = measure(v.bed.series, end, length)
+    cond = w.volume_ml > c.threshold_ml
     return Finding(
-        w.volume_ml > c.threshold_ml,
+        cond,
         lambda: (
             f"{_ml(w.volume_ml)} in the last {length / 60:.1f} h "
             f"(alarm above {_ml(c.threshold_ml)})",
             {"window": w.to_json(), "threshold_ml": c.threshold_ml},
         ),
+        quiet_until=None if cond else _quiet_below(v, w.volume_ml, c.threshold_ml),
     )
 
 
@@ -325,6 +345,7 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
             False,
             lambda: (f"{_ml(hour.volume_ml)} in the last hour",
                      {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}),
+            quiet_until=_quiet_below(v, hour.volume_ml, c.hourly_above_ml),
         )  # fmt: skip
     signs: list[str] = []
     ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}

@@ -88,6 +88,11 @@ _CLINICAL: dict[str, type[BaseModel]] = {
 }
 
 
+def _max_ml_per_min(p: DeviceProfile) -> float:
+    """The most one meter's accepted readings can add per minute (see cleaning)."""
+    return p.limits.max_flow_ml_h / 60.0 + p.bag_change.noise_fall_ml * 60.0 / p.timing.period_s
+
+
 def _bedside_only() -> EscalationPolicy:
     """Used when no policy is given (intake-only use): page the bedside nurse once."""
     one = {"tiers": [{"roles": ["bedside-nurse"], "after_s": 0}]}
@@ -114,6 +119,7 @@ class Engine:
         self._bed_topic = self.prefix + "/beds/"
         self._ack_topic = self.prefix + "/ack"
         self._slowest_period = max((p.timing.period_s for p in self.profiles), default=60)
+        self._max_ml_per_min = max((_max_ml_per_min(p) for p in self.profiles), default=0.0)
         self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
         self.devices: dict[str, _Device] = {}
         self.beds: dict[str, BedState] = {}
@@ -197,6 +203,10 @@ class Engine:
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
+        if dev.bed is not None and not _PLAIN.issuperset(outcomes):
+            # volume beyond the plain per-minute bound, or moved between minutes:
+            # no rule may rely on having proved itself quiet
+            self.beds[dev.bed].quiet_until.clear()
         if self.observe is not None:
             self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
                                       result.volume_ml, result.seq, tuple(outcomes)))  # fmt: skip
@@ -389,7 +399,8 @@ class Engine:
                 # is unknown until it speaks, so allow the slowest family's period
                 seen = bed.bound_at
                 period = dev.decoder.profile.timing.period_s if dev else self._slowest_period
-            out.append(DeviceSeen(dev_id, seen, period))
+            rate = _max_ml_per_min(dev.decoder.profile) if dev else self._max_ml_per_min
+            out.append(DeviceSeen(dev_id, seen, period, rate))
         return tuple(out)
 
     def _after_reading(self, bed: BedState, now: float) -> list[Effect]:
@@ -524,6 +535,22 @@ _NOT_IN_SERIES = frozenset(
         Outcome.LATE,
         Outcome.IMPLAUSIBLE_FLOW,
         Outcome.CONFLICTING_DUPLICATE,
+    }
+)
+# Outcomes whose volume keeps within a meter's per-minute bound, in order.
+_PLAIN = frozenset(
+    {
+        Outcome.ACCEPTED,
+        Outcome.NOISE_FALL,
+        Outcome.STORE_FORWARD,
+        Outcome.CLOCK_SKEW,
+        Outcome.DUPLICATE,
+        Outcome.SPIKE_HELD,
+        Outcome.ARTEFACT_DROPPED,
+        Outcome.LATE,
+        Outcome.TOO_OLD,
+        Outcome.CONFLICTING_DUPLICATE,
+        Outcome.IMPLAUSIBLE_FLOW,
     }
 )
 _REFUSED = frozenset(
