@@ -71,21 +71,25 @@ class Evaluator:
         quiet = bed.quiet_until
         end = bed.series.latest_minute()
         stage = -1
+        changed = True  # the book's view of this bed must be (re)read
         opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
         for plan in self.plans:
             rule, spec = plan.rule, plan.spec
             rid = spec.rule_id
-            if plan.stage != stage:  # an earlier stage may have opened or closed alarms
+            if plan.stage != stage:
                 stage = plan.stage
-                opened = book.open_rules(bed_id)  # these must hear every answer
-                suppressor = book.suppressor(bed_id)
+                if changed:  # an earlier stage opened or closed alarms
+                    opened = book.open_rules(bed_id)  # these must hear every answer
+                    suppressor = book.suppressor(bed_id)
+                    changed = False
             if reading and rid not in opened and end is not None and quiet.get(rid, -1) >= end:
                 continue
             if disabled and rid in disabled:
                 if rid in opened:
                     off = "disabled for this bed"
                     out += book.update(now, bed_id, ward, spec, False, off, {})
+                    changed = True
                 continue
             if rule.while_active:
                 gates = {g: opened[g][1] for g in rule.while_active
@@ -94,6 +98,7 @@ class Evaluator:
                     if rid in opened:
                         idle = "no high-output alarm open"
                         out += book.update(now, bed_id, ward, spec, False, idle, {})
+                        changed = True
                     continue
                 view.gates = gates
             f = plan.check(rule.check, view)
@@ -107,11 +112,14 @@ class Evaluator:
                                   f"{rid} and other weight-based rules are not running: "
                                   "no body weight in the bed context"))  # fmt: skip
             if f.condition or rid in opened:
-                out += book.update(
+                events = book.update(
                     now, bed_id, ward, spec, f.condition, "", {},
                     suppressed_by=suppressor if spec.low_output else None, priority=f.priority,
                     explain=f.explain,
                 )  # fmt: skip
+                if events:
+                    out += events
+                    changed = True
             if f.due is not None and f.due > now and (due is None or f.due < due):
                 due = f.due
         return out, due
