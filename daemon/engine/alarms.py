@@ -84,18 +84,24 @@ class AlarmEvent:
     ack_valid_s: int = 3600
 
     def pager(self) -> str:
-        """One plain line for a pager, at most PAGER_MAX characters."""
-        head = f"{self.bed} {_STATE_WORD[self.state]} {self.priority}: {self.title or self.rule}"
+        """One plain line for a pager, at most PAGER_MAX characters: bed, state and
+        priority, what (the title up to its colon), the key numbers, and for an open
+        high-output alarm the suggested replacement. The numbers are shortened
+        first; the bed, what and the suggestion always fit."""
+        what = (self.title or self.rule).split(":")[0]
+        head = f"{self.bed} {_STATE_WORD[self.state]} {self.priority}: {what}"
         tail = ""
         if self.advice and self.state in (State.ACTIVE, State.ESCALATED):
-            tail = f" {self.advice.get('pager', '')}".rstrip()
+            rate = self.advice.get("rate_ml_h")
+            if isinstance(rate, list | tuple) and len(rate) == 2:
+                tail = f" Suggest {rate[0]:.0f}-{rate[1]:.0f} mL/h {self.advice.get('fluid', '')}."
         text = f"{head}. {self.summary}.{tail}"
         if len(text) <= PAGER_MAX:
             return text
         room = PAGER_MAX - len(head) - len(tail) - 3  # '. ' and the ellipsis
-        if room >= 20:
+        if room >= 10:
             return f"{head}. {self.summary[:room].rstrip()}…{tail}"
-        return (f"{head}. {self.summary}")[: PAGER_MAX - 1].rstrip() + "…"
+        return (f"{head}.{tail}")[:PAGER_MAX]
 
     def to_json(self) -> dict[str, object]:
         return {

@@ -124,10 +124,10 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
                for w in wins)  # fmt: skip
 
     def explain() -> tuple[str, dict[str, Any]]:
-        vols = ", ".join(_ml(w.volume_ml) for w in wins)
+        vols = ", ".join(f"{w.volume_ml:.0f}" for w in wins)
         return (
-            f"urine output {vols} in the last {len(wins)} consecutive hours "
-            f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL/h)",
+            f"last {len(wins)} hours {vols} mL "
+            f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL)",
             {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
              "comparator": c.comparator},
         )  # fmt: skip
