@@ -90,7 +90,8 @@ class Tally:
 
 
 class Nurse:
-    """Acknowledges about two thirds of new alarms after 5-25 simulated minutes."""
+    """Acknowledges about two thirds of new (or returning) alarms after 5-25
+    simulated minutes; the rest climb the escalation chain."""
 
     def __init__(self, client: mqtt.Client, clock: DemoClock, seed: int) -> None:
         self.client, self.clock = client, clock
@@ -101,6 +102,8 @@ class Nurse:
 
     def consider(self, event: dict[str, Any]) -> None:
         alarm_id = str(event["alarm_id"])
+        if event.get("reason") == "ack_expired":
+            self.seen.discard(alarm_id)  # back after an hour: she looks again
         if event["state"] not in ("active", "escalated") or alarm_id in self.seen:
             return
         self.seen.add(alarm_id)
