@@ -7,14 +7,12 @@ from collections.abc import Iterator
 from typing import Any
 
 from .engine.engine import Engine
-from .engine.outcomes import Outcome
+from .engine.outcomes import COUNTED_IN_SERIES, Outcome
 from .engine.timefmt import iso
 
 # Columns of the quality table: (heading, outcomes counted in it).
 _QUALITY_COLUMNS: list[tuple[str, tuple[Outcome, ...]]] = [
-    ("accepted", (Outcome.ACCEPTED, Outcome.REORDERED, Outcome.STORE_FORWARD,
-                  Outcome.CLOCK_SKEW, Outcome.NOISE_FALL, Outcome.SPIKE_CONFIRMED,
-                  Outcome.BAG_CHANGE, Outcome.BAG_CHANGE_INFERRED)),
+    ("accepted", tuple(sorted(COUNTED_IN_SERIES))),  # everything that went into the series
     ("dup", (Outcome.DUPLICATE,)),
     ("late", (Outcome.LATE, Outcome.TOO_OLD)),
     ("artefact", (Outcome.ARTEFACT_DROPPED, Outcome.IMPLAUSIBLE_FLOW)),

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from daemon.engine.advice import FLUIDS
+from daemon.engine.advice import FLUIDS, delta_na_from_infusate, delta_na_from_loss
 
 from .scenario import Bed, Blocked, Level, Normal, Oliguria, Pod
 from .wire import Clock, Message, Payload, iso_ms
@@ -276,9 +276,7 @@ def sodium_course(bed: Bed, plan: Plan) -> Floats:
     assert bed.labs is not None
     labs = bed.labs
     tbw = bed.tbw_fraction * bed.weight_kg
-    u = labs.urine_na + labs.urine_k
     fluid = FLUIDS[bed.intake.fluid] if bed.intake is not None else None
-    f = fluid.na_mmol_l + fluid.k_mmol_l if fluid is not None else 0.0
     intake = plan.intake_ml_min if plan.intake_ml_min is not None else np.zeros(1)
     hours = math.ceil(plan.kidney_ml_min.size / 60) + 1
     na = np.empty(hours)
@@ -288,7 +286,11 @@ def sodium_course(bed: Bed, plan: Plan) -> Floats:
         lost_l = max(0.0, float(plan.kidney_ml_min[sl].sum()) - plan.baseline_ml_h) / 1000.0
         given_l = float(intake[sl].sum()) / 1000.0 if intake.size > 1 else 0.0
         prev = na[h - 1]
-        na[h] = prev + lost_l * (prev - u) / (tbw - 1.0) + given_l * (f - prev) / (tbw + 1.0)
+        # the engine's own formulas, so the simulated course and the advice agree
+        change = delta_na_from_loss(prev, tbw, labs.urine_na, labs.urine_k, lost_l)
+        if fluid is not None and given_l > 0:
+            change += delta_na_from_infusate(prev, tbw, fluid, given_l)
+        na[h] = prev + change
     return na
 
 
