@@ -9,6 +9,8 @@ them, so an emptying logged late lands in the hours it was produced.
 Storage is one contiguous buffer per bed with prefix sums refreshed lazily
 from the earliest changed minute, so any window costs O(1) once refreshed:
 rules ask for many windows per minute, while writes touch the last few minutes.
+The buffers are plain lists: the engine reads and writes single minutes, and a
+list item costs a fraction of a numpy scalar; numpy is used for bulk copies.
 """
 
 from __future__ import annotations
@@ -51,8 +53,8 @@ class MinuteSeries:
 
     def __init__(self) -> None:
         self._base: int | None = None  # minute index of buffer slot 0
-        self._vol: npt.NDArray[np.float64] = np.zeros(0)
-        self._state: npt.NDArray[np.uint8] = np.zeros(0, dtype=np.uint8)
+        self._vol: list[float] = []
+        self._state: list[int] = []
         self._n = 0  # slots in use: [0, n)
         # prefix sums as plain lists: rules read single items, and a list item is
         # several times cheaper to read than a numpy scalar
@@ -74,18 +76,16 @@ class MinuteSeries:
             self._base = lo
         if lo < self._base:  # data before the buffer: grow at the front
             extra = self._base - lo + GROW
-            self._vol = np.concatenate([np.zeros(extra), self._vol])
-            self._state = np.concatenate([np.zeros(extra, dtype=np.uint8), self._state])
+            self._vol = [0.0] * extra + self._vol
+            self._state = [UNKNOWN] * extra + self._state
             self._base -= extra
             self._n += extra
             self._reset_sums()
         need = hi - self._base + 1
-        if need > self._vol.size:
-            size = max(need + GROW, 2 * self._vol.size)
-            self._vol = np.concatenate([self._vol, np.zeros(size - self._vol.size)])
-            self._state = np.concatenate(
-                [self._state, np.zeros(size - self._state.size, dtype=np.uint8)]
-            )
+        if need > len(self._vol):
+            size = max(need + GROW, 2 * len(self._vol))
+            self._vol.extend([0.0] * (size - len(self._vol)))
+            self._state.extend([UNKNOWN] * (size - len(self._state)))
             pad = size + 1 - len(self._cum_vol)
             self._cum_vol.extend([0.0] * pad)
             self._cum_meas.extend([0] * pad)
@@ -122,24 +122,27 @@ class MinuteSeries:
         # first and last minutes are partial, the ones between are whole
         vol[i0] += rate * ((m0 + 1) * 60.0 - t0)
         vol[i1] += rate * (t1 - m1 * 60.0)
-        if i1 - i0 > 1:
-            vol[i0 + 1 : i1] += rate * 60.0
-        np.maximum(st[i0 : i1 + 1], state, out=st[i0 : i1 + 1])
+        whole = rate * 60.0
+        for i in range(i0 + 1, i1):
+            vol[i] += whole
+        for i in range(i0, i1 + 1):
+            if st[i] < state:
+                st[i] = state
 
     def forget_before(self, minute: int) -> None:
         """Drop minutes before `minute` (bounded memory in a long-running engine)."""
         if self._base is None or minute <= self._base:
             return
         k = min(minute - self._base, self._n)
-        self._vol = self._vol[k:].copy()
-        self._state = self._state[k:].copy()
+        del self._vol[:k]
+        del self._state[:k]
         self._n -= k
         self._base += k
         self._reset_sums()
         self.first_minute = max(self.first_minute or minute, self._base)
 
     def _reset_sums(self) -> None:
-        size = self._vol.size + 1
+        size = len(self._vol) + 1
         self._cum_vol = [0.0] * size
         self._cum_meas = [0] * size
         self._cum_est = [0] * size
@@ -163,7 +166,7 @@ class MinuteSeries:
             cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
             v, m, e = cv[d], cm[d], ce[d]
             for i, (x, st) in enumerate(
-                zip(self._vol[d:n].tolist(), self._state[d:n].tolist(), strict=True), d + 1
+                zip(self._vol[d:n], self._state[d:n], strict=True), d + 1
             ):
                 v += x
                 m += st == MEASURED
@@ -175,9 +178,10 @@ class MinuteSeries:
         # so a window's sum never depends on how refreshes happened to be chunked.
         vol = np.concatenate(([self._cum_vol[d]], self._vol[d:n]))
         self._cum_vol[d + 1 : n + 1] = np.cumsum(vol)[1:].tolist()
-        st = self._state[d:n]
-        self._cum_meas[d + 1 : n + 1] = (self._cum_meas[d] + np.cumsum(st == MEASURED)).tolist()
-        self._cum_est[d + 1 : n + 1] = (self._cum_est[d] + np.cumsum(st == ESTIMATED)).tolist()
+        states = np.asarray(self._state[d:n], dtype=np.uint8)
+        meas, est = np.cumsum(states == MEASURED), np.cumsum(states == ESTIMATED)
+        self._cum_meas[d + 1 : n + 1] = (self._cum_meas[d] + meas).tolist()
+        self._cum_est[d + 1 : n + 1] = (self._cum_est[d] + est).tolist()
         self._dirty = n
 
     def _clip(self, m: int) -> int:
@@ -244,7 +248,7 @@ class MinuteSeries:
         return vol, st
 
     def total(self) -> float:
-        return float(self._vol[: self._n].sum())
+        return math.fsum(self._vol[: self._n])
 
     def completed_hours(self) -> Iterator[HourTotal]:
         """Clock hours from the first data to the last hour that has fully passed."""
