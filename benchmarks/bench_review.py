@@ -97,8 +97,8 @@ def make_log(path: Path, beds: int, days: int, seed: int = 6) -> tuple[int, int,
         meter_messages += len(meter)
         readings += len({r[2]["seq"] for r in meter if isinstance(r[2], dict)})  # not redeliveries
         recs += meter
-        if b in (3, 11):  # replacement documented each hour of the diuresis day (invented)
-            day = {3: 5, 11: 18}[b]
+        day = {3: 5, 11: 18}.get(b, days)
+        if day < days:  # replacement documented each hour of the diuresis day (invented)
             for h in range(2, 24):
                 t = t0 + day * 86400.0 + h * HOUR_S + 300.0
                 payload = {"time": iso_z(t), "volume_ml": 200, "fluid": "0.45% sodium chloride"}

@@ -1,4 +1,4 @@
-"""Low-output rules that prove themselves quiet are not re-checked on every reading.
+"""Rules that prove themselves quiet are not re-checked at every reading or wake-up.
 That must never change an alarm: the engine with the shortcut and the engine without
 it give identical events on messy simulated streams (invented data)."""
 
@@ -30,8 +30,15 @@ def _events(engine: Engine, records: list[tuple[float, str, Any]]) -> list[dict[
 
 
 def _no_shortcut(engine: Engine) -> Engine:
+    """Every rule re-checked at every reading and wake-up."""
     run = engine.evaluator.run
-    engine.evaluator.run = lambda bed, now, devices, reading=False: run(bed, now, devices)  # type: ignore[method-assign]
+
+    def every_rule(bed: Any, now: float, devices: Any, shortcut: bool = False) -> Any:
+        out = run(bed, now, devices)
+        bed.quiet_floor = -1  # and no reading skipped for the whole bed
+        return out
+
+    engine.evaluator.run = every_rule  # type: ignore[method-assign]
     return engine
 
 

@@ -39,8 +39,14 @@ class BedState:
     last_eval_minute: int | None = None
     notices: set[str] = field(default_factory=set)
     quiet_until: dict[str, int] = field(default_factory=dict)  # rule id -> minute
+    quiet_floor: int = -1  # no rule needs a reading before windows end after this minute
     last_advice: AdviceIssued | None = None
     last_advice_hour: int | None = None  # clock-hour index the advice was computed from
+
+    def forget_quiet(self) -> None:
+        """Readings moved volume in a way no quiet proof allowed for: re-check all."""
+        self.quiet_until.clear()
+        self.quiet_floor = -1
 
     def add_intake(self, t: float, ml: float) -> None:
         i = bisect.bisect_right(self.intake_times, t)

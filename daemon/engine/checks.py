@@ -132,8 +132,30 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
              "comparator": c.comparator},
         )  # fmt: skip
 
-    quiet = None if cond else _quiet_below(v, wins[-1].volume_ml, c.threshold_ml_h)
+    quiet = None
+    if not cond:
+        quiet = _quiet_below(v, wins[-1].volume_ml, c.threshold_ml_h)
+        if len(wins) > 1:  # the older hours slide over minutes already known
+            older = _older_hours_quiet(v.bed.series, end, len(wins), c.threshold_ml_h)
+            quiet = older if quiet is None else max(quiet, older or quiet)
     return Finding(cond, explain, quiet_until=quiet)
+
+
+def _older_hours_quiet(
+    series: MinuteSeries, end: int, hours: int, threshold_ml: float
+) -> int | None:
+    """Every hour must exceed the threshold, and the oldest one, slid k <= 60 minutes
+    on, covers only minutes known now: while it holds at most `threshold_ml` (less a
+    margin for corrections) the condition cannot be met, whatever readings bring."""
+    limit = threshold_ml - max(QUIET_MARGIN_ML, QUIET_MARGIN_SHARE * threshold_ml)
+    first_end = end - 60 * (hours - 1)  # last minute of the oldest hour
+    k = 0
+    while k < QUIET_LIMIT_MIN:
+        lo, hi = window_bounds(first_end + k + 1, 60)
+        if series.sums(lo, hi).volume_ml > limit:
+            break
+        k += 1
+    return end + k if k > 0 else None
 
 
 def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
@@ -165,7 +187,10 @@ def _weight_evidence(v: BedView) -> dict[str, Any]:
     return {"weight_kg": v.bed.context.weight_kg, "weight_basis": v.bed.context.weight_basis}
 
 
-NO_WEIGHT = Finding(False, _say("no body weight in the bed context"), skipped="no_weight")
+# only a context can bring a weight, and a context re-checks every rule
+NO_WEIGHT = Finding(
+    False, _say("no body weight in the bed context"), skipped="no_weight", quiet_until=2**62
+)
 
 
 def rate_below(c: r.RateBelow, v: BedView) -> Finding:
@@ -388,14 +413,21 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     )
 
 
-def _lab_series(v: BedView, analyte: str) -> list[tuple[float, float]]:
-    return [(t, x) for t, x in v.bed.labs.get(analyte, []) if t <= v.now]
+def _lab_series(v: BedView, analyte: str) -> tuple[list[tuple[float, float]], float | None]:
+    """Results timed at or before now, and when the next later-timed one counts."""
+    results = v.bed.labs.get(analyte, [])
+    later = [t for t, _ in results if t > v.now]
+    return [(t, x) for t, x in results if t <= v.now], min(later) if later else None
+
+
+def _sooner(a: float | None, b: float | None) -> float | None:
+    return b if a is None else a if b is None else min(a, b)
 
 
 def lab_above(c: r.LabAbove, v: BedView) -> Finding:
-    series = _lab_series(v, c.analyte)
+    series, later = _lab_series(v, c.analyte)
     if not series:
-        return Finding(False, _say("no result"))
+        return Finding(False, _say("no result"), due=later)
     t, x = series[-1]
     fresh = v.now - t < c.max_age_s
     name = c.analyte.split("_")[1].capitalize()
@@ -405,18 +437,18 @@ def lab_above(c: r.LabAbove, v: BedView) -> Finding:
             f"serum {name} {x:g} mmol/L at {iso(t)} (alarm above {c.threshold:g})",
             {"analyte": c.analyte, "value": x, "time": iso(t), "threshold": c.threshold},
         ),
-        due=t + c.max_age_s if fresh else None,
+        due=_sooner(t + c.max_age_s if fresh else None, later),
     )
 
 
 def lab_rise(c: r.LabRise, v: BedView) -> Finding:
-    series = _lab_series(v, c.analyte)
+    series, later = _lab_series(v, c.analyte)
     if len(series) < 2:
-        return Finding(False, _say("fewer than two results"))
+        return Finding(False, _say("fewer than two results"), due=later)
     t, x = series[-1]
     prior = [(tt, xx) for tt, xx in series[:-1] if tt >= t - c.window_h * 3600]
     if not prior:
-        return Finding(False, _say("no earlier result in the window"))
+        return Finding(False, _say("no earlier result in the window"), due=later)
     t0, x0 = min(prior, key=lambda p: p[1])
     rise = x - x0
     return Finding(
@@ -426,6 +458,7 @@ def lab_rise(c: r.LabRise, v: BedView) -> Finding:
             f"(alarm above {c.rise_above:g} per {c.window_h} h)",
             {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "rise": rise},
         ),
+        due=later,
     )
 
 
@@ -458,6 +491,13 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
     r.LabRise: lab_rise,
     r.Reminder: reminder,
 }
+
+
+# Checks that read no urine output: a meter reading can only end their condition
+# (it breaks a silence), and each declares when time alone may change its answer.
+OUTPUT_BLIND: frozenset[type] = frozenset(
+    {r.MeterSilent, r.NoUsableData, r.LabAbove, r.LabRise, r.Reminder}
+)
 
 
 def evaluate(rule: r.RuleDef, view: BedView) -> Finding:

@@ -206,7 +206,7 @@ class Engine:
         if dev.bed is not None and not _PLAIN.issuperset(outcomes):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
-            self.beds[dev.bed].quiet_until.clear()
+            self.beds[dev.bed].forget_quiet()
         if self.observe is not None:
             self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
                                       result.volume_ml, result.seq, tuple(outcomes)))  # fmt: skip
@@ -409,7 +409,10 @@ class Engine:
         prev = bed.last_eval_minute
         if latest is None or latest == prev:
             return []
-        effects = self._evaluate(bed, now, reading=True)
+        if latest <= bed.quiet_floor:  # no alarm open and every rule proved quiet
+            bed.last_eval_minute = latest
+            return []
+        effects = self._evaluate(bed, now, shortcut=True)
         hour_done = prev is not None and (latest + 1) // 60 != (prev + 1) // 60
         opened = any(
             isinstance(e, AlarmEvent) and e.rule in self._high_output and e.state is State.ACTIVE
@@ -419,11 +422,11 @@ class Engine:
             effects = self._advice(bed, latest, now) + effects
         return effects
 
-    def _evaluate(self, bed: BedState, now: float, reading: bool = False) -> list[Effect]:
+    def _evaluate(self, bed: BedState, now: float, shortcut: bool = False) -> list[Effect]:
         if not self.rules:
             return []
         bed.last_eval_minute = bed.series.latest_minute()
-        events, due = self.evaluator.run(bed, now, self._devices_of(bed), reading)
+        events, due = self.evaluator.run(bed, now, self._devices_of(bed), shortcut)
         if due is None:
             self._due.pop(bed.bed_id, None)
         elif self._due.get(bed.bed_id) != due:
@@ -514,7 +517,7 @@ class Engine:
                 del self._due[bed_id]
                 due_beds.add(bed_id)
         for bed_id in sorted(due_beds | {e.bed for e in effects if isinstance(e, AlarmEvent)}):
-            effects += self._evaluate(self.beds[bed_id], t)
+            effects += self._evaluate(self.beds[bed_id], t, shortcut=True)
         return effects
 
     # --- queries -------------------------------------------------------------

@@ -13,7 +13,7 @@ from typing import Any
 
 from .alarms import AlarmEvent, Kind, RuleSpec, State
 from .bedstate import BedState
-from .checks import CHECKS, BedView, DeviceSeen, Finding
+from .checks import CHECKS, OUTPUT_BLIND, BedView, DeviceSeen, Finding
 from .lifecycle import AlarmBook
 from .rules import RuleDef
 
@@ -46,22 +46,29 @@ class _Plan:
     spec: RuleSpec
     stage: int
     check: Callable[[Any, BedView], Finding]
+    blind: bool  # reads no urine output: a reading can only end its condition
 
 
 class Evaluator:
     def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
-        self.plans = [_Plan(r, r.spec(), _order(r)[0], CHECKS[type(r.check)]) for r in self.rules]
+        self.plans = [
+            _Plan(r, r.spec(), _order(r)[0], CHECKS[type(r.check)], type(r.check) in OUTPUT_BLIND)
+            for r in self.rules
+        ]
         self.book = book
 
     def run(
-        self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...], reading: bool = False
+        self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...], shortcut: bool = False
     ) -> tuple[list[AlarmEvent | Notice], float | None]:
         """Evaluate every rule on the bed; return events and the next due time.
 
-        After a reading, a low-output rule that proved itself quiet until a later
-        minute is not re-checked before then (nothing a reading adds can meet it);
-        any other cause (an input, a context, a wake-up) re-checks every rule."""
+        With `shortcut` (after a reading, at a wake-up), a rule on the output that
+        proved itself quiet until a later minute is not re-checked before then:
+        nothing a reading adds can meet it, and time alone does not move its
+        windows. Any other cause (an input, a context, an acknowledgement)
+        re-checks every rule. Afterwards the bed's quiet floor says up to which
+        minute no rule on it needs a reading at all."""
         out: list[AlarmEvent | Notice] = []
         due: float | None = None
         bed_id, ward = bed.bed_id, bed.context.ward
@@ -83,7 +90,7 @@ class Evaluator:
                     opened = book.open_rules(bed_id)  # these must hear every answer
                     suppressor = book.suppressor(bed_id)
                     changed = False
-            if reading and rid not in opened and end is not None and quiet.get(rid, -1) >= end:
+            if shortcut and rid not in opened and end is not None and quiet.get(rid, -1) >= end:
                 continue
             if disabled and rid in disabled:
                 if rid in opened:
@@ -122,4 +129,23 @@ class Evaluator:
                     changed = True
             if f.due is not None and f.due > now and (due is None or f.due < due):
                 due = f.due
+        bed.quiet_floor = self._floor(bed, changed or bool(opened))
         return out, due
+
+    def _floor(self, bed: BedState, open_or_changed: bool) -> int:
+        """The last minute up to which a reading cannot change any rule on the bed:
+        no alarm open, every rule on the output quiet, and the others (silence,
+        labs, reminders) only ever made false by a reading, their wake-ups kept."""
+        if open_or_changed:
+            return -1
+        quiet, disabled = bed.quiet_until, bed.context.disabled_rules
+        floor: int | None = None
+        for plan in self.plans:
+            rid = plan.spec.rule_id
+            if plan.blind or plan.rule.while_active or (disabled and rid in disabled):
+                continue
+            q = quiet.get(rid)
+            if q is None:
+                return -1
+            floor = q if floor is None else min(floor, q)
+        return -1 if floor is None else floor
