@@ -20,6 +20,7 @@ import pytest
 
 from daemon.engine.advice import CAUTION
 from daemon.engine.alarms import Priority, State
+from daemon.engine.timefmt import iso
 from simulator.encode import encode
 from tests.ruletools import (
     HOUR,
@@ -499,6 +500,18 @@ def test_sodium_high(na: float, fires: bool) -> None:
     assert (ev is not None) is fires
     if ev is not None:
         assert ev.time == at(0, 10) and ev.priority is Priority.MEDIUM
+
+
+def test_a_lab_timed_ahead_counts_from_its_own_time() -> None:
+    """A result that arrives before its stated time counts when that time comes, by
+    the rule's own wake-up: readings alone do not re-check rules on labs."""
+    # source: hypernatraemia = serum Na > 145 mmol/L (Adrogué & Madias, NEJM 2000)
+    bed = started(70.0)
+    bed.send("labs", {"time": iso(at(0, 52, 30)), "serum_na_mmol_l": 151.0}, at(0, 20))
+    assert bed.ward.first("sodium-high") is None
+    bed.hours([60.0])  # steady readings through the hour (invented)
+    ev = bed.ward.first("sodium-high")
+    assert ev is not None and ev.time == at(0, 52, 30)  # not at a reading
 
 
 @pytest.mark.parametrize(
