@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 from . import rules as r
 from .alarms import Priority
@@ -21,8 +21,7 @@ from .timefmt import iso
 from .windows import Window, hours_ending, measure, window_bounds
 
 
-@dataclass(frozen=True, slots=True)
-class DeviceSeen:
+class DeviceSeen(NamedTuple):  # a tuple: one is made per meter at every evaluation
     device_id: str
     last_seen: float  # receive time of its last message, or when it was bound
     period_s: int
@@ -67,6 +66,7 @@ def _say(summary: str, evidence: dict[str, Any] | None = None) -> Explain:
 NOT_YET = Finding(False, _say("no data yet"))
 
 QUIET_LIMIT_MIN = 60  # re-check at least hourly even when provably quiet
+FOREVER = 2**62  # quiet until an input (not a reading) re-checks every rule
 # corrections of recent minutes (a refit, a reordered reading) may take back a little
 QUIET_MARGIN_ML = 5.0
 QUIET_MARGIN_SHARE = 0.05
@@ -148,13 +148,8 @@ def _older_hours_quiet(
     on, covers only minutes known now: while it holds at most `threshold_ml` (less a
     margin for corrections) the condition cannot be met, whatever readings bring."""
     limit = threshold_ml - max(QUIET_MARGIN_ML, QUIET_MARGIN_SHARE * threshold_ml)
-    first_end = end - 60 * (hours - 1)  # last minute of the oldest hour
-    k = 0
-    while k < QUIET_LIMIT_MIN:
-        lo, hi = window_bounds(first_end + k + 1, 60)
-        if series.sums(lo, hi).volume_ml > limit:
-            break
-        k += 1
+    lo, hi = window_bounds(end - 60 * (hours - 1), 60)  # the oldest hour now
+    k = series.stays_at_most(lo + 1, hi + 1, limit, QUIET_LIMIT_MIN)
     return end + k if k > 0 else None
 
 
@@ -189,7 +184,7 @@ def _weight_evidence(v: BedView) -> dict[str, Any]:
 
 # only a context can bring a weight, and a context re-checks every rule
 NO_WEIGHT = Finding(
-    False, _say("no body weight in the bed context"), skipped="no_weight", quiet_until=2**62
+    False, _say("no body weight in the bed context"), skipped="no_weight", quiet_until=FOREVER
 )
 
 
@@ -366,11 +361,15 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
         return NOT_YET
     hour = measure(v.bed.series, end, 60)
     if hour.volume_ml <= c.hourly_above_ml:  # the common case: nothing else to look at
+        # without vitals or documented intake no sign can be found, whatever the
+        # output; either arrives as an input, which re-checks every rule
+        signless = not v.bed.vitals and not (v.bed.intake_times and _weight(v) is not None)
         return Finding(
             False,
             lambda: (f"{_ml(hour.volume_ml)} in the last hour",
                      {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}),
-            quiet_until=_quiet_below(v, hour.volume_ml, c.hourly_above_ml),
+            quiet_until=FOREVER if signless
+            else _quiet_below(v, hour.volume_ml, c.hourly_above_ml),
         )  # fmt: skip
     signs: list[str] = []
     ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}

@@ -13,7 +13,7 @@ from collections import Counter
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
 from datetime import datetime
-from typing import Any
+from typing import Any, NamedTuple
 
 from pydantic import BaseModel, ValidationError
 
@@ -39,9 +39,9 @@ DEDUP_HORIZON_S = 86400.0
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
 
 
-@dataclass(frozen=True, slots=True)
-class ReadingTrace:
-    """What happened to one meter message, for an optional observer (review tools).
+class ReadingTrace(NamedTuple):
+    """What happened to one meter message, for an optional observer (review tools);
+    a tuple, since one is made per message.
 
     `outcomes` has two items when the message also settled a reading held before
     it (the first is that earlier reading's final outcome).
@@ -482,11 +482,14 @@ class Engine:
 
     def next_wakeup(self) -> float | None:
         """Epoch seconds of the next time-driven change, or None."""
-        heap = self._heap
-        while heap and self._due.get(heap[0][1]) != heap[0][0]:
+        heap, dues = self._heap, self._due
+        while heap and dues.get(heap[0][1]) != heap[0][0]:
             heapq.heappop(heap)  # stale
-        candidates = [t for t in (heap[0][0] if heap else None, self.book.next_due()) if t]
-        return min(candidates) if candidates else None
+        book = self.book.next_due()
+        if not heap:
+            return book
+        bed = heap[0][0]
+        return bed if book is None or bed < book else book
 
     def advance(self, to: datetime | float) -> list[Effect]:
         """Fire every wake-up due at or before `to`, each at its own due time.

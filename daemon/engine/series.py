@@ -217,6 +217,21 @@ class MinuteSeries:
         k = bisect.bisect_right(cv, cv[a] + budget_ml, a, b + 1) - 1
         return max(0, min(k - a + max(0, a - (lo - self._base)), limit))
 
+    def stays_at_most(self, lo: int, hi: int, limit_ml: float, count: int) -> int:
+        """How many of the windows [lo + j, hi + j), j = 0, 1, ..., count - 1, in a
+        row from the first, hold at most `limit_ml`."""
+        if self._base is None:
+            return count
+        if self._dirty < self._n:
+            self._refresh()
+        cv, n, base = self._cum_vol, self._n, self._base
+        for j in range(count):
+            a = min(max(lo + j - base, 0), n)
+            b = min(max(hi + j - base, 0), n)
+            if cv[b] - cv[a] > limit_ml:
+                return j
+        return count
+
     def trailing_quiet(self, end: int, max_ml: float, limit: int) -> int:
         """Length of the run of measured minutes ending at `end` (inclusive) whose
         total volume is at most `max_ml`, capped at `limit` minutes."""
