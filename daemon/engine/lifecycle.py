@@ -273,9 +273,22 @@ class AlarmBook:
         slot = self._slots.get((bed, spec.rule_id))
         if not condition and (slot is None or slot.record is None):
             return []
-        out: list[AlarmEvent] = []
         prio = priority if priority is not None else spec.priority
         sup = suppressed_by if spec.low_output else None
+        rec = slot.record if slot is not None else None
+        if (
+            rec is not None
+            and condition == rec.present
+            and sup == rec.suppressed_by
+            and prio is rec.priority
+            and (due := self._dues.get(rec.alarm_id)) is not None
+            and due > now
+        ):  # the usual minute of an open alarm: same answer, nothing due, no event
+            rec.spec, rec.ward = spec, ward
+            self._keep_evidence(rec, summary, evidence, explain)
+            rec.t_last = max(rec.t_last, now)  # moves no due: every one is after now
+            return []
+        out: list[AlarmEvent] = []
         if slot is not None and slot.record is not None:
             self._advance(slot, now, out)
         if slot is None:
@@ -288,11 +301,7 @@ class AlarmBook:
                 self._open(slot, now, ward, spec, prio, summary, evidence, sup, out)
             return out
         rec.spec, rec.ward = spec, ward
-        if explain is not None:
-            self._explain[rec.alarm_id] = explain
-        else:
-            self._explain.pop(rec.alarm_id, None)
-            rec.summary, rec.evidence = summary, dict(evidence)
+        self._keep_evidence(rec, summary, evidence, explain)
         rec.t_last = max(rec.t_last, now)
         # 1. the condition itself
         if condition and not rec.present:
@@ -325,6 +334,19 @@ class AlarmBook:
         if slot.record is rec:
             self._advance(slot, now, out)
         return out
+
+    def _keep_evidence(
+        self,
+        rec: _Record,
+        summary: str,
+        evidence: dict[str, object],
+        explain: Callable[[], tuple[str, dict[str, object]]] | None,
+    ) -> None:
+        if explain is not None:
+            self._explain[rec.alarm_id] = explain
+        else:
+            self._explain.pop(rec.alarm_id, None)
+            rec.summary, rec.evidence = summary, dict(evidence)
 
     def acknowledge(self, now: float, alarm_id: str, by: str, role: str) -> list[AlarmEvent] | str:
         """An authored acknowledgement of one alarm; a str is the rejection reason."""
