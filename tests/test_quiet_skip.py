@@ -12,6 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from daemon.engine.engine import Engine
+from daemon.engine.timefmt import iso
 from daemon.profile_files import load_profiles
 from daemon.rule_files import load_policy, load_rules
 from simulator.meterlog import MeterFaults, context_record, simulate
@@ -51,9 +52,20 @@ def _no_shortcut(engine: Engine) -> Engine:
     swing=st.floats(0, 60),
     stop_at=st.one_of(st.none(), st.integers(60, 600)),  # a blocked catheter (invented)
     seed=st.integers(0, 1000),
+    # bed inputs at minutes of the run (invented values): vitals with a raised shock
+    # index, documented intake, a serum sodium result
+    inputs=st.lists(
+        st.tuples(st.integers(1, 839), st.sampled_from(["vitals", "intake", "labs"])),
+        max_size=4,
+    ),
 )
 def test_the_quiet_shortcut_changes_no_alarm(
-    profile: str, base: float, swing: float, stop_at: int | None, seed: int
+    profile: str,
+    base: float,
+    swing: float,
+    stop_at: int | None,
+    seed: int,
+    inputs: list[tuple[int, str]],
 ) -> None:
     def flow(m: float) -> float:
         if stop_at is not None and stop_at <= m < stop_at + 120:
@@ -66,6 +78,16 @@ def test_the_quiet_shortcut_changes_no_alarm(
                              spike_times_s=[5 * 3600.0 + seed]), seed=seed)  # fmt: skip
     records = [context_record(START.timestamp() - 60, "bed-1", "ward-q", ["m-1"], 70.0)]
     records += s.records
+    t0 = START.timestamp()
+    for minute, what in inputs:
+        t = t0 + minute * 60.0 + 17.0
+        payload: dict[str, Any] = {
+            "vitals": {"heart_rate_bpm": 118, "systolic_mmhg": 88, "diastolic_mmhg": 50},
+            "intake": {"volume_ml": 150, "fluid": "0.45% sodium chloride"},
+            "labs": {"serum_na_mmol_l": 147},
+        }[what] | {"time": iso(t)}
+        records.append((t, f"hourwatch/beds/bed-1/{what}", payload))
+    records.sort(key=lambda r: r[0])  # stable: meter messages keep their order
 
     def make() -> Engine:
         return Engine(list(PROFILES.values()), load_rules(), load_policy())
