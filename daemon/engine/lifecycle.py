@@ -374,6 +374,9 @@ class AlarmBook:
         """Everything time-driven up to `now`, stamped with the time it fell due
         (so live and replay agree however late a timer fires)."""
         now = self._clock(now)
+        first = self.next_due()
+        if first is None or first > now:  # most wake-ups are a bed's rules, not the book's
+            return []
         out: list[AlarmEvent] = []
         dues = self._dues
         # only alarms with something due (their due times are kept current), in the
