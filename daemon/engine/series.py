@@ -165,9 +165,7 @@ class MinuteSeries:
         if n - d <= 16:  # the usual case, a few recent minutes: plain Python is cheaper
             cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
             v, m, e = cv[d], cm[d], ce[d]
-            for i, (x, st) in enumerate(
-                zip(self._vol[d:n], self._state[d:n], strict=True), d + 1
-            ):
+            for i, (x, st) in enumerate(zip(self._vol[d:n], self._state[d:n], strict=True), d + 1):
                 v += x
                 m += st == MEASURED
                 e += st == ESTIMATED
