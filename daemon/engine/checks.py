@@ -38,6 +38,9 @@ class BedView:
     now: float
     devices: tuple[DeviceSeen, ...]
     gates: dict[str, float]  # rule id -> activation time of its open alarm on this bed
+    # False while the rule's own alarm is open: it is re-checked every minute then,
+    # so a costly proof of quietness would be thrown away
+    quiet_wanted: bool = True
 
 
 Explain = Callable[[], tuple[str, dict[str, Any]]]
@@ -135,7 +138,7 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
     quiet = None
     if not cond:
         quiet = _quiet_below(v, wins[-1].volume_ml, c.threshold_ml_h)
-        if len(wins) > 1:  # the older hours slide over minutes already known
+        if len(wins) > 1 and v.quiet_wanted:  # the older hours slide over known minutes
             older = _older_hours_quiet(v.bed.series, end, len(wins), c.threshold_ml_h)
             quiet = older if quiet is None else max(quiet, older or quiet)
     return Finding(cond, explain, quiet_until=quiet)

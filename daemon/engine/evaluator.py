@@ -108,6 +108,7 @@ class Evaluator:
                         changed = True
                     continue
                 view.gates = gates
+            view.quiet_wanted = rid not in opened
             f = plan.check(rule.check, view)
             if f.quiet_until is not None:
                 quiet[rid] = f.quiet_until

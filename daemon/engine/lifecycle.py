@@ -180,6 +180,7 @@ class _Record:
     ack_by: str | None = None
     ack_role: str | None = None
     ack_until: float | None = None
+    revision: int = 0  # counts evaluations: the evidence may differ after each
 
 
 @dataclass(slots=True)
@@ -342,6 +343,7 @@ class AlarmBook:
         evidence: dict[str, object],
         explain: Callable[[], tuple[str, dict[str, object]]] | None,
     ) -> None:
+        rec.revision += 1
         if explain is not None:
             self._explain[rec.alarm_id] = explain
         else:
@@ -394,6 +396,12 @@ class AlarmBook:
             self._min_due = min(self._dues.values(), default=None)
             self._min_stale = False
         return self._min_due
+
+    def revision(self, alarm_id: str) -> int | None:
+        """Changes whenever the alarm is evaluated again (its evidence may have moved);
+        None once it has ended. Cheap: nothing is formatted."""
+        slot = self._live.get(alarm_id)
+        return None if slot is None or slot.record is None else slot.record.revision
 
     def active(self, bed: str | None = None) -> list[AlarmView]:
         """Current alarms (pending to acknowledged), most urgent first."""

@@ -102,6 +102,7 @@ class Follower:
         self._pending: dict[str, tuple[str, str]] = {}  # alarm id -> (bed, rule)
         self._candidate: dict[str, Moment] = {}
         self._last_evidence: dict[str, dict[str, object]] = {}
+        self._revision: dict[str, int] = {}  # alarm id -> book revision last looked at
 
     def attach(self, engine: Engine) -> Engine:
         self.engine = engine
@@ -190,8 +191,13 @@ class Follower:
         if not self._pending or self.engine is None:
             return
         now = self.recorder.last_time or 0.0
+        book = self.engine.book
         for aid, (bed, rule) in list(self._pending.items()):
-            view = next((v for v in self.engine.book.active(bed) if v.alarm_id == aid), None)
+            rev = book.revision(aid)
+            if rev is None or self._revision.get(aid) == rev:
+                continue  # not evaluated since the last look: its evidence is the same
+            self._revision[aid] = rev
+            view = next((v for v in book.active(bed) if v.alarm_id == aid), None)
             if view is None:
                 continue
             if self._last_evidence.get(aid) != view.evidence:
