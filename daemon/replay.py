@@ -44,6 +44,7 @@ def drive(
             if on_effects:
                 on_effects(effects)
 
+    next_wakeup, advance, step = engine.next_wakeup, engine.advance, engine.step
     for item in records:
         if isinstance(item, BadLine):
             result.bad_lines.append(item)
@@ -53,9 +54,13 @@ def drive(
         if t < now:  # receive times must not go backwards; keep the clock monotone
             result.clock_went_back += 1
             t = now
-        emit(engine.advance(t))
+        wake = next_wakeup()
+        if wake is not None and wake <= t:  # most messages come before any wake-up
+            emit(advance(t))
         now = t
-        emit(engine.step(rec.topic, rec.payload, t))
+        effects = step(rec.topic, rec.payload, t)
+        if effects:
+            emit(effects)
         result.messages += 1
     if until is not None:
         emit(engine.advance(until))

@@ -88,6 +88,11 @@ _CLINICAL: dict[str, type[BaseModel]] = {
 }
 
 
+# A skipped reading leaves the bed's wake-up where the last evaluation put it; one
+# this close ahead is re-declared by evaluating now rather than by a wake-up later.
+REFRESH_AHEAD_S = 90.0
+
+
 def _max_ml_per_min(p: DeviceProfile) -> float:
     """The most one meter's accepted readings can add per minute (see cleaning)."""
     return p.limits.max_flow_ml_h / 60.0 + p.bag_change.noise_fall_ml * 60.0 / p.timing.period_s
@@ -409,7 +414,10 @@ class Engine:
         prev = bed.last_eval_minute
         if latest is None or latest == prev:
             return []
-        if latest <= bed.quiet_floor:  # no alarm open and every rule proved quiet
+        due = self._due.get(bed.bed_id)
+        if latest <= bed.quiet_floor and (due is None or due > now + REFRESH_AHEAD_S):
+            # no alarm open and every rule proved quiet; a wake-up close ahead is
+            # most likely a silence this very reading ended, so then evaluate instead
             bed.last_eval_minute = latest
             return []
         effects = self._evaluate(bed, now, shortcut=True)
