@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 from .alarms import AlarmEvent, Kind, RuleSpec, State
 from .bedstate import BedState
@@ -38,25 +38,28 @@ def _order(rule: RuleDef) -> tuple[int, str]:
     return (2 if rule.while_active else 1), rule.id
 
 
-@dataclass(frozen=True, slots=True)
-class _Plan:
-    """A rule prepared once: what run() needs without looking it up every minute."""
+class _Plan(NamedTuple):
+    """A rule prepared once: what run() needs without looking it up every minute
+    (a tuple, unpacked in one step in run's loop)."""
 
     rule: RuleDef
     spec: RuleSpec
     stage: int
     check: Callable[[Any, BedView], Finding]
     blind: bool  # reads no urine output: a reading can only end its condition
+    rule_id: str
 
 
 class Evaluator:
     def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
-        self.plans = [
-            _Plan(r, r.spec(), _order(r)[0], CHECKS[type(r.check)], type(r.check) in OUTPUT_BLIND)
-            for r in self.rules
-        ]
+        self.plans = [self._plan(r) for r in self.rules]
         self.book = book
+
+    @staticmethod
+    def _plan(r: RuleDef) -> _Plan:
+        check = type(r.check)
+        return _Plan(r, r.spec(), _order(r)[0], CHECKS[check], check in OUTPUT_BLIND, r.id)
 
     def run(
         self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...], shortcut: bool = False
@@ -81,11 +84,9 @@ class Evaluator:
         changed = True  # the book's view of this bed must be (re)read
         opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
-        for plan in self.plans:
-            rule, spec = plan.rule, plan.spec
-            rid = spec.rule_id
-            if plan.stage != stage:
-                stage = plan.stage
+        for rule, spec, plan_stage, check, _, rid in self.plans:
+            if plan_stage != stage:
+                stage = plan_stage
                 if changed:  # an earlier stage opened or closed alarms
                     opened = book.open_rules(bed_id)  # these must hear every answer
                     suppressor = book.suppressor(bed_id)
@@ -109,7 +110,7 @@ class Evaluator:
                     continue
                 view.gates = gates
             view.quiet_wanted = rid not in opened
-            f = plan.check(rule.check, view)
+            f = check(rule.check, view)
             if f.quiet_until is not None:
                 quiet[rid] = f.quiet_until
             else:
@@ -142,7 +143,7 @@ class Evaluator:
         quiet, disabled = bed.quiet_until, bed.context.disabled_rules
         floor: int | None = None
         for plan in self.plans:
-            rid = plan.spec.rule_id
+            rid = plan.rule_id
             if plan.blind or plan.rule.while_active or (disabled and rid in disabled):
                 continue
             q = quiet.get(rid)
