@@ -190,7 +190,9 @@ class Engine:
     def _meter_message(
         self, topic: str, device_id: str, decoder: Decoder, payload: Payload, now: float
     ) -> list[Effect]:
-        dev = self._device(device_id, decoder)
+        dev = self.devices.get(device_id)
+        if dev is None or dev.decoder is not decoder:
+            dev = self._device(device_id, decoder)
         dev.quality.received += 1
         dev.last_seen = now
         result = decoder.decode(device_id, payload)
@@ -218,10 +220,11 @@ class Engine:
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
+        counts = dev.quality.counts
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
-            dev.quality.add(o)
+            counts[o] += 1
             if o not in _SILENT:
                 effects.append(RejectedInput(now, topic, device_id, o, _DETAIL.get(o, str(o))))
         return effects
