@@ -209,9 +209,12 @@ class Follower:
 
 def _counts(times: Any, codes: Any, t0: float, t1: float) -> dict[str, int]:
     """Readings with an effective time in (t0, t1], by outcome."""
-    t = np.frombuffer(times, dtype=np.float64).copy()
-    c = np.frombuffer(codes, dtype=np.uint8).copy()
+    # views, not copies (a month of a bed is ~43,000 readings); they are gone before
+    # the recorder appends again, so its arrays stay free to grow
+    t = np.frombuffer(times, dtype=np.float64)
+    c = np.frombuffer(codes, dtype=np.uint8)
     sel = c[(t > t0) & (t <= t1)]
+    del t, c
     n = np.bincount(sel, minlength=len(OUTCOMES))
     return {str(OUTCOMES[i]): int(k) for i, k in enumerate(n.tolist()) if k}
 
