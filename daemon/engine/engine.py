@@ -220,11 +220,10 @@ class Engine:
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
-        counts = dev.quality.counts
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
-            counts[o] += 1
+            dev.quality.add(o)
             if o not in _SILENT:
                 effects.append(RejectedInput(now, topic, device_id, o, _DETAIL.get(o, str(o))))
         return effects
