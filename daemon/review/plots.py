@@ -270,33 +270,29 @@ def draw(pic: BedPicture, dpi: int = 96) -> Figure:
 
 
 def _lanes(ax: Axes, pic: BedPicture, lanes: list[str]) -> None:
+    """One row per rule, a bar per alarm episode: one collection per row and
+    priority, and one marker series for all acknowledgements (a month of a bed
+    has hundreds of episodes, and an artist each is slow to draw)."""
     row = {rule: i for i, rule in enumerate(lanes)}
-    acked = False
+    bars: dict[tuple[int, Priority], list[tuple[float, float]]] = {}
+    ack_t: list[float] = []
+    ack_y: list[int] = []
     for ep in pic.episodes:
         if not ep.raised:
             continue
         a, b = ep.span(pic.end)
         y = row[ep.rule]
-        ax.barh(
-            y,
-            (max(b, a + 60.0) - a) / 86400.0,
-            left=_dt([a])[0],
-            height=0.6,
-            color=PRIORITY_COLOUR[ep.priority],
-            edgecolor="#555555",
-            lw=0.4,
-        )
-        if ep.acks:
-            ax.plot(
-                _dt([k.time for k in ep.acks]),
-                [y] * len(ep.acks),
-                ls="none",
-                marker="v",
-                ms=5,
-                color="#111111",
-                label=None if acked else "acknowledged",
-            )
-            acked = True
+        left = float(_dt([a])[0])
+        bars.setdefault((y, ep.priority), []).append((left, (max(b, a + 60.0) - a) / 86400.0))
+        ack_t += [k.time for k in ep.acks]
+        ack_y += [y] * len(ep.acks)
+    for (y, prio), spans in bars.items():
+        ax.broken_barh(spans, (y - 0.3, 0.6), facecolors=PRIORITY_COLOUR[prio],
+                       edgecolors="#555555", linewidths=0.4)  # fmt: skip
+    acked = bool(ack_t)
+    if acked:
+        ax.plot(_dt(ack_t), ack_y, ls="none", marker="v", ms=5, color="#111111",
+                label="acknowledged")  # fmt: skip
     ax.set_yticks(range(len(lanes)), lanes, fontsize=7)
     ax.set_ylim(-0.6, len(lanes) - 0.4)
     ax.invert_yaxis()
