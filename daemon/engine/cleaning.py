@@ -131,7 +131,7 @@ class CumulativeCleaner:
         if self._implausible(last_t, level, t, v):
             self.held = (t, r, "spike")
             return Outcome.SPIKE_HELD
-        return self._append(t, v)
+        return self._append(t, v, last_t, level)
 
     def _implausible(self, t0: float, v0: float, t1: float, v1: float) -> bool:
         dt = max(t1 - t0, self._min_dt)
@@ -157,24 +157,23 @@ class CumulativeCleaner:
                 return Outcome.BAG_CHANGE_INFERRED
             return Outcome.ARTEFACT_DROPPED
         if confirms:
-            self._append(th, h.volume_ml)
+            self._append(th, h.volume_ml, *self._level())
             return Outcome.SPIKE_CONFIRMED
         return Outcome.ARTEFACT_DROPPED
 
-    def _append(self, t: float, v: float) -> Outcome:
-        prev_t, level = self._level()
-        p = _Point(t, v)
-        self.tail.append(p)
+    def _append(self, t: float, v: float, prev_t: float, level: float) -> Outcome:
+        """A reading after the newest, at or above it less the noise allowance;
+        (prev_t, level) is the newest point, as `_level()` gives it."""
         if v >= level:  # common case: nothing earlier changes
-            p.fit = v
-            p.applied = v - level
-            p.marked = True
-            self._spread(prev_t, t, p.applied)
+            self.tail.append(_Point(t, v, v, v - level, True))
+            self._spread(prev_t, t, v - level)
             outcome = Outcome.ACCEPTED
         else:
+            self.tail.append(_Point(t, v))
             self._refit()
             outcome = Outcome.NOISE_FALL
-        self._freeze()
+        if len(self.tail) > self._tail_len:
+            self._freeze()
         return outcome
 
     # --- tail maintenance ------------------------------------------------------

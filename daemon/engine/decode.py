@@ -62,6 +62,13 @@ def _column_getter(ref: str | int) -> Callable[[Any], Any]:
 
 
 def _number(value: Any) -> float | None:
+    kind = type(value)
+    if kind is float or kind is int:  # the usual case (bool is a subclass, not int itself)
+        try:
+            f = float(value)
+        except OverflowError:  # a JSON integer too large for a float
+            return None
+        return f if math.isfinite(f) else None
     if isinstance(value, bool):
         return None
     if isinstance(value, str) and "_" in value:
