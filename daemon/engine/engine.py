@@ -69,6 +69,12 @@ class _Device:
     by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
     by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
     dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
+    period_s: int = 0  # of its family, kept here: evaluations ask every minute
+    max_ml_per_min: float = 0.0
+
+    def __post_init__(self) -> None:
+        self.period_s = self.decoder.profile.timing.period_s
+        self.max_ml_per_min = _max_ml_per_min(self.decoder.profile)
 
 
 def _json_obj(payload: Payload) -> Any:
@@ -401,12 +407,12 @@ class Engine:
         for dev_id in bed.context.device_ids:
             dev = self.devices.get(dev_id)
             if dev is not None and dev.bed == bed.bed_id and dev.last_seen is not None:
-                seen, period = dev.last_seen, dev.decoder.profile.timing.period_s
+                seen, period = dev.last_seen, dev.period_s
             else:  # bound but never heard from: silent since the binding; its family
                 # is unknown until it speaks, so allow the slowest family's period
                 seen = bed.bound_at
-                period = dev.decoder.profile.timing.period_s if dev else self._slowest_period
-            rate = _max_ml_per_min(dev.decoder.profile) if dev else self._max_ml_per_min
+                period = dev.period_s if dev else self._slowest_period
+            rate = dev.max_ml_per_min if dev else self._max_ml_per_min
             out.append(DeviceSeen(dev_id, seen, period, rate))
         return tuple(out)
 
