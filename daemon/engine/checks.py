@@ -140,7 +140,8 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
         quiet = _quiet_below(v, wins[-1].volume_ml, c.threshold_ml_h)
         if len(wins) > 1 and v.quiet_wanted:  # the older hours slide over known minutes
             older = _older_hours_quiet(v.bed.series, end, len(wins), c.threshold_ml_h)
-            quiet = older if quiet is None else max(quiet, older or quiet)
+            if older is not None and (quiet is None or older > quiet):
+                quiet = older  # quiet while either proof holds: the longer one
     return Finding(cond, explain, quiet_until=quiet)
 
 
