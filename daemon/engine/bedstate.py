@@ -40,12 +40,17 @@ class BedState:
     notices: set[str] = field(default_factory=set)
     quiet_until: dict[str, int] = field(default_factory=dict)  # rule id -> minute
     quiet_floor: int = -1  # no rule needs a reading before windows end after this minute
+    # rule id -> when a rule on inputs alone, last found false, may next change
+    # without an input (see Evaluator.run)
+    input_due: dict[str, float] = field(default_factory=dict)
     last_advice: AdviceIssued | None = None
     last_advice_hour: int | None = None  # clock-hour index the advice was computed from
 
     def forget_quiet(self) -> None:
-        """Readings moved volume in a way no quiet proof allowed for: re-check all."""
+        """Readings moved volume in a way no quiet proof allowed for, or a meter spoke
+        for the first time on the bed: re-check all."""
         self.quiet_until.clear()
+        self.input_due.clear()
         self.quiet_floor = -1
 
     def add_intake(self, t: float, ml: float) -> None:

@@ -94,6 +94,8 @@ _CLINICAL: dict[str, type[BaseModel]] = {
 }
 
 
+
+
 # A skipped reading leaves the bed's wake-up where the last evaluation put it; one
 # this close ahead is re-declared by evaluating now rather than by a wake-up later.
 REFRESH_AHEAD_S = 90.0
@@ -200,6 +202,10 @@ class Engine:
         if dev is None or dev.decoder is not decoder:
             dev = self._device(device_id, decoder)
         dev.quality.received += 1
+        if dev.last_seen is None and dev.bed is not None:
+            # its first word on the bed: its own period replaces the slowest family's
+            # in the silence limit, which may bring the bed's wake-up forward
+            self.beds[dev.bed].forget_quiet()
         dev.last_seen = now
         result = decoder.decode(device_id, payload)
         if isinstance(result, Rejected):

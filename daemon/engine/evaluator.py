@@ -13,12 +13,13 @@ from typing import Any, NamedTuple
 
 from .alarms import AlarmEvent, Kind, RuleSpec, State
 from .bedstate import BedState
-from .checks import CHECKS, OUTPUT_BLIND, BedView, DeviceSeen, Finding
+from .checks import CHECKS, FOREVER, INPUT_ONLY, OUTPUT_BLIND, BedView, DeviceSeen, Finding
 from .lifecycle import AlarmBook
 from .rules import RuleDef
 
 # Alarm states that open a gate for dependent rules (replacement, reminders).
 OPEN = frozenset({State.ACTIVE, State.ESCALATED, State.ACKNOWLEDGED})
+
 
 
 @dataclass(frozen=True, slots=True)
@@ -48,6 +49,7 @@ class _Plan(NamedTuple):
     check: Callable[[Any, BedView], Finding]
     blind: bool  # reads no urine output: a reading can only end its condition
     rule_id: str
+    waits: bool  # reads only inputs and time, ungated: waits for its wake-up (see run)
 
 
 class Evaluator:
@@ -59,7 +61,8 @@ class Evaluator:
     @staticmethod
     def _plan(r: RuleDef) -> _Plan:
         check = type(r.check)
-        return _Plan(r, r.spec(), _order(r)[0], CHECKS[check], check in OUTPUT_BLIND, r.id)
+        waits = check in INPUT_ONLY and not r.while_active  # a gate opens without a wake-up
+        return _Plan(r, r.spec(), _order(r)[0], CHECKS[check], check in OUTPUT_BLIND, r.id, waits)
 
     def run(
         self, bed: BedState, now: float, devices: tuple[DeviceSeen, ...], shortcut: bool = False
@@ -70,29 +73,37 @@ class Evaluator:
         proved itself quiet until a later minute is not re-checked before then:
         nothing a reading adds can meet it, and time alone does not move its
         windows. Any other cause (an input, a context, an acknowledgement)
-        re-checks every rule. Afterwards the bed's quiet floor says up to which
-        minute no rule on it needs a reading at all."""
+        re-checks every rule. Likewise a rule on inputs alone (labs), last found
+        false, waits for its own wake-up. Afterwards the bed's quiet floor says up to
+        which minute no rule on it needs a reading at all."""
         out: list[AlarmEvent | Notice] = []
         due: float | None = None
         bed_id, ward = bed.bed_id, bed.context.ward
         disabled = bed.context.disabled_rules
         book = self.book
         view = BedView(bed, now, devices, {})
-        quiet = bed.quiet_until
+        quiet, input_due = bed.quiet_until, bed.input_due
         end = bed.series.latest_minute()
         stage = -1
         changed = True  # the book's view of this bed must be (re)read
         opened: dict[str, tuple[State, float]] = {}
         suppressor: str | None = None
-        for rule, spec, plan_stage, check, _, rid in self.plans:
+        for rule, spec, plan_stage, check, _, rid, waits in self.plans:
             if plan_stage != stage:
                 stage = plan_stage
                 if changed:  # an earlier stage opened or closed alarms
                     opened = book.open_rules(bed_id)  # these must hear every answer
                     suppressor = book.suppressor(bed_id)
                     changed = False
-            if shortcut and rid not in opened and end is not None and quiet.get(rid, -1) >= end:
-                continue
+            if shortcut and rid not in opened:
+                if waits:
+                    wake = input_due.get(rid)
+                    if wake is not None and wake > now:  # the same answer and wake-up
+                        if wake < FOREVER and (due is None or wake < due):
+                            due = wake
+                        continue
+                elif end is not None and quiet.get(rid, -1) >= end:
+                    continue
             if disabled and rid in disabled:
                 if rid in opened:
                     off = "disabled for this bed"
@@ -131,6 +142,11 @@ class Evaluator:
                     changed = True
             if f.due is not None and f.due > now and (due is None or f.due < due):
                 due = f.due
+            if waits:
+                if f.condition:
+                    input_due.pop(rid, None)
+                else:  # no wake-up: only an input can change the answer
+                    input_due[rid] = f.due if f.due is not None else FOREVER
         bed.quiet_floor = self._floor(bed, changed or bool(opened))
         return out, due
 
