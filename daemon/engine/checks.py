@@ -505,7 +505,8 @@ OUTPUT_BLIND: frozenset[type] = frozenset(
 
 # Checks that read neither the output nor the meters: only an input (which re-checks
 # every rule) or time, at the wake-up each declares, can change their answer.
-INPUT_ONLY: frozenset[type] = frozenset({r.LabAbove, r.LabRise})
+_LABS: tuple[type, ...] = (r.LabAbove, r.LabRise)
+INPUT_ONLY: frozenset[type] = frozenset(_LABS)
 
 
 def evaluate(rule: r.RuleDef, view: BedView) -> Finding:

@@ -94,8 +94,6 @@ _CLINICAL: dict[str, type[BaseModel]] = {
 }
 
 
-
-
 # A skipped reading leaves the bed's wake-up where the last evaluation put it; one
 # this close ahead is re-declared by evaluating now rather than by a wake-up later.
 REFRESH_AHEAD_S = 90.0

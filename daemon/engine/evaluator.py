@@ -21,7 +21,6 @@ from .rules import RuleDef
 OPEN = frozenset({State.ACTIVE, State.ESCALATED, State.ACKNOWLEDGED})
 
 
-
 @dataclass(frozen=True, slots=True)
 class Notice:
     """A technical notice on a bed that is not an alarm (nobody is paged)."""
@@ -56,6 +55,8 @@ class Evaluator:
     def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
         self.plans = [self._plan(r) for r in self.rules]
+        # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
+        self._on_output = [p.rule_id for p in self.plans if not p.blind and not p.rule.while_active]
         self.book = book
 
     @staticmethod
@@ -112,7 +113,7 @@ class Evaluator:
                 continue
             if rule.while_active:
                 gates = {g: opened[g][1] for g in rule.while_active
-                         if g in opened and opened[g][0] in OPEN}  # fmt: skip
+                         if g in opened and opened[g][0] in OPEN} if opened else None  # fmt: skip
                 if not gates:
                     if rid in opened:
                         idle = "no high-output alarm open"
@@ -157,13 +158,8 @@ class Evaluator:
         if open_or_changed:
             return -1
         quiet, disabled = bed.quiet_until, bed.context.disabled_rules
-        floor: int | None = None
-        for plan in self.plans:
-            rid = plan.rule_id
-            if plan.blind or plan.rule.while_active or (disabled and rid in disabled):
-                continue
-            q = quiet.get(rid)
-            if q is None:
-                return -1
-            floor = q if floor is None else min(floor, q)
-        return -1 if floor is None else floor
+        ids = [r for r in self._on_output if r not in disabled] if disabled else self._on_output
+        try:
+            return min([quiet[rid] for rid in ids]) if ids else -1
+        except KeyError:  # a rule with no proof
+            return -1
