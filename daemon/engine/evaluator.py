@@ -57,6 +57,7 @@ class Evaluator:
         self.plans = [self._plan(r) for r in self.rules]
         # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
         self._on_output = [p.rule_id for p in self.plans if not p.blind and not p.rule.while_active]
+        self._waiting = [p.rule_id for p in self.plans if p.waits]
         self.book = book
 
     @staticmethod
@@ -86,25 +87,32 @@ class Evaluator:
         quiet, input_due = bed.quiet_until, bed.input_due
         end = bed.series.latest_minute()
         stage = -1
-        changed = True  # the book's view of this bed must be (re)read
-        opened: dict[str, tuple[State, float]] = {}
-        suppressor: str | None = None
-        for rule, spec, plan_stage, check, _, rid, waits in self.plans:
+        changed = False  # an evaluation opened or closed alarms: re-read the book's view
+        opened = book.open_rules(bed_id)  # these must hear every answer
+        suppressor = book.suppressor(bed_id)
+        plans = self.plans
+        if shortcut:  # one pass that drops the rules allowed to wait (see above)
+            last = end if end is not None else FOREVER
+            plans = [
+                p for p in plans
+                if p.rule_id in opened or not (
+                    input_due.get(p.rule_id, now) > now if p.waits
+                    else quiet.get(p.rule_id, -1) >= last
+                )
+            ]  # fmt: skip
+            for rid in self._waiting:  # a waiting rule keeps its wake-up
+                wake = input_due.get(rid)
+                if rid in opened or wake is None:
+                    continue
+                if now < wake < FOREVER and (due is None or wake < due):
+                    due = wake
+        for rule, spec, plan_stage, check, _, rid, waits in plans:
             if plan_stage != stage:
                 stage = plan_stage
                 if changed:  # an earlier stage opened or closed alarms
-                    opened = book.open_rules(bed_id)  # these must hear every answer
+                    opened = book.open_rules(bed_id)
                     suppressor = book.suppressor(bed_id)
                     changed = False
-            if shortcut and rid not in opened:
-                if waits:
-                    wake = input_due.get(rid)
-                    if wake is not None and wake > now:  # the same answer and wake-up
-                        if wake < FOREVER and (due is None or wake < due):
-                            due = wake
-                        continue
-                elif end is not None and quiet.get(rid, -1) >= end:
-                    continue
             if disabled and rid in disabled:
                 if rid in opened:
                     off = "disabled for this bed"
