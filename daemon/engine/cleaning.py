@@ -164,9 +164,10 @@ class CumulativeCleaner:
     def _append(self, t: float, v: float, prev_t: float, level: float) -> Outcome:
         """A reading after the newest, at or above it less the noise allowance;
         (prev_t, level) is the newest point, as `_level()` gives it."""
-        if v >= level:  # common case: nothing earlier changes
+        if v >= level:  # common case: nothing earlier changes (_spread, inlined)
             self.tail.append(_Point(t, v, v, v - level, True))
-            self._spread(prev_t, t, v - level)
+            state = MEASURED if t - prev_t <= self._max_gap else ESTIMATED
+            self.series.spread(prev_t, t, v - level, state)
             outcome = Outcome.ACCEPTED
         else:
             self.tail.append(_Point(t, v))

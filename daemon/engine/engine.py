@@ -69,12 +69,22 @@ class _Device:
     by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
     by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
     dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
-    period_s: int = 0  # of its family, kept here: evaluations ask every minute
+    # of its family, kept here: every message or evaluation reads them
+    period_s: int = 0
     max_ml_per_min: float = 0.0
+    clock_tolerance_s: float = 0.0
+    store_forward_max_s: float = 0.0
+    stored_after_s: float = 0.0  # older than this on arrival: sent from the meter's store
+    reorder_tolerance_s: float = 0.0
 
     def __post_init__(self) -> None:
-        self.period_s = self.decoder.profile.timing.period_s
+        p = self.decoder.profile.timing
+        self.period_s = p.period_s
         self.max_ml_per_min = _max_ml_per_min(self.decoder.profile)
+        self.clock_tolerance_s = p.clock_tolerance_s
+        self.store_forward_max_s = p.store_forward_max_s
+        self.stored_after_s = max(p.clock_tolerance_s, 2 * p.period_s)
+        self.reorder_tolerance_s = p.reorder_tolerance_s
 
 
 def _json_obj(payload: Payload) -> Any:
@@ -230,36 +240,36 @@ class Engine:
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
+        counts = dev.quality.counts
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
-            dev.quality.add(o)
+            counts[o] += 1
             if o not in _SILENT:
                 effects.append(RejectedInput(now, topic, device_id, o, _DETAIL.get(o, str(o))))
         return effects
 
     def _clean(self, dev: _Device, r: Reading, now: float) -> list[Outcome]:
-        p = dev.decoder.profile.timing
+        t = r.device_time
         # duplicates first, so a redelivery days later still counts as a duplicate
-        seen_value = dev.by_time.get(r.device_time)
+        seen_value = dev.by_time.get(t)
         if seen_value is not None:
             return [
                 Outcome.DUPLICATE if seen_value == r.raw_value else Outcome.CONFLICTING_DUPLICATE
             ]
         if r.seq is not None:
             seen_t = dev.by_seq.get(r.seq)
-            if seen_t is not None and abs(seen_t - r.device_time) <= p.clock_tolerance_s:
+            if seen_t is not None and abs(seen_t - t) <= dev.clock_tolerance_s:
                 return [Outcome.DUPLICATE]
         # which clock to believe
-        t = r.device_time
         adjusted: Outcome | None = None
-        if t > now + p.clock_tolerance_s:
+        if t > now + dev.clock_tolerance_s:
             t, adjusted = now, Outcome.CLOCK_SKEW
-        elif t < now - p.store_forward_max_s:
+        elif t < now - dev.store_forward_max_s:
             return [Outcome.TOO_OLD]
-        elif t < now - max(p.clock_tolerance_s, 2 * p.period_s):
+        elif t < now - dev.stored_after_s:
             adjusted = Outcome.STORE_FORWARD
-        if dev.latest_t is not None and t < dev.latest_t - p.reorder_tolerance_s:
+        if dev.latest_t is not None and t < dev.latest_t - dev.reorder_tolerance_s:
             return [Outcome.LATE]
         self._remember(dev, r)
         assert dev.cleaner is not None
