@@ -38,6 +38,7 @@ class BedView:
     now: float
     devices: tuple[DeviceSeen, ...]
     gates: dict[str, float]  # rule id -> activation time of its open alarm on this bed
+    end: int | None  # the bed's latest whole minute: every window ends here (or no data)
     # False while the rule's own alarm is open: it is re-checked every minute then,
     # so a costly proof of quietness would be thrown away
     quiet_wanted: bool = True
@@ -114,7 +115,7 @@ def _rate(rate: float, threshold: float) -> str:
 
 
 def _end(v: BedView) -> int | None:
-    return v.bed.series.latest_minute()
+    return v.end
 
 
 def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:

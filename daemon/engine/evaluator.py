@@ -83,9 +83,9 @@ class Evaluator:
         bed_id, ward = bed.bed_id, bed.context.ward
         disabled = bed.context.disabled_rules
         book = self.book
-        view = BedView(bed, now, devices, {})
-        quiet, input_due = bed.quiet_until, bed.input_due
         end = bed.series.latest_minute()
+        view = BedView(bed, now, devices, {}, end)
+        quiet, input_due = bed.quiet_until, bed.input_due
         stage = -1
         changed = False  # an evaluation opened or closed alarms: re-read the book's view
         opened = book.open_rules(bed_id)  # these must hear every answer
