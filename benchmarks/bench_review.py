@@ -41,6 +41,7 @@ from daemon.rule_files import load_policy, load_rules
 from simulator.meterlog import MeterFaults, context_record, iso_z, simulate, write_log
 
 GOAL_S = 60.0  # "well under a minute on one core" (issue 6)
+WELL_UNDER_S = 45.0  # what we take "well under" to mean: at most three quarters of it
 START = datetime(2026, 2, 1, tzinfo=UTC)  # invented
 PROFILE = "reference-cumulative"
 WARD = "bench-unit"  # invented
@@ -247,9 +248,9 @@ def _report(
 
     total = tm.total
     verdict = (
-        f"met ({total.cpu:.0f} CPU s)"
-        if total.cpu < GOAL_S
-        else f"NOT met ({total.cpu:.0f} CPU s, {total.cpu / GOAL_S:.1f}x the minute)"
+        f"met ({total.cpu:.0f} CPU s, at most {WELL_UNDER_S:.0f} s counts as well under)"
+        if total.cpu <= WELL_UNDER_S
+        else f"NOT met ({total.cpu:.0f} CPU s; well under means at most {WELL_UNDER_S:.0f} s)"
     )
     np_cpu, parse_cpu = laps["numpy"].cpu, laps["parse"].cpu
     return "\n".join([
