@@ -514,6 +514,22 @@ def test_a_lab_timed_ahead_counts_from_its_own_time() -> None:
     assert ev is not None and ev.time == at(0, 52, 30)  # not at a reading
 
 
+def test_a_high_sodium_ends_when_its_result_ages_out() -> None:
+    """The result counts for the rule's 24 h: then the alarm ends by the rule's own
+    wake-up, between readings, and the rule waits quietly after it."""
+    # source: hypernatraemia = serum Na > 145 mmol/L (Adrogué & Madias, NEJM 2000)
+    bed = started(70.0)
+    bed.hours([60.0])  # steady readings (invented)
+    taken = at(1)
+    bed.labs(taken, serum_na_mmol_l=151.0)
+    assert bed.ward.first("sodium-high") is not None
+    bed.hours([60.0] * 26)
+    ended = bed.ward.first("sodium-high", State.RESOLVED)
+    max_age_s = 86400  # the rule file's max_age_s: Hourwatch's own choice, no single source
+    assert ended is not None and ended.time == taken + max_age_s
+    assert bed.ward.alarms("sodium-high")[-1] == ended  # nothing after it
+
+
 @pytest.mark.parametrize(
     ("later", "after_h", "fires"),
     [(149.0, 20.0, True), (148.0, 20.0, False), (149.0, 25.0, False)],
