@@ -81,7 +81,7 @@ def _quiet_below(v: BedView, volume_ml: float, threshold_ml: float) -> int | Non
     (readings beyond it are held, and a confirmed one makes the engine re-check
     every rule), so while it stays at or under `threshold_ml` (with a margin)
     the alarm condition cannot be met."""
-    end = _end(v)
+    end = v.end
     per_min = sum(d.max_ml_per_min for d in v.devices)
     margin = max(QUIET_MARGIN_ML, QUIET_MARGIN_SHARE * threshold_ml)
     if end is None or per_min <= 0:
@@ -114,12 +114,8 @@ def _rate(rate: float, threshold: float) -> str:
     return f"{step(rate * 1000) / 1000:.3f}"
 
 
-def _end(v: BedView) -> int | None:
-    return v.end
-
-
 def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
-    end = _end(v)
+    end = v.end
     if end is None:
         return NOT_YET
     wins = hours_ending(v.bed.series, end, c.consecutive_hours)
@@ -159,7 +155,7 @@ def _older_hours_quiet(
 
 
 def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
-    end = _end(v)
+    end = v.end
     first = v.bed.series.first_minute
     if end is None or first is None:
         return NOT_YET
@@ -194,7 +190,7 @@ NO_WEIGHT = Finding(
 
 
 def rate_below(c: r.RateBelow, v: BedView) -> Finding:
-    end, kg = _end(v), _weight(v)
+    end, kg = v.end, _weight(v)
     if kg is None:
         return NO_WEIGHT
     if end is None:
@@ -242,7 +238,7 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
 
 
 def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
-    end = _end(v)
+    end = v.end
     if end is None:
         return NOT_YET
     w = measure(v.bed.series, end, c.window_h * 60)
@@ -264,7 +260,7 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
 
 
 def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
-    end, kg = _end(v), _weight(v)
+    end, kg = v.end, _weight(v)
     if kg is None:
         return NO_WEIGHT
     if end is None:
@@ -336,7 +332,7 @@ def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
 
 
 def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
-    end = _end(v)
+    end = v.end
     if end is None:
         return NOT_YET
     w = measure(v.bed.series, end, c.window_h * 60)
@@ -361,7 +357,7 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
 
 
 def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
-    end = _end(v)
+    end = v.end
     if end is None:
         return NOT_YET
     hour = measure(v.bed.series, end, 60)
@@ -506,8 +502,7 @@ OUTPUT_BLIND: frozenset[type] = frozenset(
 
 # Checks that read neither the output nor the meters: only an input (which re-checks
 # every rule) or time, at the wake-up each declares, can change their answer.
-_LABS: tuple[type, ...] = (r.LabAbove, r.LabRise)
-INPUT_ONLY: frozenset[type] = frozenset(_LABS)
+INPUT_ONLY: frozenset[type] = frozenset((r.LabAbove, r.LabRise))
 
 
 def evaluate(rule: r.RuleDef, view: BedView) -> Finding:
