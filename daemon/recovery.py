@@ -39,6 +39,8 @@ from .engine.rules import (
     HourlyAbove,
     Hypovolemia,
     LabAbove,
+    LabBelow,
+    LabFall,
     LabRise,
     MeterSilent,
     NoUsableData,
@@ -60,7 +62,7 @@ def rule_window_s(rule: RuleDef) -> float:
     c = rule.check
     if isinstance(c, HourlyAbove):
         return c.consecutive_hours * HOUR
-    if isinstance(c, VolumeAbove | RateBelow | VolumeBelow | ReplacementRatio | LabRise):
+    if isinstance(c, VolumeAbove | RateBelow | VolumeBelow | ReplacementRatio | LabRise | LabFall):
         return c.window_h * HOUR
     if isinstance(c, FlowStopped):
         return (c.stopped_min + c.before_min) * 60.0
@@ -70,7 +72,7 @@ def rule_window_s(rule: RuleDef) -> float:
         return float(c.max_gap_s)
     if isinstance(c, Hypovolemia):
         return max(c.balance_window_h * HOUR, float(c.vitals_max_age_s))
-    if isinstance(c, LabAbove):
+    if isinstance(c, LabAbove | LabBelow):
         return float(c.max_age_s)
     if isinstance(c, Reminder):
         return float(c.every_s)
@@ -122,7 +124,7 @@ def _key(e: AlarmEvent) -> tuple[str, str, str, float]:
 
 def _other_key(e: Effect) -> tuple[object, ...] | None:
     if isinstance(e, AdviceIssued):
-        return ("advice", e.bed, e.time, iso(e.advice.hour_start))
+        return ("advice", e.bed, e.time, iso(e.advice.hour_start), str(e.advice.kind))
     if isinstance(e, Notice):
         return ("notice", e.bed, e.time, e.code)
     return None
@@ -130,7 +132,7 @@ def _other_key(e: Effect) -> tuple[object, ...] | None:
 
 def _journaled_key(ev: StoredEvent) -> tuple[object, ...] | None:
     if ev.kind == "advice":
-        return ("advice", ev.bed, ev.time, ev.body.get("hour_start"))
+        return ("advice", ev.bed, ev.time, ev.body.get("hour_start"), ev.body.get("kind"))
     if ev.kind == "notice":
         return ("notice", ev.bed, ev.time, ev.body.get("code"))
     return None

@@ -60,7 +60,7 @@ from .mqtt_ingest import Connection, Inbound, MqttLink, Published
 from .profile_files import load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover
-from .rule_files import load_policy, load_rules
+from .rule_files import load_advice, load_policy, load_rules
 
 OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
 # Received messages journaled per fsync. The broker stops sending once this many are
@@ -207,7 +207,13 @@ class Service:
             f"{self.prefix}/beds/+/+",
             f"{self.prefix}/ack",
         ]
-        self.engine = Engine(profiles, self.rules, self.policy, topic_prefix=self.prefix)
+        self.engine = Engine(
+            profiles,
+            self.rules,
+            self.policy,
+            topic_prefix=self.prefix,
+            advice_policy=load_advice(cfg.rules),
+        )
         self.guard_s = longest_window_s(self.rules)
         self.window_s = self.guard_s + cfg.recovery.margin_s
         self.batch_max = (

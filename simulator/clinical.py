@@ -103,6 +103,12 @@ def plan_output(bed: Bed, start: float, minutes: int, rng: np.random.Generator) 
                 episodes.append((start + ev.at_h * HOUR_S, "obstruction_relieved"))
     kidney = np.clip(kidney, 0.0, MAX_ML_H) / 60.0  # mL/h -> mL per minute
     to_bag = kidney.copy()
+    for ev in bed.timeline:  # the retained content drains first: in the bag, not the kidneys'
+        if isinstance(ev, Pod) and ev.residual_ml > 0:
+            i0 = min(round(ev.at_h * 60), minutes)
+            n = max(1, round(ev.residual_min))
+            if i0 < minutes:
+                to_bag[i0 : i0 + n] += ev.residual_ml / min(n, minutes - i0)
     for ev in bed.timeline:
         if isinstance(ev, Blocked):
             i0 = min(round(ev.at_h * 60), minutes)
@@ -132,6 +138,9 @@ def context_messages(
     t0, end = plan.start, plan.start + hours * HOUR_S
     changes = {t0 - 60.0 + order_s}
     changes |= {t for t, _ in plan.episodes if t0 < t < end}
+    order = bed.context.order
+    if order is not None and 0 < order.at_h < hours:
+        changes.add(t0 + order.at_h * HOUR_S)
     for m in bed.meters:
         for h in (m.from_h, m.until_h):
             if h is not None and 0 < h < hours:
@@ -145,20 +154,26 @@ def context_messages(
             if m.from_h <= max(h, 0.0) and (m.until_h is None or max(h, 0.0) < m.until_h)
         ]
         episodes = [(at, kind) for at, kind in plan.episodes if at <= t]
-        out.append(Message(t, topic, _context_render(bed, ward, devices, episodes), retain=True))
+        ordered = order is not None and t0 + order.at_h * HOUR_S <= t
+        order_t = t0 + order.at_h * HOUR_S if order is not None and ordered else None
+        out.append(Message(t, topic, _context_render(bed, ward, devices, episodes, order_t),
+                           retain=True))  # fmt: skip
     return out
 
 
 def _context_render(
-    bed: Bed, ward: str, devices: list[str], episodes: list[tuple[float, str]]
-) -> Any:
+    bed: Bed, ward: str, devices: list[str], episodes: list[tuple[float, str]],
+    order_t: float | None,
+) -> Any:  # fmt: skip
     def render(clock: Clock) -> Payload:
         body: dict[str, Any] = {"schema": 1, "ward": ward, "device_ids": devices}
         if bed.context.weight:
             body |= {"weight_kg": bed.weight_kg, "weight_basis": bed.weight_basis}
         if bed.context.disabled_rules:
             body["disabled_rules"] = list(bed.context.disabled_rules)
-        body["replacement"] = bed.context.replacement.model_dump()
+        order = bed.context.order
+        if order is not None and order_t is not None:
+            body["replacement"] = order.as_order(clock(order_t)).model_dump(mode="json")
         body["tbw_fraction"] = bed.tbw_fraction
         if episodes:
             body["episodes"] = [{"kind": k, "at": iso_ms(clock(at))} for at, k in episodes]
@@ -309,6 +324,14 @@ def labs_messages(
         values: dict[str, Any] = {"serum_na_mmol_l": round(float(np.clip(na, 100, 200)))}
         if spec.serum_k is not None:
             values["serum_k_mmol_l"] = round(spec.serum_k + rng.normal(0.0, 0.1), 1)
+        if spec.serum_mg is not None:
+            values["serum_mg_mmol_l"] = round(spec.serum_mg + rng.normal(0.0, 0.03), 2)
+        if spec.serum_phosphate is not None:
+            values["serum_phosphate_mmol_l"] = round(spec.serum_phosphate
+                                                     + rng.normal(0.0, 0.04), 2)  # fmt: skip
+        if spec.serum_creatinine is not None:
+            values["serum_creatinine_umol_l"] = round(spec.serum_creatinine
+                                                      + rng.normal(0.0, 3.0))  # fmt: skip
         if spec.report_urine:
             values["urine_na_mmol_l"] = spec.urine_na
             values["urine_k_mmol_l"] = spec.urine_k

@@ -130,10 +130,15 @@ def context_record(
     devices: Iterable[str],
     weight_kg: float | None = 80.0,
     prefix: str = "hourwatch",
+    relieved_at: float | None = None,
 ) -> tuple[float, str, dict[str, Any]]:
+    """A bed context; `relieved_at` adds an obstruction-relieved marker (which arms the
+    post-obstructive rules)."""
     payload: dict[str, Any] = {"ward": ward, "device_ids": list(devices)}
     if weight_kg is not None:
         payload |= {"weight_kg": weight_kg, "weight_basis": "actual"}
+    if relieved_at is not None:
+        payload["episodes"] = [{"kind": "obstruction_relieved", "at": iso_z(relieved_at)}]
     return (t, f"{prefix}/beds/{bed}/context", payload)
 
 

@@ -13,7 +13,7 @@ file is one `UserError` line naming the file and the key.
 from __future__ import annotations
 
 import tomllib
-from datetime import datetime
+from datetime import UTC, datetime
 from itertools import pairwise
 from pathlib import Path
 from typing import Annotated, Literal
@@ -89,6 +89,10 @@ class Pod(_Strict):
     half_life_h: Annotated[float, Field(gt=0, le=72)] = 4.0
     plateau_ml_h: Annotated[float, Field(gt=0, le=2400)] | None = None
     episode: bool = True  # publish an "obstruction_relieved" marker in the bed context
+    # the retained bladder content, drained into the bag over `residual_min` at `at_h`
+    # (it is not diuresis: the engine leaves it out of the criteria)
+    residual_ml: Annotated[float, Field(ge=0, le=3000)] = 0.0
+    residual_min: Annotated[float, Field(gt=0, le=60)] = 30.0
 
     @model_validator(mode="after")
     def _variant(self) -> Pod:
@@ -181,14 +185,38 @@ class Meter(_Strict):
 # --- clinical streams besides the meters ------------------------------------------------
 
 
+class Order(_Strict):
+    """A clinician's replacement order (DESIGN §6), written into the bed context from
+    `at_h` on. Without one, no fluid or rate is ever suggested for the bed."""
+
+    at_h: Hours = 0.0
+    fraction_low: float = 0.5  # checked by the engine's order model (never above 1)
+    fraction_high: float = 0.75
+    fluid: str = "0.45% NaCl"
+    max_rate_ml_h: Annotated[float, Field(gt=0, le=2000)] | None = None
+    ordered_by: Annotated[str, Field(min_length=1, max_length=64)] = "icu-physician (simulated)"
+
+    @model_validator(mode="after")
+    def _valid(self) -> Order:
+        self.as_order(0.0)  # the engine's own checks, so a bad order fails at load
+        return self
+
+    def as_order(self, t: float) -> ReplacementOrder:
+        at = datetime.fromtimestamp(t, UTC)
+        return ReplacementOrder(
+            fraction_low=self.fraction_low, fraction_high=self.fraction_high, fluid=self.fluid,
+            max_rate_ml_h=self.max_rate_ml_h, ordered_by=self.ordered_by, ordered_at=at,
+        )  # fmt: skip
+
+
 class Context(_Strict):
     """The retained bed context (DESIGN §7): published at the start and again at
-    every episode marker."""
+    every episode marker and order."""
 
     publish: bool = True
     weight: bool = True  # include the weight (without it, weight-based rules do not run)
     disabled_rules: list[Annotated[str, Field(max_length=64)]] = Field(default_factory=list)
-    replacement: ReplacementOrder = ReplacementOrder()
+    order: Order | None = None
 
 
 class Intake(_Strict):
@@ -240,13 +268,17 @@ class Labs(_Strict):
     """Serum sodium sampled every `every_h` from `first_h`, resulting after
     `turnaround_min`. Sodium follows the Adrogué-Madias single-litre formulas hour
     by hour: output above the baseline is lost with urine Na+K, documented intake
-    adds its fluid's sodium."""
+    adds its fluid's sodium. Potassium, magnesium, phosphate and creatinine, where
+    given, are reported with small noise around their value."""
 
     every_h: Annotated[float, Field(gt=0, le=48)] = 6.0
     first_h: Hours = 1.0
     turnaround_min: Annotated[float, Field(ge=0, le=240)] = 45.0
     serum_na: Annotated[float, Field(ge=120, le=160)] = 140.0
     serum_k: Annotated[float, Field(ge=2, le=7)] | None = 4.1
+    serum_mg: Annotated[float, Field(ge=0.2, le=3)] | None = None
+    serum_phosphate: Annotated[float, Field(ge=0.2, le=3)] | None = None
+    serum_creatinine: Annotated[float, Field(ge=20, le=1500)] | None = None
     urine_na: Annotated[float, Field(ge=0, le=250)] = 60.0
     urine_k: Annotated[float, Field(ge=0, le=150)] = 20.0
     report_urine: bool = True  # send urine Na and K with each result

@@ -9,7 +9,10 @@ the patients have no names. Three beds on 60-s reference-cumulative meters:
             threshold, below 250 mL/h;
 - bed-norm: a normal output, 60 mL/h (0.75 mL/kg/h at 80 kg).
 
-The bedside nurse acknowledges bed-sev's pod-hourly alarm 20 minutes after it fires.
+The diuresis beds carry an obstruction relieved two hours before the night starts (so
+the post-obstructive rules are armed); bed-sev has a replacement order (50-75% as 0.45%
+NaCl) and a serum sodium in range. The bedside nurse acknowledges bed-sev's pod-hourly
+alarm 20 minutes after it fires.
 
 Volumes are exact (no noise), so the expected windows follow from the flows.
 """
@@ -56,8 +59,22 @@ def write_night(path: Path) -> Path:
         ("bed-bord", "rc-9002", BORDERLINE_ML_H, MeterFaults()),
         ("bed-norm", "rc-9003", NORMAL_ML_H, MeterFaults()),
     ]
+    relieved = datetime.fromtimestamp(t0 - 2 * 3600.0, UTC).isoformat()
     for i, (bed, dev, flow, faults) in enumerate(beds):
-        recs.append(context_record(t0 - 60.0 + i, bed, WARD, [dev], weight_kg=80.0))
+        ctx = context_record(t0 - 60.0 + i, bed, WARD, [dev], weight_kg=80.0)
+        if bed != "bed-norm":
+            ctx[2]["episodes"] = [{"kind": "obstruction_relieved", "at": relieved}]
+        if bed == "bed-sev":
+            ctx[2]["replacement"] = {
+                "fraction_low": 0.5, "fraction_high": 0.75, "fluid": "0.45% NaCl",
+                "ordered_by": "icu-physician-3 (invented)", "ordered_at": relieved,
+            }  # fmt: skip
+            # in range: 135-145 mmol/L (Adrogue & Madias, NEJM 2000)
+            labs = {"time": datetime.fromtimestamp(t0 - 1800.0, UTC).isoformat(),
+                    "serum_na_mmol_l": 140.0}  # fmt: skip
+            recs += [ctx, (t0 - 30.0, f"hourwatch/beds/{bed}/labs", labs)]
+        else:
+            recs.append(ctx)
         s = simulate(prof, dev, T0, HOURS, constant(flow), faults, seed=11 + i)
         recs += s.records
         if bed == "bed-sev":  # the broker redelivers one message 5 s later

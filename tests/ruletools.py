@@ -5,6 +5,11 @@ invented bed to one invented reference-cumulative meter (60-s readings). `Bed.ho
 feeds a list of clock-hour volumes as one reading per minute, each minute holding
 1/60 of its hour, so the volume in any run of minutes is known exactly.
 
+By default a bed's context carries an obstruction relieved two hours before T0 (so the
+post-obstructive rules are armed and the residual drain lies before monitoring) and a
+replacement order of 50-75% as 0.45% NaCl; `relieved_at=None` or `order=None` leave
+them out.
+
 All beds, meters, people and volumes here are invented; no patient data.
 """
 
@@ -37,6 +42,12 @@ M0 = int(T0 // 60)  # minute index of T0
 HOUR = 3600.0
 MIN = 60.0
 WARD = "icu-east"
+# An invented clinician's order: 50-75% of the last hour's output as 0.45% NaCl (the
+# range commonly used, CLINICAL-REFERENCE §1, from memory).
+ORDER: dict[str, Any] = {
+    "fraction_low": 0.5, "fraction_high": 0.75, "fluid": "0.45% NaCl",
+    "ordered_by": "icu-physician-1 (invented)", "ordered_at": "2026-03-13T22:00:00Z",
+}  # fmt: skip
 
 PROFILES: dict[str, DeviceProfile] = {p.name: p for p in load_profiles()}
 REFERENCE = PROFILES["reference-cumulative"]
@@ -134,6 +145,8 @@ class Bed:
     device: str = "rc-0101"
     weight_kg: float | None = 70.0
     context: dict[str, Any] = field(default_factory=dict)
+    relieved_at: float | None = T0 - 2 * HOUR  # an obstruction relieved (episode marker)
+    order: dict[str, Any] | None = field(default_factory=lambda: dict(ORDER))
     level: float = 0.0  # what the meter's bag holds now (mL)
     t: float | None = None  # device time of the last reading sent
     seq: int = 0
@@ -142,6 +155,10 @@ class Bed:
         payload: dict[str, Any] = {"ward": WARD, "device_ids": [self.device]}
         if self.weight_kg is not None:
             payload |= {"weight_kg": self.weight_kg, "weight_basis": "actual"}
+        if self.relieved_at is not None:
+            payload["episodes"] = [{"kind": "obstruction_relieved", "at": iso(self.relieved_at)}]
+        if self.order is not None:
+            payload["replacement"] = self.order
         payload |= self.context | extra
         return self.ward.send(f"hourwatch/beds/{self.bed}/context", payload, t)
 

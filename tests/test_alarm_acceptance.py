@@ -87,6 +87,7 @@ class Scenario:
     steps: tuple[tuple[int, float], ...]
     spikes_s: tuple[float, float]
     margin_ml: float  # each truth crossing is at least this clear (module docstring)
+    relieved_min: int | None = None  # an obstruction relieved at this minute (context)
 
     def flow(self, minute: float) -> float:
         return next((ml_h for until, ml_h in self.steps if minute < until), self.steps[-1][1])
@@ -98,7 +99,7 @@ class Scenario:
 # The truth window moves 10.3 mL per minute through each threshold: margins >= 5 mL.
 POD = Scenario(
     "post-obstructive-diuresis", 80.0, 12.0, ((120, 40.0), (600, 660.0), (10**9, 150.0)),
-    spikes_s=(45 * 60.0, 9 * 3600.0 + 20 * 60), margin_ml=4.0,
+    spikes_s=(45 * 60.0, 9 * 3600.0 + 20 * 60), margin_ml=4.0, relieved_min=120,
 )  # fmt: skip
 # Oliguria (invented), 80 kg: 60 mL/h (0.75 mL/kg/h) for 6 h, then 6 mL/h (0.075 mL/kg/h)
 # broken by two brisk 20-minute responses to diuretic boluses (900 mL/h, 300 mL each,
@@ -248,6 +249,11 @@ def check_scenario(
 ) -> None:
     sim = simulate(REFERENCE, DEVICE, START, scn.hours, scn.flow, faults(scn, noise_sd_ml), seed)
     ctx = context_record(T_START - 30.0, BED, WARD, [DEVICE], weight_kg=scn.weight_kg)
+    if scn.relieved_min is not None:  # the relief marker that arms the POD rules (DESIGN §4)
+        at = datetime.fromtimestamp(T_START + scn.relieved_min * 60.0, UTC).isoformat()
+        # nothing retained drains in this flow: the whole 660 mL/h is diuresis
+        ctx[2]["episodes"] = [{"kind": "obstruction_relieved", "at": at,
+                               "residual_drain_min": 0}]  # fmt: skip
     log = tmp_path / f"{scn.name}-{seed}.jsonl"
     records = [ctx, *sim.records]
     write_log(log, records)

@@ -25,7 +25,7 @@ from daemon.cli import main
 from daemon.probe import ProbeTally
 from daemon.profile_files import load_profiles
 from simulator.encode import encode
-from simulator.meterlog import constant, simulate
+from simulator.meterlog import constant, iso_z, simulate
 from tests.broker import (
     Watcher,
     broker,  # noqa: F401  (the fixture)
@@ -227,7 +227,9 @@ def test_run_logs_json_on_stdout_and_serves_the_operations_metrics(broker, tmp_p
         health = next(json.loads(x)["address"] for x in list(lines) if '"health_listening"' in x)
         pub = publisher(broker, "ops-pub")
         ctx = {"ward": "icu-east", "device_ids": ["rc-0901"], "weight_kg": 80,
-               "weight_basis": "actual"}  # fmt: skip
+               "weight_basis": "actual",  # relieved 12 h ago: POD rules armed (DESIGN §4)
+               "episodes": [{"kind": "obstruction_relieved",
+                             "at": iso_z(time.time() - 12 * 3600)}]}  # fmt: skip
         start = datetime.fromtimestamp(time.time() - 3 * 3600, UTC)
         # invented: 3 h at 300 mL/h, uploaded at once (store-and-forward)
         sim = simulate(REF, "rc-0901", start, 3.0, constant(300.0))

@@ -241,8 +241,16 @@ def test_disabling_a_rule_ends_its_open_alarm() -> None:
 
 
 def test_a_per_bed_replacement_order_changes_the_advice() -> None:
-    """Clinician's order of 40-60% instead of the 50-75% default (common practice)."""
-    bed = started(70.0, replacement={"fraction_low": 0.4, "fraction_high": 0.6})
+    """A clinician's order of 40-60% of the output (invented order)."""
+    order = {
+        "fraction_low": 0.4,
+        "fraction_high": 0.6,
+        "fluid": "0.45% NaCl",
+        "ordered_by": "icu-physician-2 (invented)",
+        "ordered_at": "2026-03-13T23:00:00Z",
+    }
+    bed = started(70.0, replacement=order)
+    bed.labs(at(seconds=30), serum_na_mmol_l=140.0)  # in range (Adrogue & Madias, NEJM 2000)
     bed.hours([300.0] * 4)
     adv = bed.ward.advice()
     assert adv
@@ -252,7 +260,14 @@ def test_a_per_bed_replacement_order_changes_the_advice() -> None:
 
 def test_a_replacement_order_above_100_percent_is_refused() -> None:
     """No configuration can recommend replacing more than was lost (DESIGN §6)."""
-    bed = Bed(Ward(), context={"replacement": {"fraction_low": 0.8, "fraction_high": 1.2}})
+    order = {
+        "fraction_low": 0.8,
+        "fraction_high": 1.2,
+        "fluid": "0.45% NaCl",
+        "ordered_by": "icu-physician-2 (invented)",
+        "ordered_at": "2026-03-13T23:00:00Z",
+    }
+    bed = Bed(Ward(), context={"replacement": order})
     out = bed.bind()
     assert [r.reason for r in rejected(out)] == [Outcome.BAD_CONTEXT]
     assert "b01" not in bed.ward.engine.beds
@@ -324,8 +339,10 @@ def test_every_alarm_says_it_is_decision_support_and_how_to_acknowledge() -> Non
         assert "hourwatch/ack" in json.dumps(obj)  # where to send the acknowledgement
         assert e.alarm_id in json.dumps(obj.get("acknowledge"))
         pager = obj.get("pager")
-        assert isinstance(pager, str) and 0 < len(pager) <= 160  # issue 3 §6
+        # one pager line: plain ASCII, at most 200 characters (ours), ending in its caution
+        assert isinstance(pager, str) and 0 < len(pager) <= 200 and pager.isascii()
         assert pager.startswith(e.bed)
+        assert pager.endswith("Decision support: verify per local protocol.")
 
 
 def test_alarm_ids_name_bed_rule_and_onset() -> None:

@@ -49,7 +49,13 @@ def _base_messages() -> list[Message]:
                     bag_change_every_s=3 * 3600.0, spike_times_s=[4000.0]),
         seed=5,
     )  # fmt: skip
-    msgs: list[Message] = [context_record(T0 - 20.0, BED, "icu-west", [DEVICE], weight_kg=75.0)]
+    # the obstruction relieved at 01:00 (its first hour drains the retained content)
+    ctx = context_record(T0 - 20.0, BED, "icu-west", [DEVICE], weight_kg=75.0,
+                         relieved_at=T0 + 3600.0)  # fmt: skip
+    ctx[2]["replacement"] = {"fraction_low": 0.5, "fraction_high": 0.75, "fluid": "0.45% NaCl",
+                             "ordered_by": "icu-physician-4 (invented)",
+                             "ordered_at": iso_z(T0 + 3600.0)}  # fmt: skip
+    msgs: list[Message] = [ctx]
     msgs += sim.records
     bed = f"hourwatch/beds/{BED}"
     msgs += [

@@ -28,7 +28,7 @@ from daemon.profile_files import load_profiles
 from daemon.recovery import longest_window_s, recover, rule_window_s
 from daemon.rule_files import load_policy, load_rules
 from daemon.service import journal_row
-from simulator.meterlog import constant, simulate
+from simulator.meterlog import constant, iso_z, simulate
 from tests.broker import (
     FakeClock,
     Watcher,
@@ -60,7 +60,13 @@ def engine() -> Engine:
 
 def records(hours: float, bed: str = "b01", device: str = "rc-1") -> list[tuple]:
     """(recv_time, topic, payload bytes): a bed context, then a simulated meter stream."""
-    ctx = {"ward": "icu-east", "device_ids": [device], "weight_kg": 80, "weight_basis": "actual"}
+    ctx = {
+        "ward": "icu-east",
+        "device_ids": [device],
+        "weight_kg": 80,
+        "weight_basis": "actual",
+        "episodes": [{"kind": "obstruction_relieved", "at": iso_z(T0 - 7200.0)}],
+    }
     sim = simulate(PROFILE, device, datetime.fromtimestamp(T0, UTC), hours, constant(FLOW_ML_H))
     out = [(T0, f"hourwatch/beds/{bed}/context", json.dumps(ctx).encode())]
     out += [(t, topic, json.dumps(p).encode()) for t, topic, p in sim.records]
@@ -179,7 +185,14 @@ def test_a_truncated_history_is_never_published_for_its_rebuilt_first_window(tmp
 
 # --- on a real broker ----------------------------------------------------------------
 def context(devices: list[str]) -> dict[str, Any]:
-    return {"ward": "icu-east", "device_ids": devices, "weight_kg": 80, "weight_basis": "actual"}
+    """An obstruction relieved 12 h ago arms the post-obstructive rules (DESIGN §4)."""
+    return {
+        "ward": "icu-east",
+        "device_ids": devices,
+        "weight_kg": 80,
+        "weight_basis": "actual",
+        "episodes": [{"kind": "obstruction_relieved", "at": iso_z(time.time() - 12 * 3600)}],
+    }
 
 
 def readings(device: str, start: float, hours: float) -> list:

@@ -168,6 +168,9 @@ def test_e4_pod_hourly_and_advice() -> None:
     # source: Halbgewachs & Domes, Can Fam Physician 2015 (> 200 mL/h for 2 h); E4
     hourly = [180.0, 250.0, 230.0]
     bed = started(80.0)
+    # a recent serum sodium in range (135-145 mmol/L, Adrogue & Madias NEJM 2000): without
+    # one no hypotonic rate is suggested (DESIGN §6)
+    bed.labs(at(seconds=30), serum_na_mmol_l=140.0)
     bed.hours(hourly[:2])
     assert "pod-hourly" not in bed.ward.fired()  # at 02:00: 180 then 250, only one above
     bed.hours(hourly[2:])
@@ -205,6 +208,8 @@ def test_e4_pod_hourly_and_advice() -> None:
     assert a.caution == CAUTION and "treating clinician" in a.caution
     assert "treating clinician" in a.summary and len(a.summary) <= 160
     assert first.because_of == (ev.alarm_id,)
+    assert a.order is not None and a.order.ordered_by == "icu-physician-1 (invented)"
+    assert a.serum_na is not None and a.serum_na.value == 140.0
 
 
 def test_pod_24h_alone() -> None:
@@ -551,8 +556,15 @@ def test_sodium_rise(later: float, after_h: float, fires: bool) -> None:
 # --- rules that run while a post-obstructive diuresis alarm is open ----------------------
 
 
+ALL_LABS = {  # invented results, each inside its usual adult reference interval
+    "serum_na_mmol_l": 141.0, "serum_k_mmol_l": 3.9, "serum_mg_mmol_l": 0.85,
+    "serum_phosphate_mmol_l": 1.1, "serum_creatinine_umol_l": 90.0,
+}  # fmt: skip
+
+
 def test_labs_due_every_4_hours_while_pod_is_open() -> None:
-    # common practice (electrolytes every 4-12 h during a diuresis), no single source
+    # common practice (Na, K, Mg, phosphate and creatinine every 4-12 h during a
+    # diuresis; CLINICAL-REFERENCE §1), no single source
     bed = diuresis(300.0, hours=3)
     w = bed.ward
     pod = w.first("pod-hourly")
@@ -565,12 +577,39 @@ def test_labs_due_every_4_hours_while_pod_is_open() -> None:
     assert ev is not None and ev.time == due
     assert ev.kind == "reminder" and ev.priority is Priority.LOW
     t_labs = due + 10 * MIN
-    bed.labs(t_labs, serum_na_mmol_l=141.0, serum_k_mmol_l=3.9)
+    bed.labs(t_labs, **ALL_LABS)
     done = w.first("labs-due", State.RESOLVED)
     assert done is not None and done.time == t_labs
     w.advance(t_labs + 4 * HOUR + 1.0)
     again = [e for e in w.alarms("labs-due") if e.state is State.ACTIVE]
     assert [e.time for e in again] == [due, t_labs + 4 * HOUR]
+
+
+def test_one_analyte_does_not_satisfy_another() -> None:
+    """A lone urine sodium, or serum Na and K alone, leave the other analytes due."""
+    bed = diuresis(300.0, hours=3)
+    w = bed.ward
+    pod = w.first("pod-hourly")
+    assert pod is not None
+    due = pod.time + 4 * HOUR
+    w.advance(due)
+    bed.labs(due + MIN, urine_na_mmol_l=60.0)  # invented
+    assert w.first("labs-due", State.RESOLVED) is None
+    bed.labs(due + 2 * MIN, serum_na_mmol_l=141.0, serum_k_mmol_l=3.9)
+    assert w.first("labs-due", State.RESOLVED) is None
+    still = next(a for a in w.engine.book.active("b01") if a.rule == "labs-due")
+    assert still.evidence["due"] == [
+        "serum_mg_mmol_l", "serum_phosphate_mmol_l", "serum_creatinine_umol_l"]  # fmt: skip
+    assert "Mg, phosphate, creatinine" in still.summary
+    bed.labs(due + 3 * MIN, serum_mg_mmol_l=0.85, serum_phosphate_mmol_l=1.1,
+             serum_creatinine_umol_l=90.0)  # fmt: skip
+    done = w.first("labs-due", State.RESOLVED)
+    assert done is not None and done.time == due + 3 * MIN
+    # Na and K fall due 4 h after their own result, not after the later ones
+    w.advance(due + 2 * MIN + 4 * HOUR)
+    back = [e for e in w.alarms("labs-due") if e.state is State.ACTIVE]
+    assert back[-1].time == due + 2 * MIN + 4 * HOUR
+    assert back[-1].evidence["due"] == ["serum_na_mmol_l", "serum_k_mmol_l"]
 
 
 def test_no_labs_reminder_without_a_diuresis() -> None:

@@ -23,7 +23,7 @@ import pytest
 from daemon.caution import CAUTION
 from daemon.journal import Journal
 from daemon.profile_files import load_profiles
-from simulator.meterlog import constant, simulate
+from simulator.meterlog import constant, iso_z, simulate
 from tests.broker import (
     FakeClock,
     Watcher,
@@ -45,7 +45,14 @@ MEDIUM_TIER1_S = 900
 
 
 def context(devices: list[str], ward: str = "icu-east") -> dict[str, Any]:
-    return {"ward": ward, "device_ids": devices, "weight_kg": 80, "weight_basis": "actual"}
+    """An obstruction relieved 12 h ago arms the post-obstructive rules (DESIGN §4)."""
+    return {
+        "ward": ward,
+        "device_ids": devices,
+        "weight_kg": 80,
+        "weight_basis": "actual",
+        "episodes": [{"kind": "obstruction_relieved", "at": iso_z(time.time() - 12 * 3600)}],
+    }
 
 
 def readings(device: str, start: float, hours: float, ml_h: float = FLOW_ML_H) -> list:

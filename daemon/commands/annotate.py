@@ -13,7 +13,7 @@ from ..review import verdicts
 from ..review.episodes import episodes
 from ..review.explain import parse_alarm_id
 from ..review.recorder import replay_alarms
-from ..rule_files import load_policy, load_rules
+from ..rule_files import load_advice, load_policy, load_rules
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -53,6 +53,7 @@ def run(args: argparse.Namespace) -> int:
         rules,
         load_policy(args.rules),
         progress=sys.stderr,
+        advice=load_advice(args.rules),
         label="annotate",
     )
     ep = next((e for e in episodes(rec.events) if e.alarm_id == args.alarm_id), None)

@@ -10,7 +10,7 @@ from pathlib import Path
 from ..errors import UserError
 from ..profile_files import load_profiles
 from ..review.explain import explain, text
-from ..rule_files import load_policy, load_rules
+from ..rule_files import load_advice, load_policy, load_rules
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -35,7 +35,8 @@ def run(args: argparse.Namespace) -> int:
     profiles = load_profiles(args.profiles)
     rules = load_rules(args.rules)
     policy = load_policy(args.rules)
-    d = explain(args.source, args.alarm_id, profiles, rules, policy, progress=sys.stderr)
+    d = explain(args.source, args.alarm_id, profiles, rules, policy, progress=sys.stderr,
+                advice=load_advice(args.rules))  # fmt: skip
     if args.json:
         sys.stdout.write(json.dumps(d, indent=1) + "\n")
     else:

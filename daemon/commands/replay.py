@@ -21,7 +21,7 @@ from ..errors import UserError
 from ..hourly import hourly_json, hourly_text, quality_text
 from ..profile_files import load_profiles
 from ..replay import replay_file
-from ..rule_files import load_policy, load_rules
+from ..rule_files import load_advice, load_policy, load_rules
 from ..timeline import effect_json, effect_text
 
 if TYPE_CHECKING:
@@ -89,7 +89,12 @@ def run(args: argparse.Namespace) -> int:
     if args.report:
         return _report(args, until, comparison=None)
     profiles = load_profiles(args.profiles)
-    engine = Engine(profiles, load_rules(args.rules), load_policy(args.rules))
+    engine = Engine(
+        profiles,
+        load_rules(args.rules),
+        load_policy(args.rules),
+        advice_policy=load_advice(args.rules),
+    )
     out = sys.stdout
     if args.hourly:
         result = replay_file(args.log, engine, until=until)
@@ -131,6 +136,7 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
         profiles,
         rules,
         load_policy(args.rules),
+        advice=load_advice(args.rules),
         until=until,
         progress=sys.stderr,
         warn=sys.stderr,
@@ -178,10 +184,20 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
         f"profiles {_where(args.compare_profiles or args.profiles)}"
     )
     runs = []
-    sides = (("A", prof_a, rules_a, pol_a, label_a), ("B", prof_b, rules_b, pol_b, label_b))
-    for name, prof, rules, pol, label in sides:
+    adv_a = load_advice(args.rules)
+    adv_b = load_advice(args.compare) if args.compare else adv_a
+    sides = (("A", prof_a, rules_a, pol_a, adv_a, label_a),
+             ("B", prof_b, rules_b, pol_b, adv_b, label_b))  # fmt: skip
+    for name, prof, rules, pol, adv, label in sides:
         rec, res = replay_alarms(
-            args.log, prof, rules, pol, progress=sys.stderr, label=f"replay {name}", until=until
+            args.log,
+            prof,
+            rules,
+            pol,
+            progress=sys.stderr,
+            label=f"replay {name}",
+            until=until,
+            advice=adv,
         )
         warn_about(res, args.log, sys.stderr if name == "A" else None)
         bound = {b: s.bound_at for b, s in res.engine.beds.items()}

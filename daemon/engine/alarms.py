@@ -56,6 +56,7 @@ class RuleSpec:
     condition_delay_s: int  # alarm-condition delay: condition must persist this long
     clear_hold_s: int  # non-latching: condition must stay clear this long to resolve
     low_output: bool  # low-output rules are suppressed by a bed's technical alarms
+    also_notify: tuple[str, ...] = ()  # paged with every page, besides the policy's roles
 
 
 @dataclass(frozen=True, slots=True)
@@ -85,23 +86,25 @@ class AlarmEvent:
 
     def pager(self) -> str:
         """One plain line for a pager, at most PAGER_MAX characters: bed, state and
-        priority, what (the title up to its colon), the key numbers, and for an open
-        high-output alarm the suggested replacement. The numbers are shortened
-        first; the bed, what and the suggestion always fit."""
+        priority, what (the title up to its colon), the key numbers, for an open
+        high-output alarm what the advice says, and always the caution. The numbers
+        are shortened first; the bed, what, the advice and the caution always fit."""
         what = (self.title or self.rule).split(":")[0]
         head = f"{self.bed} {_STATE_WORD[self.state]} {self.priority}: {what}"
         tail = ""
         if self.advice and self.state in (State.ACTIVE, State.ESCALATED):
-            rate = self.advice.get("rate_ml_h")
-            if isinstance(rate, list | tuple) and len(rate) == 2:
-                tail = f" Suggest {rate[0]:.0f}-{rate[1]:.0f} mL/h {self.advice.get('fluid', '')}."
-        text = f"{head}. {self.summary}.{tail}"
+            words = self.advice.get("pager")
+            if isinstance(words, str) and words:
+                tail = f" {words}"
+        tail += f" {PAGER_CAUTION}"
+        text = _ascii(f"{head}. {self.summary}.{tail}")
         if len(text) <= PAGER_MAX:
             return text
-        room = PAGER_MAX - len(head) - len(tail) - 3  # '. ' and the ellipsis
+        head, tail = _ascii(head), _ascii(tail)
+        room = PAGER_MAX - len(head) - len(tail) - 5  # '. ' and the ellipsis
         if room >= 10:
-            return f"{head}. {self.summary[:room].rstrip()}…{tail}"
-        return (f"{head}.{tail}")[:PAGER_MAX]
+            return f"{head}. {_ascii(self.summary)[:room].rstrip()}...{tail}"
+        return f"{head[: PAGER_MAX - len(tail) - 1]}.{tail}"
 
     def to_json(self) -> dict[str, object]:
         return {
@@ -134,7 +137,20 @@ class AlarmEvent:
         }
 
 
-PAGER_MAX = 160
+# One pager line: plain ASCII (an en dash would force an SMS gateway into UCS-2, 70
+# characters a segment), at most 200 characters: two SMS segments, and within what
+# alphanumeric pagers commonly display (common practice, no single source).
+PAGER_MAX = 200
+_ASCII = str.maketrans({"–": "-", "—": "-", "…": "...", "≥": ">=", "≤": "<=", "×": "x",
+                        "µ": "u", "°": " deg"})  # fmt: skip
+
+
+def _ascii(text: str) -> str:
+    return text.translate(_ASCII).encode("ascii", "replace").decode("ascii")
+
+
+# The pager line's own caution: the page is a prompt for the clinician, not an order.
+PAGER_CAUTION = "Decision support: verify per local protocol."
 ALARM_CAUTION = (
     "Decision support only: a prompt for the treating clinician, to be checked against "
     "local protocols and licensed practice. Hourwatch controls no pump and no order."

@@ -7,7 +7,7 @@ import bisect
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
-from .context import BedContext
+from .context import DRAINS_RESIDUAL, BedContext
 
 if TYPE_CHECKING:
     from .effects import AdviceIssued
@@ -35,7 +35,6 @@ class BedState:
     intake_ml: list[float] = field(default_factory=list)
     vitals: list[Vitals] = field(default_factory=list)  # sorted by time
     labs: dict[str, list[tuple[float, float]]] = field(default_factory=dict)  # analyte -> (t, v)
-    last_labs_time: float | None = None
     last_eval_minute: int | None = None
     notices: set[str] = field(default_factory=set)
     quiet_until: dict[str, int] = field(default_factory=dict)  # rule id -> minute
@@ -43,8 +42,27 @@ class BedState:
     # rule id -> when a rule on inputs alone, last found false, may next change
     # without an input (see Evaluator.run)
     input_due: dict[str, float] = field(default_factory=dict)
+    # rule id -> when a rule armed by episode markers is next armed or disarmed
+    arm_due: dict[str, float] = field(default_factory=dict)
     last_advice: AdviceIssued | None = None
     last_advice_hour: int | None = None  # clock-hour index the advice was computed from
+    # minute ranges [lo, hi) in which what drained was the bladder's retained content
+    residual: tuple[tuple[int, int], ...] = ()
+    # episode markers by name -> their times (epoch s), from the context
+    markers: dict[str, tuple[float, ...]] = field(default_factory=dict)
+
+    def set_context(self, ctx: BedContext) -> None:
+        self.context = ctx
+        spans: list[tuple[int, int]] = []
+        marks: dict[str, list[float]] = {}
+        for e in ctx.episodes:
+            t = e.at.timestamp()
+            marks.setdefault(e.marker, []).append(t)
+            if e.kind in DRAINS_RESIDUAL and e.residual_drain_min > 0:
+                lo = int(t // 60)
+                spans.append((lo, lo + e.residual_drain_min))
+        self.residual = tuple(sorted(spans))
+        self.markers = {k: tuple(sorted(v)) for k, v in marks.items()}
 
     def forget_quiet(self) -> None:
         """Readings moved volume in a way no quiet proof allowed for, or a meter spoke
@@ -84,5 +102,10 @@ class BedState:
         bisect.insort(series, (t, value))
         while series and series[0][0] < t - KEEP_S:
             series.pop(0)
-        if self.last_labs_time is None or t > self.last_labs_time:
-            self.last_labs_time = t
+
+    def latest_lab(self, analyte: str, now: float) -> tuple[float, float] | None:
+        """The newest (time, value) of `analyte` taken at or before `now`."""
+        for t, v in reversed(self.labs.get(analyte, ())):
+            if t <= now:
+                return t, v
+        return None

@@ -16,6 +16,7 @@ from . import rules as r
 from .alarms import Priority
 from .bedstate import BedState
 from .haemo import mean_arterial_pressure, shock_index
+from .numbers import num
 from .series import MinuteSeries
 from .timefmt import iso
 from .windows import Window, hours_ending, measure, window_bounds
@@ -42,6 +43,8 @@ class BedView:
     # False while the rule's own alarm is open: it is re-checked every minute then,
     # so a costly proof of quietness would be thrown away
     quiet_wanted: bool = True
+    # whether a fluid counts as hypotonic under the advice policy
+    hypotonic: Callable[[str], bool] = lambda fluid: False
 
 
 Explain = Callable[[], tuple[str, dict[str, Any]]]
@@ -118,7 +121,7 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
     end = v.end
     if end is None:
         return NOT_YET
-    wins = hours_ending(v.bed.series, end, c.consecutive_hours)
+    wins = hours_ending(v.bed.series, end, c.consecutive_hours, v.bed.residual)
     gt = c.comparator == "gt"
     cond = all(w.volume_ml > c.threshold_ml_h if gt else w.volume_ml >= c.threshold_ml_h
                for w in wins)  # fmt: skip
@@ -162,7 +165,7 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     length = c.window_h * 60
     if c.since_start_if_shorter:
         length = min(length, end - first + 1)
-    w = measure(v.bed.series, end, length)
+    w = measure(v.bed.series, end, length, v.bed.residual)
     cond = w.volume_ml > c.threshold_ml
     return Finding(
         cond,
@@ -335,7 +338,7 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
     end = v.end
     if end is None:
         return NOT_YET
-    w = measure(v.bed.series, end, c.window_h * 60)
+    w = measure(v.bed.series, end, c.window_h * 60, v.bed.residual)
     lo, hi = window_bounds(end, c.window_h * 60)
     intake = v.bed.intake_between(lo * 60.0, hi * 60.0)
     judged = w.volume_ml >= c.min_output_ml
@@ -360,7 +363,7 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     end = v.end
     if end is None:
         return NOT_YET
-    hour = measure(v.bed.series, end, 60)
+    hour = measure(v.bed.series, end, 60, v.bed.residual)
     if hour.volume_ml <= c.hourly_above_ml:  # the common case: nothing else to look at
         # without vitals or documented intake no sign can be found, whatever the
         # output; either arrives as an input, which re-checks every rule
@@ -396,7 +399,7 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     balance_low = False
     kg = _weight(v)
     if kg is not None and v.bed.intake_times:  # balance only when intake is documented
-        w = measure(v.bed.series, end, c.balance_window_h * 60)
+        w = measure(v.bed.series, end, c.balance_window_h * 60, v.bed.residual)
         lo, hi = window_bounds(end, c.balance_window_h * 60)
         net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
         ev |= {"net_balance_ml": round(net, 1), "balance_ml_kg": round(net / kg, 2)}
@@ -405,8 +408,9 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     return Finding(
         bool(signs) or balance_low,
         _say(
+            f"assess volume status, resuscitation per the treating clinician: "
             f"{_ml(hour.volume_ml)} in the last hour with {what}",
-            ev | {"signs": signs, "balance_low": balance_low},
+            ev | {"signs": signs, "balance_low": balance_low, "what": what},
         ),
         priority=c.priority_with_sign if signs else None,
         due=due,
@@ -424,24 +428,49 @@ def _sooner(a: float | None, b: float | None) -> float | None:
     return b if a is None else a if b is None else min(a, b)
 
 
-def lab_above(c: r.LabAbove, v: BedView) -> Finding:
+# How people read each analyte: its name, its short name and its unit.
+LAB_WORDS: dict[str, tuple[str, str, str]] = {
+    "serum_na_mmol_l": ("serum sodium", "Na", "mmol/L"),
+    "serum_k_mmol_l": ("serum potassium", "K", "mmol/L"),
+    "serum_mg_mmol_l": ("serum magnesium", "Mg", "mmol/L"),
+    "serum_phosphate_mmol_l": ("serum phosphate", "phosphate", "mmol/L"),
+    "serum_creatinine_umol_l": ("serum creatinine", "creatinine", "umol/L"),
+}
+
+
+def _lab_limit(c: r.LabAbove | r.LabBelow, v: BedView, above: bool) -> Finding:
     series, later = _lab_series(v, c.analyte)
     if not series:
         return Finding(False, _say("no result"), due=later)
     t, x = series[-1]
     fresh = v.now - t < c.max_age_s
-    name = c.analyte.split("_")[1].capitalize()
-    return Finding(
-        fresh and x > c.threshold,
-        lambda: (
-            f"serum {name} {x:g} mmol/L at {iso(t)} (alarm above {c.threshold:g})",
-            {"analyte": c.analyte, "value": x, "time": iso(t), "threshold": c.threshold},
-        ),
-        due=_sooner(t + c.max_age_s if fresh else None, later),
-    )
+    name, _, unit = LAB_WORDS[c.analyte]
+    cond = fresh and (x > c.threshold if above else x < c.threshold)
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        word = "above" if above else "below"
+        text = f"{name} {x:g} {unit} at {iso(t)} (alarm {word} {c.threshold:g})"
+        ev: dict[str, Any] = {"analyte": c.analyte, "value": x, "time": iso(t),
+                              "threshold": c.threshold}  # fmt: skip
+        order = v.bed.context.replacement
+        if isinstance(c, r.LabBelow) and c.review_hypotonic_order and order is not None \
+                and v.hypotonic(order.fluid):  # fmt: skip
+            text += "; a hypotonic replacement order is on file: physician to review it"
+            ev["hypotonic_order_on_file"] = True
+        return text, ev
+
+    return Finding(cond, explain, due=_sooner(t + c.max_age_s if fresh else None, later))
 
 
-def lab_rise(c: r.LabRise, v: BedView) -> Finding:
+def lab_above(c: r.LabAbove, v: BedView) -> Finding:
+    return _lab_limit(c, v, above=True)
+
+
+def lab_below(c: r.LabBelow, v: BedView) -> Finding:
+    return _lab_limit(c, v, above=False)
+
+
+def _lab_change(c: r.LabRise | r.LabFall, v: BedView, rising: bool) -> Finding:
     series, later = _lab_series(v, c.analyte)
     if len(series) < 2:
         return Finding(False, _say("fewer than two results"), due=later)
@@ -449,32 +478,71 @@ def lab_rise(c: r.LabRise, v: BedView) -> Finding:
     prior = [(tt, xx) for tt, xx in series[:-1] if tt >= t - c.window_h * 3600]
     if not prior:
         return Finding(False, _say("no earlier result in the window"), due=later)
-    t0, x0 = min(prior, key=lambda p: p[1])
-    rise = x - x0
+    t0, x0 = (min if rising else max)(prior, key=lambda p: p[1])
+    change = x - x0 if rising else x0 - x
+    limit = c.rise_above if isinstance(c, r.LabRise) else c.fall_above
+    name, _, unit = LAB_WORDS[c.analyte]
+    word = "rose" if rising else "fell"
     return Finding(
-        rise > c.rise_above,
+        change > limit,
         lambda: (
-            f"serum sodium rose {rise:.0f} mmol/L ({x0:g} -> {x:g}) in {(t - t0) / 3600:.1f} h "
-            f"(alarm above {c.rise_above:g} per {c.window_h} h)",
-            {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "rise": rise},
+            f"{name} {word} {num(change)} {unit} ({x0:g} -> {x:g}) in {num((t - t0) / 3600, 1)} h "
+            f"(alarm above {limit:g} per {c.window_h} h)",
+            {"from": x0, "from_time": iso(t0), "to": x, "to_time": iso(t), "change": change},
         ),
         due=later,
     )
 
 
+def lab_rise(c: r.LabRise, v: BedView) -> Finding:
+    return _lab_change(c, v, rising=True)
+
+
+def lab_fall(c: r.LabFall, v: BedView) -> Finding:
+    return _lab_change(c, v, rising=False)
+
+
 def reminder(c: r.Reminder, v: BedView) -> Finding:
+    """Each analyte is due `every_s` after its latest result, or after the gate opened."""
     gate_start = min(v.gates.values())
-    since = max(gate_start, v.bed.last_labs_time or gate_start)
-    due = since + c.every_s
-    done = v.bed.last_labs_time is not None
-    return Finding(
-        v.now >= due,
-        lambda: (
-            f"{c.task}: last done {iso(since)}" if done else f"{c.task}: not yet done",
-            {"since": iso(since), "every_s": c.every_s},
-        ),
-        due=None if v.now >= due else due,
-    )
+    due_at: dict[str, float] = {}
+    last: dict[str, float | None] = {}
+    for analyte in c.analytes:
+        res = v.bed.latest_lab(analyte, v.now)
+        last[analyte] = res[0] if res is not None else None
+        since = gate_start if res is None else max(gate_start, res[0])
+        due_at[analyte] = since + c.every_s
+    overdue = [a for a in c.analytes if v.now >= due_at[a]]
+    waiting = [t for a, t in due_at.items() if t > v.now]
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        names = ", ".join(LAB_WORDS[a][1] for a in overdue)
+        latest = "; ".join(
+            f"{LAB_WORDS[a][1]} {'never' if last[a] is None else iso(last[a] or 0.0)}"
+            for a in overdue
+        )
+        return (
+            f"{c.task}: due {names} (last: {latest})",
+            {"due": overdue, "every_s": c.every_s,
+             "last": {a: None if t is None else iso(t) for a, t in last.items()}},
+        )  # fmt: skip
+
+    return Finding(bool(overdue), explain, due=min(waiting) if waiting else None)
+
+
+def episode_armed(gate: r.EpisodeGate, v: BedView) -> tuple[bool, float | None]:
+    """Whether a rule gated on episode markers runs now, and when that next changes."""
+    near = False
+    change: float | None = None
+    span = gate.within_h * 3600.0
+    for marker in gate.markers:
+        for t in v.bed.markers.get(marker, ()):
+            if t <= v.now < t + span:
+                near = True
+            for edge in (t, t + span):
+                if edge > v.now and (change is None or edge < change):
+                    change = edge
+    return near == (gate.armed == "with_marker"), change
 
 
 CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
@@ -488,7 +556,9 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
     r.ReplacementRatio: replacement_ratio,
     r.Hypovolemia: hypovolemia,
     r.LabAbove: lab_above,
+    r.LabBelow: lab_below,
     r.LabRise: lab_rise,
+    r.LabFall: lab_fall,
     r.Reminder: reminder,
 }
 
@@ -496,13 +566,13 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
 # Checks that read no urine output: a meter reading can only end their condition
 # (it breaks a silence), and each declares when time alone may change its answer.
 OUTPUT_BLIND: frozenset[type] = frozenset(
-    {r.MeterSilent, r.NoUsableData, r.LabAbove, r.LabRise, r.Reminder}
+    {r.MeterSilent, r.NoUsableData, r.LabAbove, r.LabBelow, r.LabRise, r.LabFall, r.Reminder}
 )
 
 
 # Checks that read neither the output nor the meters: only an input (which re-checks
 # every rule) or time, at the wake-up each declares, can change their answer.
-INPUT_ONLY: frozenset[type] = frozenset((r.LabAbove, r.LabRise))
+INPUT_ONLY: frozenset[type] = frozenset((r.LabAbove, r.LabBelow, r.LabRise, r.LabFall))
 
 
 def evaluate(rule: r.RuleDef, view: BedView) -> Finding:

@@ -48,15 +48,30 @@ class VitalsMessage(_Message):
 
 
 class LabsMessage(_Message):
-    """`{prefix}/beds/{bed}/labs`: electrolytes in mmol/L."""
+    """`{prefix}/beds/{bed}/labs`: electrolytes in mmol/L, creatinine in umol/L (UCUM
+    `umol/L`). Each result counts for its own analyte only."""
 
     time: AwareDatetime
     serum_na_mmol_l: Annotated[float, Field(ge=100, le=200)] | None = None
     serum_k_mmol_l: Annotated[float, Field(ge=1, le=10)] | None = None
     serum_mg_mmol_l: Annotated[float, Field(ge=0.1, le=5)] | None = None
     serum_phosphate_mmol_l: Annotated[float, Field(ge=0.1, le=5)] | None = None
+    serum_creatinine_umol_l: Annotated[float, Field(ge=10, le=3000)] | None = None
     urine_na_mmol_l: Annotated[float, Field(ge=0, le=300)] | None = None
     urine_k_mmol_l: Annotated[float, Field(ge=0, le=300)] | None = None
+
+    @model_validator(mode="after")
+    def _something(self) -> LabsMessage:
+        if all(getattr(self, name) is None for name in ANALYTES):
+            raise ValueError("labs need at least one result")
+        return self
+
+
+# Every result a labs message can carry, by its field name.
+ANALYTES = (
+    "serum_na_mmol_l", "serum_k_mmol_l", "serum_mg_mmol_l", "serum_phosphate_mmol_l",
+    "serum_creatinine_umol_l", "urine_na_mmol_l", "urine_k_mmol_l",
+)  # fmt: skip
 
 
 class AckMessage(_Message):

@@ -4,12 +4,19 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, model_validator
 
 from .advice import ReplacementOrder
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
 WeightBasis = Literal["actual", "ideal", "adjusted"]
+EpisodeKind = Literal["catheter_inserted", "obstruction_relieved", "catheter_changed"]
+
+# The retained bladder content drains over the first half hour to hour after relief
+# (common practice, no single source): minutes counted as residual, not output.
+RESIDUAL_DRAIN_MIN = 60
+# Episodes after which what first drains is the bladder's retained content.
+DRAINS_RESIDUAL = frozenset({"catheter_inserted", "obstruction_relieved"})
 
 
 class Episode(BaseModel):
@@ -17,8 +24,25 @@ class Episode(BaseModel):
 
     model_config = ConfigDict(extra="forbid", frozen=True)
 
-    kind: Literal["catheter_inserted", "obstruction_relieved", "catheter_changed"]
+    kind: EpisodeKind
     at: AwareDatetime
+    # why a catheter was inserted: "retention" arms the post-obstructive rules
+    reason: Literal["retention", "monitoring", "other"] | None = None
+    # how long after `at` what drains is the retained content, not output
+    residual_drain_min: Annotated[int, Field(ge=0, le=240)] = RESIDUAL_DRAIN_MIN
+
+    @model_validator(mode="after")
+    def _reason(self) -> Episode:
+        if self.reason is not None and self.kind != "catheter_inserted":
+            raise ValueError("reason is for catheter_inserted episodes")
+        return self
+
+    @property
+    def marker(self) -> str:
+        """The name a rule file's `episode.markers` uses for this episode."""
+        if self.kind == "catheter_inserted" and self.reason == "retention":
+            return "catheter_inserted_for_retention"
+        return self.kind
 
 
 class BedContext(BaseModel):
@@ -33,6 +57,7 @@ class BedContext(BaseModel):
     weight_basis: WeightBasis | None = None
     # per-bed overrides, by clinician order
     disabled_rules: list[Annotated[str, Field(max_length=64)]] = Field(default_factory=list)
-    replacement: ReplacementOrder = ReplacementOrder()
+    # the clinician's replacement order; without one no fluid or rate is suggested
+    replacement: ReplacementOrder | None = None
     tbw_fraction: Annotated[float, Field(ge=0.3, le=0.7)] = 0.6  # total body water / weight
-    episodes: list[Episode] = Field(default_factory=list)
+    episodes: Annotated[list[Episode], Field(max_length=32)] = Field(default_factory=list)

@@ -17,8 +17,17 @@ from typing import Any, NamedTuple
 
 from pydantic import BaseModel, ValidationError
 
-from .advice import replacement_advice
-from .alarms import AlarmEvent, Kind, State
+from .advice import (
+    DEFAULT_POLICY,
+    FLUIDS,
+    PROMPTING,
+    AdviceKind,
+    AdvicePolicy,
+    Sodium,
+    advise,
+    ended_advice,
+)
+from .alarms import AlarmEvent
 from .bedstate import BedState, Vitals
 from .checks import DeviceSeen
 from .cleaning import Cleaner, CumulativeCleaner, IntervalCleaner
@@ -27,13 +36,14 @@ from .context import BedContext
 from .decode import Decoder, Payload, Reading, Rejected
 from .effects import AdviceIssued, Effect, RejectedInput
 from .escalation import EscalationPolicy
-from .evaluator import OPEN, Evaluator
+from .evaluator import Evaluator, criterion_holds
 from .lifecycle import AlarmBook
 from .outcomes import DECODE_REJECTIONS, DeviceQuality, Outcome
 from .profiles import DeviceProfile, Semantics
-from .rules import HourlyAbove, Hypovolemia, RuleDef, VolumeAbove
+from .rules import Hypovolemia, ReplacementRatio, RuleDef
 from .series import MinuteSeries
 from .timefmt import as_epoch
+from .windows import measure
 
 DEDUP_HORIZON_S = 86400.0
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
@@ -129,6 +139,7 @@ class Engine:
         topic_prefix: str = "hourwatch",
         ack_validity_s: int = 3600,
         observe: Callable[[ReadingTrace], None] | None = None,
+        advice_policy: AdvicePolicy = DEFAULT_POLICY,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -150,16 +161,19 @@ class Engine:
         self.input_rejections: Counter[str] = Counter()
         self.rules = [r for r in rules if r.enabled]
         self.book = AlarmBook(policy or _bedside_only(), ack_validity_s)
-        self.evaluator = Evaluator(self.rules, self.book)
-        self._high_output = {
+        self.advice_policy = advice_policy
+        self.evaluator = Evaluator(self.rules, self.book, hypotonic=self._hypotonic,
+                                   end_hold_s=advice_policy.criterion_end_hold_s)  # fmt: skip
+        # rules whose met criterion brings replacement advice every completed hour
+        self._advice_sources = tuple(r.id for r in self.rules if r.replacement_advice)
+        # alarms whose page carries the advice: those, and the replacement checks on them
+        self._advice_rules = set(self._advice_sources) | {
             r.id for r in self.rules
-            if isinstance(r.check, HourlyAbove | VolumeAbove) and r.kind is Kind.PHYSIOLOGICAL
+            if set(r.while_active) & set(self._advice_sources)
+            and isinstance(r.check, ReplacementRatio)
         }  # fmt: skip
-        # alarms whose page carries the replacement advice
-        self._advice_rules = self._high_output | {
-            r.id for r in self.rules
-            if set(r.while_active) & self._high_output or isinstance(r.check, Hypovolemia)
-        }  # fmt: skip
+        # while one of these holds, no replacement rate is suggested
+        self._hypovolaemia_rules = {r.id for r in self.rules if isinstance(r.check, Hypovolemia)}
         self._due: dict[str, float] = {}  # bed -> its rules' next due time
         self._heap: list[tuple[float, str]] = []  # (due, bed), stale entries skipped
 
@@ -380,7 +394,7 @@ class Engine:
         bed = self.beds.get(bed_id)
         if bed is None:
             bed = self.beds[bed_id] = BedState(bed_id, ctx, MinuteSeries(), bound_at=now)
-        bed.context = ctx
+        bed.set_context(ctx)
         bed.notices.clear()  # a new context may supply what was missing
         wanted = set(ctx.device_ids)
         for dev_id, b in list(self._bound.items()):
@@ -442,15 +456,7 @@ class Engine:
             # most likely a silence this very reading ended, so then evaluate instead
             bed.last_eval_minute = latest
             return []
-        effects = self._evaluate(bed, now, shortcut=True)
-        hour_done = prev is not None and (latest + 1) // 60 != (prev + 1) // 60
-        opened = any(
-            isinstance(e, AlarmEvent) and e.rule in self._high_output and e.state is State.ACTIVE
-            for e in effects
-        )
-        if hour_done or opened:  # a new page carries the suggestion with it
-            effects = self._advice(bed, latest, now) + effects
-        return effects
+        return self._evaluate(bed, now, shortcut=True)
 
     def _evaluate(self, bed: BedState, now: float, shortcut: bool = False) -> list[Effect]:
         if not self.rules:
@@ -462,36 +468,82 @@ class Engine:
         elif self._due.get(bed.bed_id) != due:
             self._due[bed.bed_id] = due
             heapq.heappush(self._heap, (due, bed.bed_id))
+        if self._advice_sources:  # a new page carries the suggestion with it
+            return self._advice(bed, now) + events
         return list(events)
 
-    def _advice(self, bed: BedState, latest: int, now: float) -> list[Effect]:
-        """Replacement advice from the last completed clock hour, while a
-        high-output alarm is open; once per hour."""
-        hour = (latest + 1) // 60 - 1
+    def _hypotonic(self, fluid: str) -> bool:
+        f = FLUIDS.get(fluid)
+        return f is not None and f.hypotonic(self.advice_policy)
+
+    def _advice(self, bed: BedState, now: float) -> list[Effect]:
+        """Advice while a criterion that brings it holds (its condition, not a latch;
+        see criterion_holds): at each completed clock hour, and at once when what it may
+        say changes (an order, signs of hypovolaemia, a sodium result). When none holds
+        any more, one last message, then nothing."""
+        holding = self._holding(bed.bed_id, now)
+        last = bed.last_advice
+        prompting = last is not None and last.advice.kind in PROMPTING
+        latest = bed.series.latest_minute()
         first = bed.series.first_minute
-        if bed.last_advice_hour == hour or first is None or hour * 60 < first:
+        if (not holding and not prompting) or latest is None or first is None:
             return []
-        open_ids = tuple(
-            a.alarm_id for a in self.book.active(bed.bed_id)
-            if a.rule in self._high_output and a.state in OPEN
-        )  # fmt: skip
-        if not open_ids:
-            return []
-        s = bed.series.sums(hour * 60, hour * 60 + 60)
-        na = bed.labs.get("serum_na_mmol_l")
-        una = bed.labs.get("urine_na_mmol_l")
-        uk = bed.labs.get("urine_k_mmol_l")
+        hour = (latest + 1) // 60 - 1
+        if hour * 60 < first:
+            return []  # no completed clock hour of monitoring yet
+        w = measure(bed.series, hour * 60 + 59, 60, bed.residual)
         ctx = bed.context
-        advice = replacement_advice(
-            hour * 3600.0, s.volume_ml, ctx.replacement,
-            serum_na=na[-1][1] if na else None,
-            urine_na=una[-1][1] if una else None,
-            urine_k=uk[-1][1] if uk else None,
+        if not holding:
+            adv = ended_advice(hour * 3600.0, w.volume_ml, ctx.replacement, w.residual_ml)
+            issued = AdviceIssued(now, bed.bed_id, ctx.ward, adv, ())
+            bed.last_advice, bed.last_advice_hour = issued, hour
+            return [issued]
+        pol = self.advice_policy
+        na = bed.latest_lab("serum_na_mmol_l", now)
+        urine = [bed.latest_lab(a, now) for a in ("urine_na_mmol_l", "urine_k_mmol_l")]
+        una, uk = (x[1] if x is not None and now - x[0] <= pol.sodium_max_age_s else None
+                   for x in urine)  # fmt: skip
+        adv = advise(
+            hour * 3600.0, w.volume_ml, ctx.replacement, now,
+            sodium=Sodium(na[1], na[0]) if na is not None else None, urine_na=una, urine_k=uk,
             weight_kg=ctx.weight_kg, tbw_fraction=ctx.tbw_fraction,
+            hypovolaemia=self._hypovolaemia_signs(bed), residual_ml=w.residual_ml, policy=pol,
         )  # fmt: skip
-        issued = AdviceIssued(now, bed.bed_id, ctx.ward, advice, open_ids)
+        if (
+            last is not None
+            and bed.last_advice_hour == hour
+            and last.advice.kind is adv.kind
+            and last.advice.order == adv.order
+            and last.advice.serum_na == adv.serum_na
+        ):
+            return []  # said already this hour
+        issued = AdviceIssued(now, bed.bed_id, ctx.ward, adv, self._alarm_ids(bed, holding))
         bed.last_advice, bed.last_advice_hour = issued, hour
         return [issued]
+
+    def _holding(self, bed_id: str, now: float) -> tuple[str, ...]:
+        """The rules bringing advice whose criterion holds on the bed at `now`."""
+        opened = self.book.open_rules(bed_id)
+        hold = self.advice_policy.criterion_end_hold_s
+        return tuple(
+            rid for rid in self._advice_sources
+            if rid in opened and criterion_holds(opened[rid], now, hold)[0]
+        )  # fmt: skip
+
+    def _alarm_ids(self, bed: BedState, rules: tuple[str, ...]) -> tuple[str, ...]:
+        return tuple(a.alarm_id for a in self.book.active(bed.bed_id) if a.rule in rules)
+
+    def _hypovolaemia_signs(self, bed: BedState) -> str | None:
+        """The signs, while a hypovolaemia alarm is open on the bed: from its onset until
+        its condition has stayed clear for the rule's clear-hold (no advice that flaps
+        with each set of vitals)."""
+        opened = self.book.open_rules(bed.bed_id)
+        if not any(r in opened for r in self._hypovolaemia_rules):
+            return None
+        for a in self.book.active(bed.bed_id):
+            if a.rule in self._hypovolaemia_rules:
+                return str(a.evidence.get("what") or "see the hypovolaemia alarm")
+        return "see the hypovolaemia alarm"
 
     def _finish(self, effects: list[Effect]) -> list[Effect]:
         """Alarm events leave the engine knowing how to be acknowledged and, for
@@ -501,11 +553,14 @@ class Engine:
             if isinstance(e, AlarmEvent):
                 bed = self.beds.get(e.bed)
                 adv = bed.last_advice if bed is not None else None
-                fresh = adv is not None and e.time - adv.time <= ADVICE_FRESH_S
+                current = (  # the advice in force now: none unless a criterion holds
+                    adv is not None and e.time - adv.time <= ADVICE_FRESH_S
+                    and adv.advice.kind is not AdviceKind.ENDED and e.rule in self._advice_rules
+                    and bool(self._holding(e.bed, e.time))
+                )  # fmt: skip
                 e = replace(
                     e, ack_topic=self._ack_topic, ack_valid_s=self.book.ack_validity_s,
-                    advice=adv.to_json() | {"pager": adv.advice.summary}
-                    if adv is not None and fresh and e.rule in self._advice_rules else None,
+                    advice=adv.to_json() if adv is not None and current else None,
                 )  # fmt: skip
             out.append(e)
         return out

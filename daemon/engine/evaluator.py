@@ -13,12 +13,36 @@ from typing import Any, NamedTuple
 
 from .alarms import AlarmEvent, Kind, RuleSpec, State
 from .bedstate import BedState
-from .checks import CHECKS, FOREVER, INPUT_ONLY, OUTPUT_BLIND, BedView, DeviceSeen, Finding
-from .lifecycle import AlarmBook
+from .checks import (
+    CHECKS,
+    FOREVER,
+    INPUT_ONLY,
+    OUTPUT_BLIND,
+    BedView,
+    DeviceSeen,
+    Finding,
+    episode_armed,
+)
+from .lifecycle import AlarmBook, OpenRule
 from .rules import RuleDef
 
-# Alarm states that open a gate for dependent rules (replacement, reminders).
+# Alarm states that open a gate for dependent rules (replacement, reminders), while
+# the alarm's condition holds: a latched alarm whose condition has ended opens none.
 OPEN = frozenset({State.ACTIVE, State.ESCALATED, State.ACKNOWLEDGED})
+
+
+def criterion_holds(entry: OpenRule, now: float, end_hold_s: float) -> tuple[bool, float | None]:
+    """Whether an open alarm's criterion counts as holding at `now` (for gates and
+    advice), and when that next changes by time alone. It holds while its condition is
+    present and until the condition has stayed away for `end_hold_s`, so an output
+    wavering about its line does not start and stop the prompts every minute."""
+    state, _, cleared = entry
+    if state not in OPEN:
+        return False, None
+    if cleared is None:
+        return True, None
+    ends = cleared + end_hold_s
+    return (True, ends) if now < ends else (False, None)
 
 
 @dataclass(frozen=True, slots=True)
@@ -52,7 +76,12 @@ class _Plan(NamedTuple):
 
 
 class Evaluator:
-    def __init__(self, rules: list[RuleDef], book: AlarmBook) -> None:
+    def __init__(
+        self, rules: list[RuleDef], book: AlarmBook,
+        hypotonic: Callable[[str], bool] = lambda fluid: False, end_hold_s: float = 3600.0,
+    ) -> None:  # fmt: skip
+        self.hypotonic = hypotonic
+        self.end_hold_s = end_hold_s
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
         self.plans = [self._plan(r) for r in self.rules]
         # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
@@ -84,8 +113,8 @@ class Evaluator:
         disabled = bed.context.disabled_rules
         book = self.book
         end = bed.series.latest_minute()
-        view = BedView(bed, now, devices, {}, end)
-        quiet, input_due = bed.quiet_until, bed.input_due
+        view = BedView(bed, now, devices, {}, end, hypotonic=self.hypotonic)
+        quiet, input_due, arm_due = bed.quiet_until, bed.input_due, bed.arm_due
         stage = -1
         changed = False  # an evaluation opened or closed alarms: re-read the book's view
         opened = book.open_rules(bed_id)  # these must hear every answer
@@ -95,7 +124,7 @@ class Evaluator:
             last = end if end is not None else FOREVER
             plans = [
                 p for p in plans
-                if p.rule_id in opened or not (
+                if p.rule_id in opened or arm_due.get(p.rule_id, FOREVER) <= now or not (
                     input_due.get(p.rule_id, now) > now if p.waits
                     else quiet.get(p.rule_id, -1) >= last
                 )
@@ -119,12 +148,36 @@ class Evaluator:
                     out += book.update(now, bed_id, ward, spec, False, off, {})
                     changed = True
                 continue
+            if rule.episode is not None:
+                armed, change = episode_armed(rule.episode, view)
+                if change is None:
+                    arm_due.pop(rid, None)
+                else:
+                    arm_due[rid] = change
+                    due = change if due is None or change < due else due
+                if not armed:
+                    quiet[rid] = FOREVER  # until the arming changes (arm_due) or an input
+                    if rid in opened:
+                        off = (
+                            "no obstruction relief on record"
+                            if rule.episode.armed == "with_marker"
+                            else "an obstruction relief is on record"
+                        )
+                        out += book.update(now, bed_id, ward, spec, False, off, {})
+                        changed = True
+                    continue
             if rule.while_active:
-                gates = {g: opened[g][1] for g in rule.while_active
-                         if g in opened and opened[g][0] in OPEN} if opened else None  # fmt: skip
+                gates = {}
+                for g in rule.while_active if opened else ():
+                    if g in opened:
+                        holds, until = criterion_holds(opened[g], now, self.end_hold_s)
+                        if holds:
+                            gates[g] = opened[g][1]
+                        if until is not None and (due is None or until < due):
+                            due = until  # the gate closes then
                 if not gates:
                     if rid in opened:
-                        idle = "no high-output alarm open"
+                        idle = "the high-output criterion is no longer met"
                         out += book.update(now, bed_id, ward, spec, False, idle, {})
                         changed = True
                     continue
@@ -140,6 +193,8 @@ class Evaluator:
                 out.append(Notice(now, bed_id, ward, f.skipped,
                                   f"{rid} and other weight-based rules are not running: "
                                   "no body weight in the bed context"))  # fmt: skip
+            if rid in opened and (opened[rid][2] is None) != f.condition:
+                changed = True  # a gate on this rule's condition opens or closes
             if f.condition or rid in opened:
                 events = book.update(
                     now, bed_id, ward, spec, f.condition, "", {},

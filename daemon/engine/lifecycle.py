@@ -149,6 +149,9 @@ _TIE_ORDER: dict[Trigger, int] = {
 _ANNUNCIATED = (State.ACTIVE, State.ESCALATED)
 _ENDED = (State.INACTIVE, State.RESOLVED)
 
+# (state, activation or onset time, when the condition went away; None while present)
+OpenRule = tuple[State, float, float | None]
+
 REJECT_UNKNOWN = "unknown_alarm"
 REJECT_ENDED = "alarm_ended"
 REJECT_NOT_ACKABLE = "not_acknowledgeable"
@@ -170,6 +173,7 @@ class _Record:
     summary: str
     evidence: dict[str, Any]
     present: bool = True  # condition as last reported
+    cleared_at: float | None = None  # when the condition last went away (None: present)
     clear_since: float | None = None  # start of the clear-hold
     latched_clear: bool = False  # latching rule: condition gone, awaiting ack
     activated_at: float | None = None  # escalation clock (re)starts here
@@ -306,11 +310,11 @@ class AlarmBook:
         rec.t_last = max(rec.t_last, now)
         # 1. the condition itself
         if condition and not rec.present:
-            rec.present, rec.clear_since = True, None
+            rec.present, rec.clear_since, rec.cleared_at = True, None, None
             if rec.latched_clear:
                 self._fire(slot, T.RETURNED_LATCHED, now, out)
         elif not condition and rec.present:
-            rec.present = False
+            rec.present, rec.cleared_at = False, now
             if rec.state is State.PENDING:
                 rec.suppressed_by = sup  # the closing record names what holds now
                 self._fire(slot, T.CLEARED_EARLY, now, out)
@@ -424,15 +428,16 @@ class AlarmBook:
                 self._resolve(slot.record)
         return {k: getattr(self, k) for k in self.__dict__}
 
-    def open_rules(self, bed: str) -> dict[str, tuple[State, float]]:
-        """Rule id -> (state, activation or onset time) of the bed's current alarms:
-        the cheap question the evaluator asks every minute."""
-        out: dict[str, tuple[State, float]] = {}
+    def open_rules(self, bed: str) -> dict[str, OpenRule]:
+        """Rule id -> (state, activation or onset time, when its condition went away or
+        None while present) of the bed's current alarms: the cheap question the
+        evaluator asks every minute."""
+        out: dict[str, OpenRule] = {}
         for s in self._by_bed.get(bed, {}).values():
             r = s.record
             if r is not None:
                 at = r.activated_at if r.activated_at is not None else r.onset
-                out[r.spec.rule_id] = (r.state, at)
+                out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
         return out
 
     def suppressor(self, bed: str) -> str | None:
@@ -647,6 +652,8 @@ class AlarmBook:
         elif step.page is Page.REPEAT:
             rec.renotified += 1
             notify = pol.roles_up_to(rec.tier)
+        if notify and rec.spec.also_notify:
+            notify += tuple(x for x in rec.spec.also_notify if x not in notify)
         if rec.suppressed_by is not None:
             notify = ()
         rec.state = step.to

@@ -11,8 +11,18 @@ from typing import Annotated, Literal
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from .alarms import Kind, Priority, RuleSpec
+from .escalation import Role
 
 RULE_ID = r"^[a-z0-9][a-z0-9-]{1,62}$"
+
+# Serum results a rule can read (fields of the labs message).
+Analyte = Literal[
+    "serum_na_mmol_l", "serum_k_mmol_l", "serum_mg_mmol_l", "serum_phosphate_mmol_l",
+    "serum_creatinine_umol_l",
+]  # fmt: skip
+# Episode markers a rule can be armed by (see context.Episode.marker).
+Marker = Literal["obstruction_relieved", "catheter_inserted_for_retention", "catheter_inserted",
+                 "catheter_changed"]  # fmt: skip
 
 
 class _Check(BaseModel):
@@ -104,26 +114,51 @@ class Hypovolemia(_Check):
 
 
 class LabAbove(_Check):
+    """The latest result, while recent, above a threshold."""
+
     type: Literal["lab_above"]
-    analyte: Literal["serum_na_mmol_l", "serum_k_mmol_l"]
+    analyte: Analyte
     threshold: float
     max_age_s: Annotated[int, Field(ge=600, le=7 * 86400)] = 86400
 
 
+class LabBelow(_Check):
+    """The latest result, while recent, below a threshold."""
+
+    type: Literal["lab_below"]
+    analyte: Analyte
+    threshold: float
+    max_age_s: Annotated[int, Field(ge=600, le=7 * 86400)] = 86400
+    # name a hypotonic replacement order on file in the page (its review is the point)
+    review_hypotonic_order: bool = False
+
+
 class LabRise(_Check):
+    """The latest result above the lowest earlier one in the window by more than a limit."""
+
     type: Literal["lab_rise"]
-    analyte: Literal["serum_na_mmol_l"]
+    analyte: Analyte
     rise_above: Annotated[float, Field(gt=0)]
     window_h: Annotated[int, Field(ge=1, le=72)] = 24
 
 
+class LabFall(_Check):
+    """The latest result below the highest earlier one in the window by more than a limit."""
+
+    type: Literal["lab_fall"]
+    analyte: Analyte
+    fall_above: Annotated[float, Field(gt=0)]
+    window_h: Annotated[int, Field(ge=1, le=72)] = 24
+
+
 class Reminder(_Check):
-    """While a high-output alarm is on: a task due every interval."""
+    """While a high-output condition holds: each analyte due every interval (a result of
+    one analyte does not satisfy another)."""
 
     type: Literal["reminder"]
     every_s: Annotated[int, Field(ge=600, le=86400)]
     task: Annotated[str, Field(min_length=1, max_length=200)]
-    done_by: Literal["labs"] = "labs"
+    analytes: Annotated[list[Analyte], Field(min_length=1)]
 
 
 Check = Annotated[
@@ -137,13 +172,26 @@ Check = Annotated[
     | ReplacementRatio
     | Hypovolemia
     | LabAbove
+    | LabBelow
     | LabRise
+    | LabFall
     | Reminder,
     Field(discriminator="type"),
 ]
 
 WEIGHT_CHECKS = (RateBelow, FlowStopped)
 LOW_OUTPUT_CHECKS = (RateBelow, VolumeBelow)
+
+
+class EpisodeGate(BaseModel):
+    """When a rule runs, by the bed's episode markers: only within `within_h` after one
+    (post-obstructive rules), or only without one in that span (generic high output)."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    armed: Literal["with_marker", "without_marker"]
+    markers: Annotated[list[Marker], Field(min_length=1)]
+    within_h: Annotated[int, Field(ge=1, le=14 * 24)] = 72
 
 
 class RuleDef(BaseModel):
@@ -160,8 +208,14 @@ class RuleDef(BaseModel):
     condition_delay_s: Annotated[int, Field(ge=0, le=86400)] = 0
     clear_hold_s: Annotated[int, Field(ge=0, le=86400)] = 0
     enabled: bool = True
-    # rules that only run while one of these rules has an alarm on the bed
+    # rules that only run while the condition of one of these rules holds on the bed
     while_active: list[str] = Field(default_factory=list)
+    # armed by the bed's episode markers (e.g. an obstruction relieved), or always
+    episode: EpisodeGate | None = None
+    # roles paged with every page of this rule's alarm, besides the escalation policy's
+    also_notify: list[Role] = Field(default_factory=list)
+    # while this rule's condition holds, the bed gets replacement advice every hour
+    replacement_advice: bool = False
     check: Check
 
     @model_validator(mode="after")
@@ -188,6 +242,7 @@ class RuleDef(BaseModel):
             condition_delay_s=self.condition_delay_s,
             clear_hold_s=self.clear_hold_s,
             low_output=self.low_output,
+            also_notify=tuple(self.also_notify),
         )
 
 
@@ -206,6 +261,13 @@ DEFAULT_RULE_IDS = (
     "hypovolemia-risk",
     "sodium-high",
     "sodium-rise",
+    "sodium-low",
+    "sodium-fall",
+    "potassium-low",
+    "magnesium-low",
+    "phosphate-low",
     "labs-due",
+    "high-output",
+    "high-output-24h",
     "catheter-clamp-review",
 )

@@ -27,6 +27,7 @@ class Window:
     volume_ml: float
     measured_min: int
     estimated_min: int
+    residual_ml: float = 0.0  # retained bladder content drained inside, left out of volume_ml
 
     @property
     def start_minute(self) -> int:
@@ -63,14 +64,30 @@ class Window:
             "volume_ml": round(self.volume_ml, 1),
             "coverage": round(self.coverage, 3),
             "estimated_fraction": round(self.estimated_min / self.length_min, 3),
-        }
+        } | ({"residual_ml": round(self.residual_ml, 1)} if self.residual_ml else {})
 
 
-def measure(series: MinuteSeries, end_minute: int, length_min: int) -> Window:
-    s = series.sums(*window_bounds(end_minute, length_min))
-    return Window(end_minute, length_min, s.volume_ml, s.measured_min, s.estimated_min)
+Spans = tuple[tuple[int, int], ...]
 
 
-def hours_ending(series: MinuteSeries, end_minute: int, hours: int) -> list[Window]:
+def measure(series: MinuteSeries, end_minute: int, length_min: int, residual: Spans = ()) -> Window:
+    """The window's sums; volume drained in the `residual` minute ranges [lo, hi) (the
+    bladder's retained content after relief) is left out of the volume and reported."""
+    lo, hi = window_bounds(end_minute, length_min)
+    s = series.sums(lo, hi)
+    if not residual:
+        return Window(end_minute, length_min, s.volume_ml, s.measured_min, s.estimated_min)
+    held = 0.0
+    for a, b in residual:
+        a, b = max(a, lo), min(b, hi)
+        if a < b:
+            held += series.sums(a, b).volume_ml
+    return Window(end_minute, length_min, max(0.0, s.volume_ml - held), s.measured_min,
+                  s.estimated_min, held)  # fmt: skip
+
+
+def hours_ending(
+    series: MinuteSeries, end_minute: int, hours: int, residual: Spans = ()
+) -> list[Window]:
     """The last `hours` consecutive 60-minute windows, oldest first."""
-    return [measure(series, end_minute - 60 * k, 60) for k in range(hours - 1, -1, -1)]
+    return [measure(series, end_minute - 60 * k, 60, residual) for k in range(hours - 1, -1, -1)]

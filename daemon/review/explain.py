@@ -17,6 +17,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from ..caution import CAUTION
+from ..engine.advice import DEFAULT_POLICY, AdvicePolicy
 from ..engine.alarms import AlarmEvent, Kind
 from ..engine.effects import Effect
 from ..engine.engine import Engine, ReadingTrace
@@ -251,12 +252,15 @@ def review(
     progress: TextIO | None = None,
     warn: TextIO | None = None,
     label: str = "replay",
+    advice: AdvicePolicy = DEFAULT_POLICY,
 ) -> Review:
     recorder = Recorder(keep_traces_for=trace_bed)
     follower = Follower(rules, recorder, only=only, keep_traces=trace_bed is not None)
 
     def make(observe: Callable[[ReadingTrace], None]) -> Engine:
-        return follower.attach(Engine(profiles, rules, policy, observe=observe))
+        return follower.attach(
+            Engine(profiles, rules, policy, observe=observe, advice_policy=advice)
+        )
 
     result = run(
         path,
@@ -296,6 +300,7 @@ def explain(
     rules: list[RuleDef],
     policy: EscalationPolicy,
     progress: TextIO | None = None,
+    advice: AdvicePolicy = DEFAULT_POLICY,
 ) -> dict[str, Any]:
     bed, _ = parse_alarm_id(alarm_id)
     rv = review(
@@ -307,6 +312,7 @@ def explain(
         trace_bed=bed,
         progress=progress,
         label="explain",
+        advice=advice,
     )
     ep = next((e for e in rv.episodes if e.alarm_id == alarm_id), None)
     if ep is None:

@@ -16,6 +16,7 @@ from typing import TextIO, TypeVar
 
 from pydantic import ValidationError
 
+from ..engine.advice import DEFAULT_POLICY, AdvicePolicy
 from ..engine.alarms import AlarmEvent
 from ..engine.clinical import IntakeMessage
 from ..engine.effects import AdviceIssued, Effect
@@ -281,12 +282,14 @@ def replay_alarms(
     progress: TextIO | None = None,
     label: str = "replay",
     until: float | None = None,
+    advice: AdvicePolicy = DEFAULT_POLICY,
 ) -> tuple[Recorder, ReplayResult]:
     """A replay that keeps alarm events, advice and intake, without reading traces."""
     recorder = Recorder()
 
     def make(_: Callable[[ReadingTrace], None]) -> Engine:
-        return Engine(profiles, rules, policy)  # no observer: nothing per reading
+        # no observer: nothing per reading
+        return Engine(profiles, rules, policy, advice_policy=advice)
 
     result = run(path, make, recorder, until=until, progress=progress, label=label)
     return recorder, result
