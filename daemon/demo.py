@@ -33,6 +33,7 @@ from simulator.scenario import load_scenario
 
 from .caution import CAUTION
 from .config import BrokerConfig, HealthConfig, JournalConfig, PublishConfig, ServiceConfig
+from .engine.numbers import ml, num
 from .engine.timefmt import iso
 from .local_broker import EmbeddedBroker, Mosquitto, start_local_broker
 from .profile_files import load_profiles
@@ -125,7 +126,7 @@ _SHORT_STATE = {"active": "on", "escalated": "escalated", "acknowledged": "ack'd
 
 def _ward_table(beds: dict[str, BedView], sim_now: float, start: float) -> Table:
     hours = (sim_now - start) / 3600
-    table = Table(title=f"Ward view, simulated hour {hours:4.1f} (invented patients)")
+    table = Table(title=f"Ward view, simulated hour {num(hours, 1)} (invented patients)")
     table.add_column("bed", no_wrap=True)
     table.add_column("60 min", justify="right", no_wrap=True)
     table.add_column("24 h", justify="right", no_wrap=True)
@@ -136,8 +137,8 @@ def _ward_table(beds: dict[str, BedView], sim_now: float, start: float) -> Table
         alarms = "\n".join(f"{p} {r} {_SHORT_STATE.get(s, s)}" for p, r, s in b.alarms) or "-"
         table.add_row(
             bed,
-            "-" if b.hourly_ml is None else f"{b.hourly_ml:.0f} mL",
-            "-" if b.day_ml is None else f"{b.day_ml:.0f} mL",
+            "-" if b.hourly_ml is None else ml(b.hourly_ml),
+            "-" if b.day_ml is None else ml(b.day_ml),
             alarms,
             b.advice or "-",
         )
@@ -191,8 +192,9 @@ def _on_message(msg: mqtt.MQTTMessage, beds: dict[str, BedView], tally: Tally, n
 
 
 def _rate(advice: dict[str, Any]) -> str:
-    low, high = advice.get("rate_ml_h") or (0, 0)
-    return f"{low:.0f}-{high:.0f} mL/h {advice.get('fluid', '')} at {advice.get('time', '')[11:16]}"
+    """The advice's few words (a rate under an order, or why there is none) and its time."""
+    words = advice.get("pager") or str(advice.get("summary", ""))[:60]
+    return f"{words} ({advice.get('time', '')[11:16]})"
 
 
 def run_demo(

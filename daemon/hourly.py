@@ -7,6 +7,7 @@ from collections.abc import Iterator
 from typing import Any
 
 from .engine.engine import Engine
+from .engine.numbers import half_up, ml, num, pct
 from .engine.outcomes import COUNTED_IN_SERIES, Outcome
 from .engine.timefmt import iso
 
@@ -29,8 +30,8 @@ def hourly_rows(engine: Engine) -> Iterator[dict[str, Any]]:
             yield {
                 "bed": bed_id,
                 "hour_start": iso(h.hour_start_min * 60.0),
-                "volume_ml": round(h.volume_ml, 1),
-                "measured_fraction": round(h.measured_fraction, 3),
+                "volume_ml": half_up(h.volume_ml, 1),
+                "measured_fraction": half_up(h.measured_fraction, 3),
             }
 
 
@@ -58,17 +59,24 @@ def hourly_text(engine: Engine) -> Iterator[str]:
         if not rows:
             yield "  (no completed clock hour yet)"
         for h in rows:
-            per_kg = f"{h.volume_ml / ctx.weight_kg:8.2f}" if ctx.weight_kg else f"{'-':>8}"
+            per_kg = f"{num(h.volume_ml / ctx.weight_kg, 2):>8}" if ctx.weight_kg else f"{'-':>8}"
             note = ""
             if h.measured_fraction < 0.9:
                 note = "  < 90% measured: not enough data to judge low output"
             yield (
                 f"  {iso(h.hour_start_min * 60.0)[:16].replace('T', ' '):<18} "
-                f"{h.volume_ml:9.1f} {per_kg} {h.measured_fraction:9.0%}{note}"
+                f"{num(h.volume_ml, 1):>9} {per_kg} {pct(h.measured_fraction):>9}{note}"
             )
         if rows:
             total = sum(h.volume_ml for h in rows[-24:])
-            yield f"  last {min(24, len(rows))} completed hours: {total:.0f} mL"
+            yield f"  last {min(24, len(rows))} completed hours: {ml(total)}"
+        for lo, hi in bed.residual:
+            drained = bed.series.sums(lo, hi).volume_ml
+            if drained > 0:
+                yield (
+                    f"  residual drained {iso(lo * 60.0)[11:16]}-{iso(hi * 60.0)[11:16]}: "
+                    f"{ml(drained)}, in the hours above, not counted by the high-output criteria"
+                )
         yield ""
     yield from quality_text(engine)
 

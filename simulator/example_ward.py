@@ -11,9 +11,11 @@ reading (CLINICAL-REFERENCE.md §1-§3):
   (lower overnight).
 - bed-02, gravimetric-text meter: post-obstructive diuresis after the bladder
   was decompressed just before the log starts (an episode marker in the bed
-  context); several hundred mL/h decaying over the day towards ~100 mL/h. From
-  the third hour the nurse documents replacement fluid each hour (about 60% of
-  the previous hour's output, as 0.45% sodium chloride).
+  context; the retained content drained in those 15 minutes); several hundred
+  mL/h decaying over the day towards ~100 mL/h. A replacement order (50-75% of
+  the last hour's output as 0.45% NaCl) is on file and labs come every 4 hours;
+  from the third hour the nurse documents replacement fluid each hour (about
+  60% of the previous hour's output).
 - bed-03, interval-10min meter: oliguria, output drifting from ~0.8 to
   ~0.25 mL/kg/h (below 0.5 mL/kg/h after about 6 hours).
 - bed-04, nested-telemetry meter: normal output, with a ~40-minute silence
@@ -107,6 +109,21 @@ def _hourly_replacement(
     return out
 
 
+def _labs(bed: str, t0: float, seed: int) -> list[Record]:
+    """Invented results every 4 h from 18:15, each inside its usual adult reference
+    interval (CLINICAL-REFERENCE §5, §5b), resulted 50 minutes after sampling."""
+    out: list[Record] = []
+    for k in range(7):
+        t = t0 + 900.0 + k * 4 * HOUR_S
+        payload: dict[str, Any] = {
+            "time": iso_z(t), "serum_na_mmol_l": 140 - (k + seed) % 3,
+            "serum_k_mmol_l": 3.9, "serum_mg_mmol_l": 0.82, "serum_phosphate_mmol_l": 1.0,
+            "serum_creatinine_umol_l": 104, "urine_na_mmol_l": 70, "urine_k_mmol_l": 25,
+        }  # fmt: skip
+        out.append((t + 50 * 60.0, f"hourwatch/beds/{bed}/labs", payload))
+    return out
+
+
 def _silence(records: list[Record], topic: str, t0: float, t1: float) -> list[Record]:
     """Drop one meter's messages received in [t0, t1): the meter was off the network."""
     return [r for r in records if not (r[1] == topic and t0 <= r[0] < t1)]
@@ -128,9 +145,15 @@ def build(seed: int, profile_dir: Path | None = None) -> list[Record]:
         ctx = context_record(t0 - 120.0 + i, bed, WARD, [meter], weight_kg=kg)
         ctx[2]["weight_basis"] = basis
         if bed == "bed-02":  # the retained urine was drained 15 minutes before the log
-            relieved = {"kind": "obstruction_relieved", "at": iso_z(t0 - 900.0)}
+            relieved = {"kind": "obstruction_relieved", "at": iso_z(t0 - 900.0),
+                        "residual_drain_min": 15}  # fmt: skip
             ctx[2]["episodes"] = [relieved]
+            ctx[2]["replacement"] = {
+                "fraction_low": 0.5, "fraction_high": 0.75, "fluid": "0.45% NaCl",
+                "ordered_by": "icu-physician on call (invented)", "ordered_at": iso_z(t0 - 600.0),
+            }  # fmt: skip
         records.append(ctx)
+    records += _labs("bed-02", t0, seed)
 
     # bed-01: normal output, noise of 1 mL, bag emptied every 6 h, one spike.
     s = simulate(

@@ -16,7 +16,7 @@ from . import rules as r
 from .alarms import Priority
 from .bedstate import BedState
 from .haemo import mean_arterial_pressure, shock_index
-from .numbers import num
+from .numbers import half_up, ml, num, pct
 from .series import MinuteSeries
 from .timefmt import iso
 from .windows import Window, hours_ending, measure, window_bounds
@@ -103,18 +103,17 @@ def _quiet_until(w: Window, series: MinuteSeries, threshold_ml: float) -> int | 
     return w.end_minute + series.slide_budget(lo, hi, budget, QUIET_LIMIT_MIN)
 
 
-def _ml(x: float) -> str:
-    return f"{x:.0f} mL"
+_ml = ml
 
 
 def _rate(rate: float, threshold: float) -> str:
     """Two decimals; where two would round onto the threshold, three, rounded away
     from it (0.49997 is below 0.5 and reads 0.499, not 0.50)."""
-    text = f"{rate:.2f}"
+    text = num(rate, 2)
     if float(text) != threshold or rate == threshold:
         return text
     step = math.floor if rate < threshold else math.ceil
-    return f"{step(rate * 1000) / 1000:.3f}"
+    return num(step(rate * 1000) / 1000, 3)
 
 
 def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
@@ -127,7 +126,7 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
                for w in wins)  # fmt: skip
 
     def explain() -> tuple[str, dict[str, Any]]:
-        vols = ", ".join(f"{w.volume_ml:.0f}" for w in wins)
+        vols = ", ".join(num(w.volume_ml) for w in wins)
         return (
             f"last {len(wins)} hours {vols} mL "
             f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL)",
@@ -170,7 +169,7 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     return Finding(
         cond,
         lambda: (
-            f"{_ml(w.volume_ml)} in the last {length / 60:.1f} h "
+            f"{_ml(w.volume_ml)} in the last {num(length / 60, 1)} h "
             f"(alarm above {_ml(c.threshold_ml)})",
             {"window": w.to_json(), "threshold_ml": c.threshold_ml},
         ),
@@ -205,10 +204,12 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
 
         def explain_mean() -> tuple[str, dict[str, Any]]:
             ev = (
-                _weight_evidence(v) | base | {"window": w.to_json(), "rate_ml_kg_h": round(rate, 3)}
+                _weight_evidence(v)
+                | base
+                | {"window": w.to_json(), "rate_ml_kg_h": half_up(rate, 3)}
             )
             if not w.covered:
-                return f"window only {w.coverage:.0%} measured", ev
+                return f"window only {pct(w.coverage)} measured", ev
             return (
                 f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over {c.window_h} h "
                 f"({_ml(w.volume_ml)} at {kg:g} kg; alarm below {c.threshold_ml_kg_h:g})",
@@ -227,13 +228,13 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
 
     def explain_hours() -> tuple[str, dict[str, Any]]:
         ev = _weight_evidence(v) | base | {
-            "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [round(x, 3) for x in rates],
+            "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [half_up(x, 3) for x in rates],
         }  # fmt: skip
         if not covered:
             return "not every hour in the window is measured", ev
         return (
             f"every hour of the last {c.window_h} h below {c.threshold_ml_kg_h:g} mL/kg/h "
-            f"(highest {max(rates):.2f})",
+            f"(highest {num(max(rates), 2)})",
             ev,
         )
 
@@ -249,9 +250,9 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
 
     def explain() -> tuple[str, dict[str, Any]]:
         ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml,
-              "volume_scaled_ml": round(scaled, 1)}  # fmt: skip
+              "volume_scaled_ml": half_up(scaled, 1)}  # fmt: skip
         if not w.covered:
-            return f"window only {w.coverage:.0%} measured", ev
+            return f"window only {pct(w.coverage)} measured", ev
         return (
             f"{_ml(scaled)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
             ev,
@@ -285,11 +286,11 @@ def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
     return Finding(
         cond,
         lambda: (
-            f"no urine flow for {run} min after {rate:.2f} mL/kg/h before: check the catheter "
+            f"no urine flow for {run} min after {num(rate, 2)} mL/kg/h before: check the catheter "
             "(kinked, clamped or blocked?)",
             _weight_evidence(v) | {
                 "stopped_min": run, "stopped_since": iso((stop_end + 1) * 60.0),
-                "before": before.to_json(), "before_rate_ml_kg_h": round(rate, 3),
+                "before": before.to_json(), "before_rate_ml_kg_h": half_up(rate, 3),
                 "threshold_stopped_min": c.stopped_min, "max_ml": c.max_ml,
             },
         ),
@@ -327,7 +328,7 @@ def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
     return Finding(
         gap >= c.max_gap_s,
         lambda: (
-            f"no usable reading for {gap / 3600:.1f} h (limit {c.max_gap_s / 3600:g} h)",
+            f"no usable reading for {num(gap / 3600, 1)} h (limit {c.max_gap_s / 3600:g} h)",
             {"last_accepted": iso(since), "gap_s": round(gap), "max_gap_s": c.max_gap_s},
         ),
         due=None if gap >= c.max_gap_s else since + c.max_gap_s,
@@ -346,14 +347,14 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
     cond = judged and (share < c.ratio if c.direction == "below" else share > c.ratio)
 
     def explain() -> tuple[str, dict[str, Any]]:
-        ev = {"window": w.to_json(), "intake_ml": round(intake, 1), "ratio": c.ratio}
+        ev = {"window": w.to_json(), "intake_ml": half_up(intake, 1), "ratio": c.ratio}
         if not judged:
             return "output too small to judge replacement", ev
         word = "below" if c.direction == "below" else "above"
         return (
-            f"documented intake {_ml(intake)} is {share:.0%} of output {_ml(w.volume_ml)} "
-            f"over {c.window_h} h (alarm {word} {c.ratio:.0%})",
-            ev | {"intake_share": round(share, 3)},
+            f"documented intake {_ml(intake)} is {pct(share)} of output {_ml(w.volume_ml)} "
+            f"over {c.window_h} h (alarm {word} {pct(c.ratio)})",
+            ev | {"intake_share": half_up(share, 3)},
         )
 
     return Finding(cond, explain)
@@ -384,25 +385,25 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
         due = vit.time + c.vitals_max_age_s
         if vit.heart_rate is not None and vit.systolic is not None:
             si = shock_index(vit.heart_rate, vit.systolic)
-            ev["shock_index"] = round(si, 2)
+            ev["shock_index"] = half_up(si, 2)
             if si >= c.shock_index_at_least:
-                signs.append(f"shock index {si:.2f}")
+                signs.append(f"shock index {num(si, 2)}")
         mean = vit.mean
         if mean is None and vit.systolic is not None and vit.diastolic is not None:
             mean = mean_arterial_pressure(vit.systolic, vit.diastolic)
         if mean is not None:
-            ev["map_mmhg"] = round(mean, 1)
+            ev["map_mmhg"] = half_up(mean, 1)
             if mean < c.map_below_mmhg:
-                signs.append(f"MAP {mean:.0f} mmHg")
+                signs.append(f"MAP {num(mean)} mmHg")
         if vit.heart_rate is not None and vit.heart_rate > c.heart_rate_above:
-            signs.append(f"heart rate {vit.heart_rate:.0f}/min")
+            signs.append(f"heart rate {num(vit.heart_rate)}/min")
     balance_low = False
     kg = _weight(v)
     if kg is not None and v.bed.intake_times:  # balance only when intake is documented
         w = measure(v.bed.series, end, c.balance_window_h * 60, v.bed.residual)
         lo, hi = window_bounds(end, c.balance_window_h * 60)
         net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
-        ev |= {"net_balance_ml": round(net, 1), "balance_ml_kg": round(net / kg, 2)}
+        ev |= {"net_balance_ml": half_up(net, 1), "balance_ml_kg": half_up(net / kg, 2)}
         balance_low = net / kg < c.balance_below_ml_kg
     what = ", ".join(signs + (["negative fluid balance"] if balance_low else [])) or "no sign"
     return Finding(

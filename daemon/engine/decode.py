@@ -11,6 +11,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
+from .numbers import num
 from .outcomes import Outcome
 from .profiles import UNIT_ALIASES, DeviceProfile, Encoding, Semantics, TimeFormat
 from .timefmt import TimeError, parse_epoch, parse_iso
@@ -206,7 +207,7 @@ class Decoder:
         volume_ml = self.to_ml(value, unit)
         if not (self._min <= volume_ml <= self._max):
             return Rejected(
-                Outcome.OUT_OF_RANGE, f"{volume_ml:.1f} mL outside physical range", device_id
+                Outcome.OUT_OF_RANGE, f"{num(volume_ml, 1)} mL outside physical range", device_id
             )
 
         seq: int | None = None

@@ -34,6 +34,11 @@ def ml(value: float) -> str:
     return f"{num(value)} mL"
 
 
+def pct(fraction: float, digits: int = 0) -> str:
+    """A share for a person: 0.9 -> '90%'."""
+    return f"{num(100 * fraction, digits)}%"
+
+
 def span(low: float, high: float, digits: int = 0) -> str:
     """'115–173', or one number when both ends read the same."""
     a, b = num(low, digits), num(high, digits)

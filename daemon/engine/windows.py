@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from .numbers import half_up
 from .series import MinuteSeries
 from .timefmt import iso
 
@@ -61,10 +62,10 @@ class Window:
             "from": iso(lo * 60.0),  # window (from, to]: minutes lo .. hi-1
             "to": iso(hi * 60.0),
             "length_min": self.length_min,
-            "volume_ml": round(self.volume_ml, 1),
-            "coverage": round(self.coverage, 3),
-            "estimated_fraction": round(self.estimated_min / self.length_min, 3),
-        } | ({"residual_ml": round(self.residual_ml, 1)} if self.residual_ml else {})
+            "volume_ml": half_up(self.volume_ml, 1),
+            "coverage": half_up(self.coverage, 3),
+            "estimated_fraction": half_up(self.estimated_min / self.length_min, 3),
+        } | ({"residual_ml": half_up(self.residual_ml, 1)} if self.residual_ml else {})
 
 
 Spans = tuple[tuple[int, int], ...]

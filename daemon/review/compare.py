@@ -14,6 +14,7 @@ import statistics
 from dataclasses import dataclass, field
 from typing import Any
 
+from ..engine.numbers import half_up, num, pct
 from ..engine.timefmt import iso
 from .episodes import Episode
 from .verdicts import Annotation
@@ -79,7 +80,7 @@ def match(a: RunSummary, b: RunSummary) -> Match:
 def _burden(run: RunSummary, eps: list[Episode]) -> dict[str, float]:
     per_day = len(eps) / run.bed_days if run.bed_days > 0 else 0.0
     minutes = sum(e.minutes_in_alarm(run.end) for e in eps)
-    return {"alarms_per_bed_day": round(per_day, 3), "minutes_in_alarm": round(minutes, 1)}
+    return {"alarms_per_bed_day": half_up(per_day, 3), "minutes_in_alarm": half_up(minutes, 1)}
 
 
 def _delays(pairs: list[tuple[Episode, Episode]]) -> dict[str, Any]:
@@ -88,9 +89,9 @@ def _delays(pairs: list[tuple[Episode, Episode]]) -> dict[str, Any]:
         return {"n": 0}
     return {
         "n": len(d),
-        "median_min": round(statistics.median(d), 1),
-        "min_min": round(min(d), 1),
-        "max_min": round(max(d), 1),
+        "median_min": half_up(statistics.median(d), 1),
+        "min_min": half_up(min(d), 1),
+        "max_min": half_up(max(d), 1),
         "changed": sum(1 for x in d if x != 0.0),
     }
 
@@ -113,7 +114,7 @@ def annotation_stats(anns: list[Annotation], run: RunSummary) -> dict[str, Any]:
     act_kept = sum(1 for a in act if kept(a, run) is not None)
     non_kept = sum(1 for a in non if kept(a, run) is not None)
     raised = act_kept + non_kept
-    ppv = round(act_kept / raised, 3) if raised >= MIN_ANNOTATED_FOR_PPV else None
+    ppv = half_up(act_kept / raised, 3) if raised >= MIN_ANNOTATED_FOR_PPV else None
     return {
         "actionable": len(act),
         "actionable_kept": act_kept,
@@ -152,8 +153,8 @@ def compare(a: RunSummary, b: RunSummary, anns: list[Annotation] | None = None) 
     out: dict[str, Any] = {
         "a": a.label,
         "b": b.label,
-        "bed_days_a": round(a.bed_days, 3),
-        "bed_days_b": round(b.bed_days, 3),
+        "bed_days_a": half_up(a.bed_days, 3),
+        "bed_days_b": half_up(b.bed_days, 3),
         "rules": per_rule[:-1],
         "total": total,
         "differences": total["only_a"]
@@ -178,7 +179,7 @@ def _ep(e: Episode, run: RunSummary) -> dict[str, Any]:
         "rule": e.rule,
         "priority": str(e.priority),
         "activated": iso(e.activated or e.onset),
-        "minutes_in_alarm": round(e.minutes_in_alarm(run.end), 1),
+        "minutes_in_alarm": half_up(e.minutes_in_alarm(run.end), 1),
     }
 
 
@@ -187,7 +188,12 @@ def _delay_text(d: dict[str, Any]) -> str:
         return "-"
     if d["min_min"] == d["max_min"]:
         return f"{d['median_min']:+.0f}"
-    return f"{d['median_min']:+.0f} [{d['min_min']:+.0f}..{d['max_min']:+.0f}]"
+    return f"{_signed(d['median_min'])} [{_signed(d['min_min'])}..{_signed(d['max_min'])}]"
+
+
+def _signed(minutes: float) -> str:
+    text = num(minutes)
+    return text if text.startswith("-") else f"+{text}"
 
 
 def text(c: dict[str, Any]) -> list[str]:
@@ -195,7 +201,8 @@ def text(c: dict[str, Any]) -> list[str]:
         "What-if comparison on the same recorded data",
         f"  A: {c['a']}",
         f"  B: {c['b']}",
-        f"  monitored: {c['bed_days_a']:.2f} bed-days under A, {c['bed_days_b']:.2f} under B",
+        f"  monitored: {num(c['bed_days_a'], 2)} bed-days under A, "
+        f"{num(c['bed_days_b'], 2)} under B",
         "",
         f"  {'rule':<22} {'A':>4} {'B':>4} {'only A':>7} {'only B':>7} {'both':>5} "
         f"{'B-A min to alarm':>17} {'per bed-day A':>14} {'B':>6} {'min in alarm A':>15} {'B':>8}",
@@ -206,8 +213,8 @@ def text(c: dict[str, Any]) -> list[str]:
         lines.append(
             f"  {row['rule']:<22} {row['a']:>4} {row['b']:>4} {row['only_a']:>7} "
             f"{row['only_b']:>7} {row['both']:>5} {delay:>17} "
-            f"{ba['alarms_per_bed_day']:>14.2f} {bb['alarms_per_bed_day']:>6.2f} "
-            f"{ba['minutes_in_alarm']:>15.0f} {bb['minutes_in_alarm']:>8.0f}"
+            f"{num(ba['alarms_per_bed_day'], 2):>14} {num(bb['alarms_per_bed_day'], 2):>6} "
+            f"{num(ba['minutes_in_alarm']):>15} {num(bb['minutes_in_alarm']):>8}"
         )
     lines.append("")
     if c["differences"] == 0:
@@ -217,7 +224,7 @@ def text(c: dict[str, Any]) -> list[str]:
             lines.append(
                 f"  only under {name}: {e['alarm_id']} ({e['priority']}, active from "
                 f"{e['activated'][:16].replace('T', ' ')}, "
-                f"{e['minutes_in_alarm']:.0f} min in alarm)"
+                f"{num(e['minutes_in_alarm'])} min in alarm)"
             )
     ann = c.get("annotations")
     if ann is not None:
@@ -231,7 +238,7 @@ def text(c: dict[str, Any]) -> list[str]:
             for side in ("a", "b"):
                 s = ann[side]
                 ppv = (
-                    f"PPV {s['ppv']:.0%}"
+                    f"PPV {pct(s['ppv'])}"
                     if s["ppv"] is not None
                     else f"PPV not shown (fewer than {s['ppv_min_annotated']} annotated "
                     "alarms raised)"

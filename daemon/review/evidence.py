@@ -15,6 +15,7 @@ import numpy as np
 
 from ..engine import rules as r
 from ..engine.bedstate import BedState
+from ..engine.numbers import half_up, num
 from ..engine.series import ESTIMATED, MEASURED, UNKNOWN
 from ..engine.timefmt import iso
 from ..engine.windows import COVERED_FRACTION, Window, hours_ending, measure, window_bounds
@@ -53,7 +54,7 @@ class WindowFact:
             "estimated_min": w.estimated_min,
             "unknown_min": self.unknown_min,
             "covered": w.covered,
-            "minute_volume_ml": round(self.minute_volume_ml, 1),
+            "minute_volume_ml": half_up(self.minute_volume_ml, 1),
             "threshold": self.threshold,
             "meets_condition": self.meets,
             "unmeasured_runs": self.unmeasured_runs,
@@ -105,7 +106,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
     if isinstance(c, r.HourlyAbove):
         sign = ">" if c.comparator == "gt" else ">="
         thr = {"volume_ml": c.threshold_ml_h, "comparator": sign}
-        wins = hours_ending(series, end, c.consecutive_hours)
+        wins = hours_ending(series, end, c.consecutive_hours, bed.residual)
         n = len(wins)
         return [
             _fact(
@@ -123,10 +124,12 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
         first = series.first_minute
         if c.since_start_if_shorter and first is not None:
             length = min(length, end - first + 1)
-        w = measure(series, end, length)
+        w = measure(series, end, length, bed.residual)
         thr = {"volume_ml": c.threshold_ml, "comparator": ">"}
         return [
-            _fact(bed, f"last {length / 60:.1f} h", "window", w, thr, w.volume_ml > c.threshold_ml)
+            _fact(
+                bed, f"last {num(length / 60, 1)} h", "window", w, thr, w.volume_ml > c.threshold_ml
+            )
         ]
     if isinstance(c, r.RateBelow):
         if kg is None:
@@ -137,7 +140,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
                 "rate_ml_kg_h": c.threshold_ml_kg_h,
                 "comparator": "<",
                 "weight_kg": kg,
-                "volume_ml": round(c.threshold_ml_kg_h * kg * c.window_h, 1),
+                "volume_ml": half_up(c.threshold_ml_kg_h * kg * c.window_h, 1),
             }
             meets = w.covered and w.rate_ml_kg_h(kg) < c.threshold_ml_kg_h
             return [_fact(bed, f"last {c.window_h} h (mean)", "window", w, thr, meets)]
@@ -145,7 +148,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
             "rate_ml_kg_h": c.threshold_ml_kg_h,
             "comparator": "<",
             "weight_kg": kg,
-            "volume_ml": round(c.threshold_ml_kg_h * kg, 1),
+            "volume_ml": half_up(c.threshold_ml_kg_h * kg, 1),
         }
         wins = hours_ending(series, end, c.window_h)
         return [
@@ -191,7 +194,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
         ]
         return facts
     if isinstance(c, r.ReplacementRatio):
-        w = measure(series, end, c.window_h * 60)
+        w = measure(series, end, c.window_h * 60, bed.residual)
         lo, hi = window_bounds(end, c.window_h * 60)
         intake = bed.intake_between(lo * 60.0, hi * 60.0)
         judged = w.volume_ml >= c.min_output_ml
@@ -201,15 +204,26 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
         thr = {
             "intake_share": c.ratio,
             "comparator": word,
-            "intake_ml": round(intake, 1),
+            "intake_ml": half_up(intake, 1),
             "min_output_ml": c.min_output_ml,
         }
         return [_fact(bed, f"last {c.window_h} h", "window", w, thr, meets)]
     if isinstance(c, r.Hypovolemia):
-        w = measure(series, end, 60)
+        w = measure(series, end, 60, bed.residual)
         thr = {"volume_ml": c.hourly_above_ml, "comparator": ">"}
         return [_fact(bed, "last hour", "hour", w, thr, w.volume_ml > c.hourly_above_ml)]
     return []
+
+
+def residual_drains(bed: BedState) -> list[dict[str, Any]]:
+    """The bladder's retained content drained after each relief: its span and volume
+    (left out of the high-output criteria and the advice)."""
+    out = []
+    for lo, hi in bed.residual:
+        s = bed.series.sums(lo, hi)
+        out.append({"from": iso(lo * 60.0), "to": iso(hi * 60.0),
+                    "volume_ml": half_up(s.volume_ml, 1)})  # fmt: skip
+    return out
 
 
 def lookup(evidence: dict[str, Any], key: str) -> Any:

@@ -23,13 +23,14 @@ from ..engine.effects import Effect
 from ..engine.engine import Engine, ReadingTrace
 from ..engine.escalation import EscalationPolicy
 from ..engine.evaluator import OPEN
+from ..engine.numbers import half_up, num, pct
 from ..engine.outcomes import COUNTED_IN_SERIES, Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
 from ..engine.timefmt import iso
 from ..errors import UserError
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
-from .evidence import WindowFact, compare, windows_at
+from .evidence import WindowFact, compare, residual_drains, windows_at
 from .recorder import CODE, OUTCOMES, Recorder, effective_time, run, warn_about
 
 ALARM_ID = re.compile(r"^([^/]+)/([a-z0-9][a-z0-9-]*)/(\d{8}T\d{6}Z)(\.\d+)?$")
@@ -145,6 +146,9 @@ class Follower:
                 "weight_kg": ctx.weight_kg,
                 "weight_basis": ctx.weight_basis,
                 "disabled_rules": list(ctx.disabled_rules),
+                "episodes": [e.model_dump(mode="json") for e in ctx.episodes],
+                "replacement_order": None if ctx.replacement is None else ctx.replacement.to_json(),
+                "residual_drained": residual_drains(bed),
             },
             quality=quality,
             reading_counts=counts,
@@ -373,7 +377,7 @@ def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict
             "received": iso(tr.received),
             "device_time": iso(tr.device_time) if tr.device_time is not None else None,
             "time_used": iso(t),
-            "volume_ml": round(tr.volume_ml, 2) if tr.volume_ml is not None else None,
+            "volume_ml": half_up(tr.volume_ml, 2) if tr.volume_ml is not None else None,
             "outcome": str(outcome),
             "counted": outcome in COUNTED,
             "meaning": words(outcome),
@@ -472,14 +476,14 @@ def _thr(t: dict[str, Any]) -> str:
     elif "intake_share" in t:
         parts.append(
             f"intake {t['intake_ml']:g} mL; alarm when intake {t['comparator']} "
-            f"{t['intake_share']:.0%} of output (output >= {t['min_output_ml']:g} mL)"
+            f"{pct(t['intake_share'])} of output (output >= {t['min_output_ml']:g} mL)"
         )
     elif "volume_ml" in t:
         parts.append(f"{t['comparator']} {t['volume_ml']:g} mL")
     if "minutes_at_least" in t:
         parts.append(f"for >= {t['minutes_at_least']} min")
     if "coverage_at_least" in t:
-        parts.append(f"and >= {t['coverage_at_least']:.0%} measured")
+        parts.append(f"and >= {pct(t['coverage_at_least'])} measured")
     return " ".join(parts)
 
 
@@ -522,6 +526,11 @@ def text(d: dict[str, Any]) -> list[str]:
                 f"unknown {w['unknown_min']}"
             )
             lines.append(f"  {'':<22} threshold {_thr(w['threshold'])}: {mark} its part")
+            if w.get("residual_ml"):
+                lines.append(
+                    f"  {'':<22} residual drained: {num(w['residual_ml'])} mL inside, left out "
+                    "(the bladder's retained content after relief)"
+                )
             for run_ in w["unmeasured_runs"][:6]:
                 lines.append(
                     f"  {'':<22} {run_['state']} minutes {_when(run_['from'])} .. "
@@ -586,6 +595,21 @@ def text(d: dict[str, Any]) -> list[str]:
         lines.append(
             f"Bed context: meters {', '.join(ctx['device_ids'])}; weight {w}; "
             f"rules disabled on this bed: {', '.join(ctx['disabled_rules']) or 'none'}"
+        )
+        for ep_ in ctx.get("episodes", []):
+            lines.append(f"  episode: {ep_['kind']} at {_when(ep_['at'])} UTC")
+        for res in ctx.get("residual_drained", []):
+            lines.append(
+                f"  residual drained: {num(res['volume_ml'])} mL ({_when(res['from'])} .. "
+                f"{_when(res['to'])}): the bladder's retained content, not counted as output"
+            )
+        order = ctx.get("replacement_order")
+        lines.append(
+            "  replacement order: none on file"
+            if order is None
+            else f"  replacement order: {pct(order['fraction'][0])}-{pct(order['fraction'][1])} "
+            f"of output as {order['fluid']}, by {order['ordered_by']} at "
+            f"{_when(order['ordered_at'])} UTC"
         )
     q = d.get("data_quality") or {}
     if q:
@@ -662,7 +686,7 @@ def _reading_lines(readings: list[dict[str, Any]], windowed: bool = True) -> lis
         lines.append(f"  (showing the {len(shown)} that were not plain accepted; --json lists all)")
     lines.append(f"  {'meter':<10} {'time used (UTC)':<19} {'received':<19} {'mL':>8}  outcome")
     for r in shown:
-        vol = f"{r['volume_ml']:8.1f}" if r["volume_ml"] is not None else f"{'-':>8}"
+        vol = f"{num(r['volume_ml'], 1):>8}" if r["volume_ml"] is not None else f"{'-':>8}"
         later = f" (settled later as {r['settled_later_as']})" if "settled_later_as" in r else ""
         prev = (
             f"; settled the held reading before as {r['also_settled_previous_as']}"

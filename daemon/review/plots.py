@@ -27,6 +27,7 @@ from matplotlib.ticker import FixedLocator, FuncFormatter
 from ..engine import rules as r
 from ..engine.alarms import URGENCY, Priority
 from ..engine.effects import AdviceIssued
+from ..engine.numbers import half_up
 from ..engine.outcomes import Outcome
 from ..engine.series import ESTIMATED, UNKNOWN, MinuteSeries
 from .episodes import Episode
@@ -153,9 +154,9 @@ def _thresholds(pic: BedPicture) -> tuple[list[tuple[float, str]], list[tuple[fl
             day.setdefault(c.threshold_ml, []).append(rule.id)
         elif isinstance(c, r.RateBelow) and kg is not None:
             if c.window_h == 24:
-                day.setdefault(round(c.threshold_ml_kg_h * kg * 24, 1), []).append(rule.id)
+                day.setdefault(half_up(c.threshold_ml_kg_h * kg * 24, 1), []).append(rule.id)
             else:
-                hourly.setdefault(round(c.threshold_ml_kg_h * kg, 1), []).append(
+                hourly.setdefault(half_up(c.threshold_ml_kg_h * kg, 1), []).append(
                     f"{rule.id} ({c.threshold_ml_kg_h:g} mL/kg/h, {c.mode} of {c.window_h} h)"
                 )
     return (

@@ -17,10 +17,12 @@ from pathlib import Path
 from typing import Any
 
 from ..caution import CAUTION
+from ..engine.numbers import num, pct
 from ..engine.outcomes import Outcome
 from ..engine.timefmt import iso
 from .compare import RunSummary, summarize
 from .episodes import Episode
+from .evidence import residual_drains
 from .explain import Review, explanation, lifecycle_lines
 from .plots import PRIORITY_COLOUR, BedPicture, draw, png
 from .recorder import ARTEFACTS, BAG_CHANGES
@@ -176,7 +178,7 @@ def _overview(inp: ReportInput, rv: Review, run: RunSummary) -> str:
         ),
         ("rules", inp.rules_label),
         ("device profiles", inp.profiles_label),
-        ("beds", f"{len(engine.beds)} ({run.bed_days:.2f} bed-days monitored)"),
+        ("beds", f"{len(engine.beds)} ({num(run.bed_days, 2)} bed-days monitored)"),
         (
             "alarms raised",
             f"{len(raised)}"
@@ -186,7 +188,7 @@ def _overview(inp: ReportInput, rv: Review, run: RunSummary) -> str:
                 else ""
             ),
         ),
-        ("alarm burden", f"{per_day:.2f} alarms per bed-day, {minutes:,.0f} minutes in alarm"),
+        ("alarm burden", f"{num(per_day, 2)} alarms per bed-day, {num(minutes)} minutes in alarm"),
         (
             "never annunciated",
             f"{len(rv.episodes) - len(raised)} (pending, suppressed or cleared before activation)",
@@ -226,7 +228,7 @@ def _alarm_table(raised: list[Episode], all_eps: list[Episode], end: float) -> s
             f'<tr><td><a href="#{anchor("alarm", ep.alarm_id)}">{_e(ep.alarm_id)}</a></td>'
             f'<td><a href="#{anchor("bed", ep.bed)}">{_e(ep.bed)}</a></td><td>{_e(ep.rule)}</td>'
             f"<td>{_prio(ep.priority)}</td><td>{_t(ep.activated)}</td><td>{_t(ep.ended)}</td>"
-            f'<td class="n">{ep.minutes_in_alarm(end):.0f}</td><td>{_e(acks)}</td>'
+            f'<td class="n">{num(ep.minutes_in_alarm(end))}</td><td>{_e(acks)}</td>'
             f"<td>{_e('; '.join(notes))}</td></tr>"
         )
     return f"<p>{len(raised)} raised.</p><table>{head}{''.join(rows)}</table>"
@@ -262,10 +264,22 @@ def _bed_section(pic: BedPicture, rv: Review, plots_dir: Path | None) -> str:
         if ctx.disabled_rules
         else ""
     )
+    order = ctx.replacement
+    facts = [f"{e.kind.replace('_', ' ')} {_t(e.at.timestamp())}" for e in ctx.episodes] + [
+        f"residual drained: {num(d['volume_ml'])} mL ({_t_iso(d['from'])[11:16]}-"
+        f"{_t_iso(d['to'])[11:16]}), not counted as output"
+        for d in residual_drains(engine.beds[pic.bed])
+    ]
+    facts.append(
+        "replacement order: none on file"
+        if order is None
+        else f"replacement order: {pct(order.fraction_low)}-{pct(order.fraction_high)} of "
+        f"output as {order.fluid}, by {order.ordered_by} at {_t(order.ordered_at.timestamp())}"
+    )
     return (
         f'<h3 id="{anchor("bed", pic.bed)}">Bed {_e(pic.bed)}</h3>'
         f"<p>Ward {_e(ctx.ward)} · meters {_e(', '.join(ctx.device_ids))} · {_e(weight)}"
-        f"{_e(disabled)}</p>"
+        f"{_e(disabled)}</p><p>{_e(' · '.join(facts))}</p>"
         f'<img class="plot" src="data:image/png;base64,{b64}" alt="{_e(alt)}">'
         '<p class="muted">Top: output in the 60 minutes ending at each minute, with alarm '
         "spans shaded by priority (darker = more urgent), bag changes (triangles) and "
@@ -308,7 +322,7 @@ def _explanation(d: dict[str, Any], ep: Episode) -> str:
     if wins:
         rows = "".join(
             f"<tr><td>{_e(w['label'])}</td><td>{_t_iso(w['from'])}</td><td>{_t_iso(w['to'])}</td>"
-            f'<td class="n">{w["volume_ml"]:.1f}</td><td class="n">{w["coverage"]:.1%}</td>'
+            f'<td class="n">{num(w["volume_ml"], 1)}</td><td class="n">{pct(w["coverage"], 1)}</td>'
             f'<td class="n">{w["estimated_min"]}</td><td class="n">{w["unknown_min"]}</td>'
             f"<td>{_e(_fmt_thr(w['threshold']))}</td>"
             f"<td>{'yes' if w['meets_condition'] else 'no'}</td>"
