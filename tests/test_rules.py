@@ -224,6 +224,9 @@ def test_pod_24h_alone() -> None:
     assert ev.time == at(minutes=1385)
     assert ev.priority is Priority.MEDIUM
     assert "pod-hourly" not in w.fired() and w.alarms("pod-hourly") == []
+    # no replacement prompts: replacement starts when output stays above 200 mL/h (common
+    # practice, CLINICAL-REFERENCE §1); the 24-h criterion pages, the hourly one advises
+    assert w.advice() == [] and "replacement-behind" not in w.fired()
 
 
 def _burst_hours(per_hour_ml: float, hours: int = 2) -> list[float]:
