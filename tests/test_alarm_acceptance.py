@@ -50,7 +50,9 @@ KDIGO = {  # rule id: (window h, mL/kg/h); source: KDIGO 2012 AKI guideline, Tab
     "oliguria-kdigo-2": (12, 0.5),
     "oliguria-kdigo-3": (24, 0.3),
 }
-ANURIA_ML_12H = 10.0  # < 10 mL in 12 h: Hourwatch's own threshold (KDIGO 2012: anuria >= 12 h)
+# < 50 mL in 12 h: anuria < 100 mL/day (Klahr & Miller, NEJM 1998, from memory); KDIGO 2012:
+# anuria for >= 12 h is stage 3
+ANURIA_ML_12H = 50.0
 COVERED = 0.9  # low-output windows judged only when >= 90% measured: DESIGN §3
 FLOW_STOPPED = (60, 2.0)  # <= 2 mL in 60 min: common practice, no single source
 REPLACEMENT_MIN_OUTPUT_ML = 100.0  # replacement judged from 100 mL in 2 h: Hourwatch's own
@@ -105,7 +107,7 @@ POD = Scenario(
 # broken by two brisk 20-minute responses to diuretic boluses (900 mL/h, 300 mL each,
 # 3 h apart). KDIGO stage 1 is met when the second response leaves the 6-h window and
 # stage 2 when the first leaves the 12-h window, both on fully measured windows, with
-# the window falling 15 mL a minute. Stage 3 (24 h), anuria (6 mL/h is not < 10 mL in
+# the window falling 15 mL a minute. Stage 3 (24 h), anuria (6 mL/h is not < 50 mL in
 # 12 h), flow-stopped (6 mL in any hour is flow) and both POD criteria (a 20-minute
 # response fills only one rolling hour past 200 mL; 1 L in all) are never met.
 OLIGURIA = Scenario(
@@ -198,13 +200,16 @@ def truth_crossings(
     out["pod-hourly"] = _first(both, np.ones(n, bool), POD_HOURLY_ML, True, "pod-hourly")
     w24, _ = win(1440)  # since the start when shorter: minutes before it count nothing
     out["pod-24h"] = _first(w24, np.ones(n, bool), POD_24H_ML, True, "pod-24h")
+    # a duration criterion ("for 6 h") is judged only once its whole window lies after the
+    # first reading (DESIGN §3): minute 0 is the baseline's, so from minute `length` on
     for rid, (hours, rate) in KDIGO.items():
         v, k = win(hours * 60)
-        ok = k >= COVERED * hours * 60
+        ok = (k >= COVERED * hours * 60) & (np.arange(n) >= hours * 60)
         limit = rate * weight_kg * hours  # mL in the window
         out[rid] = _first(v, ok, limit, False, rid)
     v12, k12 = win(720)
-    out["anuria-12h"] = _first(v12, k12 >= COVERED * 720, ANURIA_ML_12H, False, "anuria-12h")
+    ok12 = (k12 >= COVERED * 720) & (np.arange(n) >= 720)
+    out["anuria-12h"] = _first(v12, ok12, ANURIA_ML_12H, False, "anuria-12h")
     # flow-stopped: our scenarios never have a quiet hour, so it is never met
     v60, k60 = win(FLOW_STOPPED[0])
     assert not np.any((k60 == FLOW_STOPPED[0]) & (v60 <= FLOW_STOPPED[1])), "not modelled"

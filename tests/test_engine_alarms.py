@@ -289,10 +289,12 @@ def test_low_output_evidence_has_windows_thresholds_and_weight() -> None:
     assert isinstance(win, dict)
     assert win["length_min"] == 360
     assert win["coverage"] >= 0.9  # judged only on a covered window (DESIGN §3)
-    assert win["volume_ml"] == pytest.approx(28.0 / 60 * 324, abs=0.2)  # 324 measured min
-    # the rate is over the minutes with data (324 of 360): the rest is not "no urine"
+    # judged once the whole 6 h have passed since the first reading (KDIGO 2012: "for 6 h")
+    assert ev.time == T0 + 6 * HOUR
+    assert win["volume_ml"] == pytest.approx(28.0 * 6, abs=0.2)  # 360 measured min
+    # the rate is over the minutes with data: here all of them
     known_h = 6 * (win["coverage"] + win["estimated_fraction"])
-    assert known_h == pytest.approx(5.4)
+    assert known_h == pytest.approx(6.0)
     assert e["rate_ml_kg_h"] == pytest.approx(win["volume_ml"] / 72.5 / known_h, abs=0.001)
     assert {"from", "to"} <= set(win)
 

@@ -93,6 +93,7 @@ def test_export_of_one_bed(night_journal: Path, capsys) -> None:
     assert topics == {
         "hourwatch/beds/bed-02/context",
         "hourwatch/beds/bed-02/intake",
+        "hourwatch/beds/bed-02/labs",
         "wardscale/gs-0201/mass",
         "hourwatch/ack",
     }

@@ -19,7 +19,7 @@ from .haemo import mean_arterial_pressure, shock_index
 from .numbers import half_up, ml, num, pct
 from .series import MinuteSeries
 from .timefmt import iso
-from .windows import Window, hours_ending, measure, window_bounds
+from .windows import Window, above, below, hours_ending, measure, tenths, window_bounds
 
 
 class DeviceSeen(NamedTuple):  # a tuple: one is made per meter at every evaluation
@@ -106,6 +106,25 @@ def _quiet_until(w: Window, series: MinuteSeries, threshold_ml: float) -> int | 
 _ml = ml
 
 
+def _vol(x: float, threshold: float) -> str:
+    """A volume in whole mL, or to the tenth where whole mL would read as the threshold
+    itself (comparisons are made to the tenth: a page never contradicts its threshold)."""
+    text = num(x)
+    return num(x, 1) if text == num(threshold) and tenths(x) != tenths(threshold) else text
+
+
+def _elapsed_quiet(v: BedView, end: int, length: int) -> int | None:
+    """A duration criterion needs its whole window after the bed's first data (DESIGN
+    §3): None once it has that; else the last minute it provably stays unmet."""
+    first = v.bed.series.first_minute
+    fits_at = (first if first is not None else end) + length - 1
+    return None if end >= fits_at else fits_at - 1
+
+
+def _later(a: int | None, b: int | None) -> int | None:
+    return b if a is None else a if b is None else max(a, b)
+
+
 def _rate(rate: float, threshold: float) -> str:
     """Two decimals; where two would round onto the threshold, three, rounded away
     from it (0.49997 is below 0.5 and reads 0.499, not 0.50)."""
@@ -122,11 +141,10 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
         return NOT_YET
     wins = hours_ending(v.bed.series, end, c.consecutive_hours, v.bed.residual)
     gt = c.comparator == "gt"
-    cond = all(w.volume_ml > c.threshold_ml_h if gt else w.volume_ml >= c.threshold_ml_h
-               for w in wins)  # fmt: skip
+    cond = all(above(w.volume_ml, c.threshold_ml_h, gt) for w in wins)
 
     def explain() -> tuple[str, dict[str, Any]]:
-        vols = ", ".join(num(w.volume_ml) for w in wins)
+        vols = ", ".join(_vol(w.volume_ml, c.threshold_ml_h) for w in wins)
         return (
             f"last {len(wins)} hours {vols} mL "
             f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL)",
@@ -165,11 +183,11 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     if c.since_start_if_shorter:
         length = min(length, end - first + 1)
     w = measure(v.bed.series, end, length, v.bed.residual)
-    cond = w.volume_ml > c.threshold_ml
+    cond = above(w.volume_ml, c.threshold_ml)
     return Finding(
         cond,
         lambda: (
-            f"{_ml(w.volume_ml)} in the last {num(length / 60, 1)} h "
+            f"{_vol(w.volume_ml, c.threshold_ml)} mL in the last {num(length / 60, 1)} h "
             f"(alarm above {_ml(c.threshold_ml)})",
             {"window": w.to_json(), "threshold_ml": c.threshold_ml},
         ),
@@ -191,16 +209,29 @@ NO_WEIGHT = Finding(
 )
 
 
+def _monitored(v: BedView, end: int) -> str:
+    first = v.bed.series.first_minute
+    return num((end - (first if first is not None else end) + 1) / 60, 1)
+
+
 def rate_below(c: r.RateBelow, v: BedView) -> Finding:
     end, kg = v.end, _weight(v)
     if kg is None:
         return NO_WEIGHT
     if end is None:
         return NOT_YET
+    length = c.window_h * 60
+    early = _elapsed_quiet(v, end, length)  # the duration has not elapsed yet
     base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
     if c.mode == "mean":
-        w = measure(v.bed.series, end, c.window_h * 60)
+        w = measure(v.bed.series, end, length)
         rate = w.rate_ml_kg_h(kg)
+        # the volume at the line over the minutes with data, compared to the tenth of a mL
+        cond = (
+            early is None
+            and w.covered
+            and below(w.volume_ml, c.threshold_ml_kg_h * kg * max(w.known_min, 1) / 60)
+        )
 
         def explain_mean() -> tuple[str, dict[str, Any]]:
             ev = (
@@ -208,28 +239,39 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
                 | base
                 | {"window": w.to_json(), "rate_ml_kg_h": half_up(rate, 3)}
             )
+            if early is not None:
+                return f"monitored for {_monitored(v, end)} of the {c.window_h} h", ev
             if not w.covered:
                 return f"window only {pct(w.coverage)} measured", ev
             return (
-                f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over {c.window_h} h "
-                f"({_ml(w.volume_ml)} at {kg:g} kg; alarm below {c.threshold_ml_kg_h:g})",
+                f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over the last {c.window_h} h "
+                f"({num(w.known_min / 60, 1)} h with data, {_ml(w.volume_ml)} at {kg:g} kg; "
+                f"alarm below {c.threshold_ml_kg_h:g})",
                 ev,
             )
 
-        cond = w.covered and rate < c.threshold_ml_kg_h
         # the rate over the known minutes is at least volume / whole window
-        quiet = None if cond else _quiet_until(
-            w, v.bed.series, c.threshold_ml_kg_h * kg * c.window_h
+        quiet = None if cond else _later(
+            early, _quiet_until(w, v.bed.series, c.threshold_ml_kg_h * kg * c.window_h)
         )  # fmt: skip
         return Finding(cond, explain_mean, quiet_until=quiet)
     wins = hours_ending(v.bed.series, end, c.window_h)
     rates = [w.rate_ml_kg_h(kg) for w in wins]
     covered = all(w.covered for w in wins)
+    cond = (
+        early is None
+        and covered
+        and all(
+            below(w.volume_ml, c.threshold_ml_kg_h * kg * max(w.known_min, 1) / 60) for w in wins
+        )
+    )
 
     def explain_hours() -> tuple[str, dict[str, Any]]:
         ev = _weight_evidence(v) | base | {
             "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [half_up(x, 3) for x in rates],
         }  # fmt: skip
+        if early is not None:
+            return f"monitored for {_monitored(v, end)} of the {c.window_h} h", ev
         if not covered:
             return "not every hour in the window is measured", ev
         return (
@@ -238,39 +280,44 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
             ev,
         )
 
-    return Finding(covered and all(x < c.threshold_ml_kg_h for x in rates), explain_hours)
+    return Finding(cond, explain_hours, quiet_until=None if cond else early)
 
 
 def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
     end = v.end
     if end is None:
         return NOT_YET
-    w = measure(v.bed.series, end, c.window_h * 60)
+    length = c.window_h * 60
+    early = _elapsed_quiet(v, end, length)
+    w = measure(v.bed.series, end, length)
     scaled = w.volume_over_length()  # missing minutes are not counted as no urine
 
     def explain() -> tuple[str, dict[str, Any]]:
         ev = {"window": w.to_json(), "threshold_ml": c.threshold_ml,
               "volume_scaled_ml": half_up(scaled, 1)}  # fmt: skip
+        if early is not None:
+            return f"monitored for {_monitored(v, end)} of the {c.window_h} h", ev
         if not w.covered:
             return f"window only {pct(w.coverage)} measured", ev
         return (
-            f"{_ml(scaled)} in the last {c.window_h} h (alarm below {_ml(c.threshold_ml)})",
+            f"{_vol(scaled, c.threshold_ml)} mL in the last {c.window_h} h "
+            f"({num(w.known_min / 60, 1)} h with data; alarm below {_ml(c.threshold_ml)})",
             ev,
         )
 
-    cond = w.covered and scaled < c.threshold_ml
-    quiet = None if cond else _quiet_until(w, v.bed.series, c.threshold_ml)
+    cond = early is None and w.covered and below(scaled, c.threshold_ml)
+    quiet = None if cond else _later(early, _quiet_until(w, v.bed.series, c.threshold_ml))
     return Finding(cond, explain, quiet_until=quiet)
 
 
 def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
+    """With a weight the flow before the stop is judged in mL/kg/h; without one in mL/h
+    (a blocked catheter must not go unseen on a bed with no weight)."""
     end, kg = v.end, _weight(v)
-    if kg is None:
-        return NO_WEIGHT
     if end is None:
         return NOT_YET
     last = measure(v.bed.series, end, c.stopped_min)
-    if last.volume_ml > c.max_ml or last.measured_min < c.stopped_min:
+    if above(last.volume_ml, c.max_ml) or last.measured_min < c.stopped_min:
         # the common case, O(1): flowing, or not all measured
         return Finding(
             False,
@@ -281,16 +328,23 @@ def flow_stopped(c: r.FlowStopped, v: BedView) -> Finding:
     run = v.bed.series.trailing_quiet(end, c.max_ml, 1440)
     stop_end = end - run  # last minute before the stop
     before = measure(v.bed.series, stop_end, c.before_min)
-    rate = before.rate_ml_kg_h(kg)
-    cond = run >= c.stopped_min and before.covered and rate >= c.before_min_ml_kg_h
+    hours = max(before.known_min, 1) / 60
+    if kg is not None:
+        rate, unit, line = before.rate_ml_kg_h(kg), "mL/kg/h", c.before_min_ml_kg_h
+        enough = not below(before.volume_ml, line * kg * hours)
+    else:
+        rate, unit, line = before.volume_ml / hours, "mL/h", c.before_min_ml_h
+        enough = not below(before.volume_ml, line * hours)
+    cond = run >= c.stopped_min and before.covered and enough
     return Finding(
         cond,
         lambda: (
-            f"no urine flow for {run} min after {num(rate, 2)} mL/kg/h before: check the catheter "
-            "(kinked, clamped or blocked?)",
+            f"no urine flow for {run} min after {num(rate, 2 if kg else 0)} {unit} before: "
+            "check the catheter (kinked, clamped or blocked?)",
             _weight_evidence(v) | {
                 "stopped_min": run, "stopped_since": iso((stop_end + 1) * 60.0),
-                "before": before.to_json(), "before_rate_ml_kg_h": half_up(rate, 3),
+                "before": before.to_json(), "before_rate": half_up(rate, 3),
+                "before_rate_unit": unit, "before_line": line,
                 "threshold_stopped_min": c.stopped_min, "max_ml": c.max_ml,
             },
         ),
@@ -342,9 +396,10 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
     w = measure(v.bed.series, end, c.window_h * 60, v.bed.residual)
     lo, hi = window_bounds(end, c.window_h * 60)
     intake = v.bed.intake_between(lo * 60.0, hi * 60.0)
-    judged = w.volume_ml >= c.min_output_ml
+    judged = not below(w.volume_ml, c.min_output_ml)
     share = intake / w.volume_ml if judged else 0.0
-    cond = judged and (share < c.ratio if c.direction == "below" else share > c.ratio)
+    line = c.ratio * w.volume_ml  # intake at the line, compared to the tenth of a mL
+    cond = judged and (below(intake, line) if c.direction == "below" else above(intake, line))
 
     def explain() -> tuple[str, dict[str, Any]]:
         ev = {"window": w.to_json(), "intake_ml": half_up(intake, 1), "ratio": c.ratio}
@@ -365,7 +420,7 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
     if end is None:
         return NOT_YET
     hour = measure(v.bed.series, end, 60, v.bed.residual)
-    if hour.volume_ml <= c.hourly_above_ml:  # the common case: nothing else to look at
+    if not above(hour.volume_ml, c.hourly_above_ml):  # the common case: nothing else to look at
         # without vitals or documented intake no sign can be found, whatever the
         # output; either arrives as an input, which re-checks every rule
         signless = not v.bed.vitals and not (v.bed.intake_times and _weight(v) is not None)
@@ -404,7 +459,7 @@ def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
         lo, hi = window_bounds(end, c.balance_window_h * 60)
         net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
         ev |= {"net_balance_ml": half_up(net, 1), "balance_ml_kg": half_up(net / kg, 2)}
-        balance_low = net / kg < c.balance_below_ml_kg
+        balance_low = below(net, c.balance_below_ml_kg * kg)
     what = ", ".join(signs + (["negative fluid balance"] if balance_low else [])) or "no sign"
     return Finding(
         bool(signs) or balance_low,

@@ -73,6 +73,8 @@ class FlowStopped(_Check):
     max_ml: Annotated[float, Field(ge=0, le=20)] = 2.0
     before_min: Annotated[int, Field(ge=30, le=720)] = 120
     before_min_ml_kg_h: Annotated[float, Field(gt=0, le=5)] = 0.5
+    # on a bed without a weight, the flow before the stop in mL/h
+    before_min_ml_h: Annotated[float, Field(gt=0, le=500)] = 30.0
 
 
 class MeterSilent(_Check):
@@ -179,7 +181,7 @@ Check = Annotated[
     Field(discriminator="type"),
 ]
 
-WEIGHT_CHECKS = (RateBelow, FlowStopped)
+WEIGHT_CHECKS = (RateBelow,)
 LOW_OUTPUT_CHECKS = (RateBelow, VolumeBelow)
 
 

@@ -7,6 +7,7 @@ else derives window edges.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from .numbers import half_up
@@ -14,6 +15,22 @@ from .series import MinuteSeries
 from .timefmt import iso
 
 COVERED_FRACTION = 0.9  # a window is covered when >= 90% of its minutes are measured
+
+
+def tenths(ml: float) -> int:
+    """A volume in whole tenths of a millilitre (half up). Volumes are compared with
+    thresholds at this resolution (DESIGN §3), so float noise in a rolling sum can never
+    turn "equal to the threshold" into "above it"."""
+    return math.floor(ml * 10.0 + 0.5)
+
+
+def above(ml: float, threshold: float, strictly: bool = True) -> bool:
+    a, b = tenths(ml), tenths(threshold)
+    return a > b if strictly else a >= b
+
+
+def below(ml: float, threshold: float) -> bool:
+    return tenths(ml) < tenths(threshold)
 
 
 def window_bounds(end_minute: int, length_min: int) -> tuple[int, int]:

@@ -18,7 +18,15 @@ from ..engine.bedstate import BedState
 from ..engine.numbers import half_up, num
 from ..engine.series import ESTIMATED, MEASURED, UNKNOWN
 from ..engine.timefmt import iso
-from ..engine.windows import COVERED_FRACTION, Window, hours_ending, measure, window_bounds
+from ..engine.windows import (
+    COVERED_FRACTION,
+    Window,
+    above,
+    below,
+    hours_ending,
+    measure,
+    window_bounds,
+)
 
 STATE_NAMES = {UNKNOWN: "unknown", ESTIMATED: "estimated", MEASURED: "measured"}
 
@@ -89,8 +97,10 @@ def _fact(
     return WindowFact(label, key, w, thr, meets, total, runs)
 
 
-def _above(x: float, thr: float, comparator: str) -> bool:
-    return x > thr if comparator == "gt" else x >= thr
+def _rate_below(w: Window, ml_per_h: float) -> bool:
+    """The check's own comparison: the window's volume against the line over the minutes
+    with data, to the tenth of a mL."""
+    return below(w.volume_ml, ml_per_h * max(w.known_min, 1) / 60)
 
 
 def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
@@ -115,7 +125,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
                 f"windows[{i}]",
                 w,
                 thr,
-                _above(w.volume_ml, c.threshold_ml_h, c.comparator),
+                above(w.volume_ml, c.threshold_ml_h, c.comparator == "gt"),
             )
             for i, w in enumerate(wins)
         ]
@@ -128,7 +138,12 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
         thr = {"volume_ml": c.threshold_ml, "comparator": ">"}
         return [
             _fact(
-                bed, f"last {num(length / 60, 1)} h", "window", w, thr, w.volume_ml > c.threshold_ml
+                bed,
+                f"last {num(length / 60, 1)} h",
+                "window",
+                w,
+                thr,
+                above(w.volume_ml, c.threshold_ml),
             )
         ]
     if isinstance(c, r.RateBelow):
@@ -142,7 +157,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
                 "weight_kg": kg,
                 "volume_ml": half_up(c.threshold_ml_kg_h * kg * c.window_h, 1),
             }
-            meets = w.covered and w.rate_ml_kg_h(kg) < c.threshold_ml_kg_h
+            meets = w.covered and _rate_below(w, c.threshold_ml_kg_h * kg)
             return [_fact(bed, f"last {c.window_h} h (mean)", "window", w, thr, meets)]
         thr = covered | {
             "rate_ml_kg_h": c.threshold_ml_kg_h,
@@ -158,19 +173,24 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
                 f"windows[{i}]",
                 w,
                 thr,
-                w.covered and w.rate_ml_kg_h(kg) < c.threshold_ml_kg_h,
+                w.covered and _rate_below(w, c.threshold_ml_kg_h * kg),
             )
             for i, w in enumerate(wins)
         ]
     if isinstance(c, r.VolumeBelow):
         w = measure(series, end, c.window_h * 60)
-        thr = covered | {"volume_ml": c.threshold_ml, "comparator": "<"}
-        meets = w.covered and w.volume_ml < c.threshold_ml
+        thr = covered | {"volume_ml": c.threshold_ml, "comparator": "<", "scaled_to_window": True}
+        meets = w.covered and below(w.volume_over_length(), c.threshold_ml)
         return [_fact(bed, f"last {c.window_h} h", "window", w, thr, meets)]
     if isinstance(c, r.FlowStopped):
-        if kg is None:
-            return []
         run = series.trailing_quiet(end, c.max_ml, 1440)
+        if kg is not None:  # the flow before the stop: mL/kg/h with a weight, else mL/h
+            per_hour = c.before_min_ml_kg_h * kg
+            before_line = {"rate_ml_kg_h": c.before_min_ml_kg_h, "comparator": ">=",
+                           "weight_kg": kg}  # fmt: skip
+        else:
+            per_hour = c.before_min_ml_h
+            before_line = {"rate_ml_h": c.before_min_ml_h, "comparator": ">="}
         quiet = measure(series, end, max(run, 1))
         before = measure(series, end - run, c.before_min)
         facts = [
@@ -187,9 +207,8 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
                 f"{c.before_min} min before the stop",
                 "before",
                 before,
-                covered
-                | {"rate_ml_kg_h": c.before_min_ml_kg_h, "comparator": ">=", "weight_kg": kg},
-                before.covered and before.rate_ml_kg_h(kg) >= c.before_min_ml_kg_h,
+                covered | before_line,
+                before.covered and not _rate_below(before, per_hour),
             ),
         ]
         return facts
@@ -197,10 +216,10 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
         w = measure(series, end, c.window_h * 60, bed.residual)
         lo, hi = window_bounds(end, c.window_h * 60)
         intake = bed.intake_between(lo * 60.0, hi * 60.0)
-        judged = w.volume_ml >= c.min_output_ml
-        share = intake / w.volume_ml if judged else 0.0
+        judged = not below(w.volume_ml, c.min_output_ml)
         word = "<" if c.direction == "below" else ">"
-        meets = judged and (share < c.ratio if c.direction == "below" else share > c.ratio)
+        line = c.ratio * w.volume_ml
+        meets = judged and (below(intake, line) if c.direction == "below" else above(intake, line))
         thr = {
             "intake_share": c.ratio,
             "comparator": word,
@@ -211,7 +230,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
     if isinstance(c, r.Hypovolemia):
         w = measure(series, end, 60, bed.residual)
         thr = {"volume_ml": c.hourly_above_ml, "comparator": ">"}
-        return [_fact(bed, "last hour", "hour", w, thr, w.volume_ml > c.hourly_above_ml)]
+        return [_fact(bed, "last hour", "hour", w, thr, above(w.volume_ml, c.hourly_above_ml))]
     return []
 
 
