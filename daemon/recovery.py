@@ -35,6 +35,7 @@ from .engine.effects import AdviceIssued, Effect
 from .engine.engine import Engine
 from .engine.evaluator import Notice
 from .engine.rules import (
+    BagFull,
     FlowStopped,
     HourlyAbove,
     Hypovolemia,
@@ -68,6 +69,8 @@ def rule_window_s(rule: RuleDef) -> float:
         return (c.stopped_min + c.before_min) * 60.0
     if isinstance(c, MeterSilent):
         return float(c.min_silence_s)
+    if isinstance(c, BagFull):
+        return 0.0  # the bag's level comes with the next reading
     if isinstance(c, NoUsableData):
         return float(c.max_gap_s)
     if isinstance(c, Hypovolemia):

@@ -48,6 +48,8 @@ DESIGN_RULES: dict[str, tuple[Kind, Priority, bool]] = {
     # high output with no relief on record: the numbers, no cause (DESIGN §4)
     "high-output": (Kind.PHYSIOLOGICAL, Priority.LOW, False),
     "high-output-24h": (Kind.PHYSIOLOGICAL, Priority.LOW, False),
+    # empty the bag before readings fail (DESIGN §4)
+    "bag-full": (Kind.REMINDER, Priority.LOW, False),
 }
 NOT_RULES = {"escalation", "advice"}
 
@@ -58,7 +60,7 @@ def shipped() -> dict[str, RuleDef]:
 
 
 def test_all_design_rules_ship(shipped: dict[str, RuleDef]) -> None:
-    assert len(DESIGN_RULES) == 23
+    assert len(DESIGN_RULES) == 24
     assert set(shipped) == set(DESIGN_RULES) == set(DEFAULT_RULE_IDS)
 
 

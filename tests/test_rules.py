@@ -470,6 +470,41 @@ def test_meter_offline_and_data_gap_fire_from_wake_ups_alone() -> None:
     assert not set(LOW_OUTPUT) & w.fired()
 
 
+def test_a_blind_meter_is_as_offline_as_a_silent_one() -> None:
+    """Every message after 02:00 is a cumulative value above the meter's range (4000 mL,
+    device_profiles/reference-cumulative.toml): out_of_range, never usable. After
+    max(5 min, 5 periods) without a usable reading the technical alarm names why."""
+    bed = started(70.0)
+    bed.hours([70.0] * 2)
+    assert bed.t is not None
+    last_usable = bed.t  # received at its device time
+    for k in range(1, 11):
+        bed.reading(last_usable + k * PERIOD, 5000.0)
+    w = bed.ward
+    ev = w.first("meter-offline")
+    assert ev is not None and ev.time == last_usable + 300.0  # Hourwatch's own limit
+    assert "no usable reading" in ev.summary and "out_of_range" in ev.summary
+    # the 5th comes with the wake-up itself: 4 were in before it
+    assert ev.evidence["silent"][0]["sent_since"]["out_of_range"] == 4  # type: ignore[index]
+    bed.reading(last_usable + 11 * PERIOD, 200.0)  # a usable reading again
+    assert w.first("meter-offline", State.RESOLVED) is not None
+
+
+def test_a_nearly_full_bag_prompts_emptying_before_readings_fail() -> None:
+    """90% of the 3500-mL capacity the profile declares (Hourwatch's own line)."""
+    bed = started(70.0)
+    bed.reading(at(0, 1), 3100.0)  # an invented bag already holding 3.1 L
+    bed.minutes([2.0] * 30)  # 3160 mL: past 3150
+    w = bed.ward
+    ev = w.first("bag-full")
+    assert ev is not None and ev.kind == "reminder" and "empty the bag" in ev.summary
+    assert ev.time == at(0, 26)  # 3100 + 25 x 2 = 3150 mL at 00:26
+    bed.empty_bag()
+    bed.minutes([2.0] * 2)
+    assert w.first("bag-full", State.RESOLVED) is not None
+    assert not set(LOW_OUTPUT) & w.fired()  # a reminder, not a technical alarm
+
+
 def test_meter_offline_scales_with_a_slow_meter_period() -> None:
     """A 10-minute interval meter is offline after 5 x 600 s, not after 5 min."""
     prof = PROFILES["interval-10min"]

@@ -24,11 +24,17 @@ from .windows import Window, above, below, hours_ending, measure, tenths, window
 
 class DeviceSeen(NamedTuple):  # a tuple: one is made per meter at every evaluation
     device_id: str
-    last_seen: float  # receive time of its last message, or when it was bound
+    # receive time of its last usable reading (one that reached the series), or when it
+    # was bound: a meter whose every message fails is as blind as a silent one
+    last_seen: float
     period_s: int
     # the most a reading the cleaner accepts as it comes can add per minute: the
     # family's maximum plausible flow plus its noise allowance on every reading
     max_ml_per_min: float = 0.0
+    # what it sent since its last usable reading, by outcome (reason code, count)
+    sent_since: tuple[tuple[str, int], ...] = ()
+    bag_ml: float | None = None  # what its bag held at its last usable reading
+    capacity_ml: float | None = None  # its bag's declared capacity (profile)
 
 
 @dataclass(slots=True)
@@ -363,16 +369,49 @@ def meter_silent(c: r.MeterSilent, v: BedView) -> Finding:
             due = t if due is None else min(due, t)
 
     def explain() -> tuple[str, dict[str, Any]]:
-        names = ", ".join(d.device_id for d, _ in silent)
+        parts = []
+        for d, _ in silent:
+            minutes = num((v.now - d.last_seen) / 60)
+            if d.sent_since:
+                sent = sum(n for _, n in d.sent_since)
+                why = ", ".join(f"{code} {n}" for code, n in d.sent_since)
+                parts.append(f"meter {d.device_id}: no usable reading for {minutes} min "
+                             f"(it sent {sent}: {why})")  # fmt: skip
+            else:
+                parts.append(f"meter {d.device_id}: no message for {minutes} min")
         facts = [
-            {"device_id": d.device_id, "last_seen": iso(d.last_seen),
-             "silent_s": round(v.now - d.last_seen), "limit_s": limit}
+            {"device_id": d.device_id, "last_usable": iso(d.last_seen),
+             "silent_s": round(v.now - d.last_seen), "limit_s": limit,
+             "sent_since": dict(d.sent_since)}
             for d, limit in silent
         ]  # fmt: skip
-        text = f"no message from meter {names}" if silent else "all meters reporting"
+        text = "; ".join(parts) if silent else "all meters reporting"
         return text, {"silent": facts}
 
     return Finding(bool(silent), explain, due=due)
+
+
+def bag_full(c: r.BagFull, v: BedView) -> Finding:
+    full = [d for d in v.devices if d.bag_ml is not None and d.capacity_ml
+            and d.bag_ml >= c.fill_fraction * d.capacity_ml]  # fmt: skip
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        what = ", ".join(
+            f"meter {d.device_id} holds {_ml(d.bag_ml or 0.0)} of {_ml(d.capacity_ml or 0.0)}"
+            for d in full
+        )
+        facts = [{"device_id": d.device_id, "bag_ml": d.bag_ml, "capacity_ml": d.capacity_ml}
+                 for d in full]  # fmt: skip
+        return (f"empty the bag: {what}" if full else "bags have room",
+                {"full": facts, "fill_fraction": c.fill_fraction})  # fmt: skip
+
+    quiet = None
+    if not full and v.end is not None:  # a bag fills by at most its meter's plausible flow
+        room = [(c.fill_fraction * (d.capacity_ml or 0.0) - (d.bag_ml or 0.0)) / d.max_ml_per_min
+                for d in v.devices if d.capacity_ml and d.max_ml_per_min > 0]  # fmt: skip
+        k = math.floor(min(room)) - 1 if room else QUIET_LIMIT_MIN
+        quiet = v.end + min(k, QUIET_LIMIT_MIN) if k > 0 else None
+    return Finding(bool(full), explain, quiet_until=quiet)
 
 
 def no_usable_data(c: r.NoUsableData, v: BedView) -> Finding:
@@ -608,6 +647,7 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
     r.VolumeBelow: volume_below,
     r.FlowStopped: flow_stopped,
     r.MeterSilent: meter_silent,
+    r.BagFull: bag_full,
     r.NoUsableData: no_usable_data,
     r.ReplacementRatio: replacement_ratio,
     r.Hypovolemia: hypovolemia,
@@ -624,6 +664,8 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
 OUTPUT_BLIND: frozenset[type] = frozenset(
     {r.MeterSilent, r.NoUsableData, r.LabAbove, r.LabBelow, r.LabRise, r.LabFall, r.Reminder}
 )
+# bag_full reads the meters' levels: a reading moves them by at most the meter's plausible
+# flow a minute (beyond it, a confirmed jump or a bag change re-checks every rule)
 
 
 # Checks that read neither the output nor the meters: only an input (which re-checks

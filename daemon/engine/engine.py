@@ -38,7 +38,7 @@ from .effects import AdviceIssued, Effect, RejectedInput
 from .escalation import EscalationPolicy
 from .evaluator import Evaluator, criterion_holds
 from .lifecycle import AlarmBook
-from .outcomes import DECODE_REJECTIONS, DeviceQuality, Outcome
+from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outcome
 from .profiles import DeviceProfile, Semantics
 from .rules import Hypovolemia, ReplacementRatio, RuleDef
 from .series import MinuteSeries
@@ -76,6 +76,11 @@ class _Device:
     cleaner: Cleaner | None = None
     latest_t: float | None = None  # newest effective time accepted
     last_seen: float | None = None  # receive time of its last message
+    # receive time of its last usable reading (one that reached the bed's series), or
+    # when it was attached to its bed; what it sent since, by outcome
+    last_usable: float | None = None
+    sent_since: Counter[str] = field(default_factory=Counter)
+    bag_ml: float | None = None  # what its bag held at its last usable reading
     by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
     by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
     dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
@@ -86,6 +91,7 @@ class _Device:
     store_forward_max_s: float = 0.0
     stored_after_s: float = 0.0  # older than this on arrival: sent from the meter's store
     reorder_tolerance_s: float = 0.0
+    capacity_ml: float | None = None
 
     def __post_init__(self) -> None:
         p = self.decoder.profile.timing
@@ -95,6 +101,7 @@ class _Device:
         self.store_forward_max_s = p.store_forward_max_s
         self.stored_after_s = max(p.clock_tolerance_s, 2 * p.period_s)
         self.reorder_tolerance_s = p.reorder_tolerance_s
+        self.capacity_ml = self.decoder.profile.bag_capacity_ml
 
 
 def _json_obj(payload: Payload) -> Any:
@@ -207,14 +214,14 @@ class Engine:
             self._route_cache[topic] = route
         return route
 
-    def _device(self, device_id: str, decoder: Decoder) -> _Device:
+    def _device(self, device_id: str, decoder: Decoder, now: float) -> _Device:
         dev = self.devices.get(device_id)
         if dev is None or dev.decoder is not decoder:
             dev = _Device(device_id, decoder, DeviceQuality(decoder.profile.name))
             self.devices[device_id] = dev
             bed = self._bound.get(device_id)
             if bed is not None:
-                self._attach(dev, bed)
+                self._attach(dev, bed, self.beds[bed].bound_at)
         return dev
 
     def _meter_message(
@@ -222,7 +229,7 @@ class Engine:
     ) -> list[Effect]:
         dev = self.devices.get(device_id)
         if dev is None or dev.decoder is not decoder:
-            dev = self._device(device_id, decoder)
+            dev = self._device(device_id, decoder, now)
         dev.quality.received += 1
         if dev.last_seen is None and dev.bed is not None:
             # its first word on the bed: its own period replaces the slowest family's
@@ -232,6 +239,7 @@ class Engine:
         result = decoder.decode(device_id, payload)
         if isinstance(result, Rejected):
             dev.quality.add(result.reason)
+            dev.sent_since[result.reason] += 1
             if self.observe is not None:
                 self.observe(ReadingTrace(now, topic, device_id, dev.bed, None, None, None,
                                           (result.reason,)))  # fmt: skip
@@ -244,6 +252,13 @@ class Engine:
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
+        if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
+            dev.last_usable = now
+            if dev.sent_since:
+                dev.sent_since.clear()
+            dev.bag_ml = result.volume_ml
+        else:
+            dev.sent_since[outcomes[-1]] += 1
         if dev.bed is not None and not _PLAIN.issuperset(outcomes):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
@@ -408,15 +423,17 @@ class Engine:
             self._bound[dev_id] = bed_id
             dev = self.devices.get(dev_id)
             if dev is not None:
-                self._attach(dev, bed_id)
+                self._attach(dev, bed_id, now)
 
-    def _attach(self, dev: _Device, bed_id: str) -> None:
+    def _attach(self, dev: _Device, bed_id: str, now: float) -> None:
         # A meter moved to another bed starts afresh: what is in its bag is not
         # this patient's.
         series = self.beds[bed_id].series
         prof = dev.decoder.profile
         dev.bed = bed_id
         dev.last_seen = None
+        dev.last_usable, dev.bag_ml = now, None  # silent, for its limit, from here
+        dev.sent_since.clear()
         dev.cleaner = (
             IntervalCleaner(prof, series)
             if prof.volume.semantics is Semantics.INTERVAL
@@ -434,14 +451,21 @@ class Engine:
         out = []
         for dev_id in bed.context.device_ids:
             dev = self.devices.get(dev_id)
-            if dev is not None and dev.bed == bed.bed_id and dev.last_seen is not None:
-                seen, period = dev.last_seen, dev.period_s
-            else:  # bound but never heard from: silent since the binding; its family
-                # is unknown until it speaks, so allow the slowest family's period
-                seen = bed.bound_at
-                period = dev.period_s if dev else self._slowest_period
+            if dev is not None and dev.bed == bed.bed_id and dev.last_usable is not None:
+                if dev.last_seen is None:  # attached, not heard from since
+                    period = dev.period_s
+                    out.append(DeviceSeen(dev_id, dev.last_usable, period, dev.max_ml_per_min,
+                                          capacity_ml=dev.capacity_ml))  # fmt: skip
+                    continue
+                sent = tuple(dev.sent_since.items()) if dev.sent_since else ()
+                out.append(DeviceSeen(dev_id, dev.last_usable, dev.period_s, dev.max_ml_per_min,
+                                      sent, dev.bag_ml, dev.capacity_ml))  # fmt: skip
+                continue
+            # bound but never heard from: silent since the binding; its family is
+            # unknown until it speaks, so allow the slowest family's period
+            period = dev.period_s if dev else self._slowest_period
             rate = dev.max_ml_per_min if dev else self._max_ml_per_min
-            out.append(DeviceSeen(dev_id, seen, period, rate))
+            out.append(DeviceSeen(dev_id, bed.bound_at, period, rate))
         return tuple(out)
 
     def _after_reading(self, bed: BedState, now: float) -> list[Effect]:

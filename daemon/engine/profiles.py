@@ -106,11 +106,15 @@ class Limits(_Strict):
     max_flow_ml_h: Annotated[float, Field(gt=0, le=20000)]
     min_ml: float = 0.0
     max_ml: Annotated[float, Field(gt=0)]
+    # what the bag holds when full (cumulative and bag-weight meters); default max_ml
+    capacity_ml: Annotated[float, Field(gt=0)] | None = None
 
     @model_validator(mode="after")
     def _range(self) -> Limits:
         if self.min_ml >= self.max_ml:
             raise ValueError("'min_ml' must be below 'max_ml'")
+        if self.capacity_ml is not None and self.capacity_ml > self.max_ml:
+            raise ValueError("'capacity_ml' must not be above 'max_ml'")
         return self
 
 
@@ -171,6 +175,13 @@ class DeviceProfile(_Strict):
         if self.volume.semantics is Semantics.INTERVAL and self.fields.bag_change_flag:
             raise ValueError("interval meters have no bag to change: drop bag_change_flag")
         return self
+
+    @property
+    def bag_capacity_ml(self) -> float | None:
+        """The bag's capacity, for meters that fill a bag (None for interval meters)."""
+        if self.volume.semantics is Semantics.INTERVAL:
+            return None
+        return self.limits.capacity_ml or self.limits.max_ml
 
     @property
     def subscription(self) -> str:

@@ -78,11 +78,20 @@ class FlowStopped(_Check):
 
 
 class MeterSilent(_Check):
-    """A bound meter sent nothing for max(min_silence_s, periods × its period)."""
+    """A bound meter sent no usable reading for max(min_silence_s, periods × its period):
+    silent, or sending only what fails (a blind meter)."""
 
     type: Literal["meter_silent"]
     min_silence_s: Annotated[int, Field(ge=60, le=86400)] = 300
     periods: Annotated[int, Field(ge=1, le=100)] = 5
+
+
+class BagFull(_Check):
+    """A meter's bag holds at least this share of its declared capacity: empty it before
+    readings start failing as out of range."""
+
+    type: Literal["bag_full"]
+    fill_fraction: Annotated[float, Field(gt=0.5, le=1.0)] = 0.9
 
 
 class NoUsableData(_Check):
@@ -170,6 +179,7 @@ Check = Annotated[
     | VolumeBelow
     | FlowStopped
     | MeterSilent
+    | BagFull
     | NoUsableData
     | ReplacementRatio
     | Hypovolemia
@@ -258,6 +268,7 @@ DEFAULT_RULE_IDS = (
     "flow-stopped",
     "meter-offline",
     "data-gap",
+    "bag-full",
     "replacement-behind",
     "replacement-excess",
     "hypovolemia-risk",
