@@ -12,6 +12,7 @@ import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import (
     BaseModel,
@@ -137,6 +138,8 @@ class ServiceConfig(_Strict):
     profiles: Path | None = None  # folder; None = the profiles shipped with Hourwatch
     rules: Path | None = None  # folder with escalation.toml; None = the shipped rules
     log_level: Literal["debug", "info", "warning", "error"] = "info"
+    # pages and summaries show local clock time in this zone (IANA name); data stays UTC
+    timezone: Annotated[str, Field(min_length=1, max_length=64)] = "UTC"
     broker: BrokerConfig = BrokerConfig()
     journal: JournalConfig = JournalConfig()
     health: HealthConfig = HealthConfig()
@@ -144,6 +147,22 @@ class ServiceConfig(_Strict):
     recovery: RecoveryConfig = RecoveryConfig()
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, name: str) -> str:
+        zone_info(name)
+        return name
+
+
+def zone_info(name: str) -> ZoneInfo:
+    """The time zone `name` (IANA, e.g. "Europe/Berlin"); ValueError with a plain message."""
+    try:
+        return ZoneInfo(name)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ValueError(
+            f"unknown time zone {name!r} (an IANA name such as Europe/Berlin)"
+        ) from None
 
 
 def split_address(text: str, *, allow_zero: bool = False) -> tuple[str, int]:

@@ -33,6 +33,7 @@ from simulator.scenario import load_scenario
 
 from .caution import CAUTION
 from .config import BrokerConfig, HealthConfig, JournalConfig, PublishConfig, ServiceConfig
+from .engine.alarms import STATE_WORDS, State
 from .engine.numbers import ml, num
 from .engine.timefmt import iso
 from .local_broker import EmbeddedBroker, Mosquitto, start_local_broker
@@ -120,10 +121,6 @@ class Nurse:
             self.sent += 1
 
 
-_SHORT_STATE = {"active": "on", "escalated": "escalated", "acknowledged": "ack'd",
-                "pending": "pending"}  # fmt: skip
-
-
 def _ward_table(beds: dict[str, BedView], sim_now: float, start: float) -> Table:
     hours = (sim_now - start) / 3600
     table = Table(title=f"Ward view, simulated hour {num(hours, 1)} (invented patients)")
@@ -134,7 +131,7 @@ def _ward_table(beds: dict[str, BedView], sim_now: float, start: float) -> Table
     table.add_column("latest advice")
     for bed in sorted(beds):
         b = beds[bed]
-        alarms = "\n".join(f"{p} {r} {_SHORT_STATE.get(s, s)}" for p, r, s in b.alarms) or "-"
+        alarms = "\n".join(f"{p} {r} {STATE_WORDS[State(s)]}" for p, r, s in b.alarms) or "-"
         table.add_row(
             bed,
             "-" if b.hourly_ml is None else ml(b.hourly_ml),

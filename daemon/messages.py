@@ -46,6 +46,7 @@ class AlarmMessage(_Out):
     by: str | None = None
     role: str | None = None
     suppressed_by: str | None = None
+    holding_back: list[str] = Field(default_factory=list)  # a technical alarm's held-back rules
     title: str = ""
     pager: str | None = None  # one plain line for a pager
     advice: dict[str, Any] | None = None  # the bed's latest replacement advice

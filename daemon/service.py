@@ -34,7 +34,7 @@ from apscheduler.triggers.date import DateTrigger  # type: ignore[import-untyped
 from pydantic import ValidationError
 
 from .caution import CAUTION
-from .config import ServiceConfig, split_address
+from .config import ServiceConfig, split_address, zone_info
 from .engine.alarms import AlarmEvent
 from .engine.effects import AdviceIssued, Effect, RejectedInput
 from .engine.engine import Engine
@@ -208,12 +208,9 @@ class Service:
             f"{self.prefix}/ack",
         ]
         self.engine = Engine(
-            profiles,
-            self.rules,
-            self.policy,
-            topic_prefix=self.prefix,
-            advice_policy=load_advice(cfg.rules),
-        )
+            profiles, self.rules, self.policy, topic_prefix=self.prefix,
+            advice_policy=load_advice(cfg.rules), timezone=zone_info(cfg.timezone),
+        )  # fmt: skip
         self.guard_s = longest_window_s(self.rules)
         self.window_s = self.guard_s + cfg.recovery.margin_s
         self.batch_max = (

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from .engine.alarms import AlarmEvent
+from .engine.alarms import STATE_WORDS, AlarmEvent
 from .engine.effects import AdviceIssued, Effect, RejectedInput
 from .engine.evaluator import Notice
 from .engine.timefmt import iso
@@ -29,7 +29,7 @@ def effect_text(e: Effect) -> str | None:
         page = f" -> page {', '.join(e.notify)}" if e.notify else ""
         supp = f" [suppressed by {e.suppressed_by}]" if e.suppressed_by else ""
         return (
-            f"{when}  {e.ward}/{e.bed:<8} {e.state.upper():<12} {e.priority:<6} {e.rule:<18} "
+            f"{when}  {e.ward}/{e.bed:<8} {STATE_WORDS[e.state]:<12} {e.priority:<6} {e.rule:<18} "
             f"{e.reason}{who}{supp}: {e.summary}{page}  [{e.alarm_id}]"
         )
     if isinstance(e, AdviceIssued):

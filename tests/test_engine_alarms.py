@@ -343,7 +343,8 @@ def test_every_alarm_says_it_is_decision_support_and_how_to_acknowledge() -> Non
         pager = obj.get("pager")
         # one pager line: plain ASCII, at most 200 characters (ours), ending in its caution
         assert isinstance(pager, str) and 0 < len(pager) <= 200 and pager.isascii()
-        assert pager.startswith(e.bed)
+        assert pager.startswith(f"{e.clock} {e.bed} ")  # local HH:MM (UTC here), then the bed
+        assert len(e.clock) == 5 and e.clock[2] == ":"
         assert pager.endswith("Decision support: verify per local protocol.")
 
 

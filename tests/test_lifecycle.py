@@ -9,6 +9,7 @@ own defaults from alert_rules/escalation.toml, not from a standard.
 
 from __future__ import annotations
 
+import itertools
 import json
 from collections import Counter
 from datetime import UTC, datetime
@@ -34,6 +35,7 @@ POLICY = load_policy_text(
 )
 T0 = datetime(2025, 6, 15, 15, 6, 40, tzinfo=UTC).timestamp()  # invented test time
 TECH = "b1/meter-offline/20250615T150000Z"  # an invented technical alarm id
+SUPPRESSION_MAX_S = 1800  # alert_rules/escalation.toml: our own default, 30 min
 
 # Our own default chain (alert_rules/escalation.toml; expected response high =
 # immediate, medium = prompt, low = awareness: Chambrin, Crit Care 2001, via
@@ -152,6 +154,8 @@ EXPECTED = [
     ("pending", "lift_wait", "pending", "suppression_lifted", "none"),
     ("pending", "priority_raised", "pending", "priority_raised", "none"),
     ("pending", "priority_lowered", "pending", "priority_lowered", "none"),
+    ("pending", "suppression_expired", "active", "suppression_expired", "start"),
+    ("pending", "suppression_expired_wait", "pending", "suppression_expired", "none"),
     ("active", "escalate", "escalated", "escalation_due", "tier"),
     ("active", "renotify", "active", "renotify", "repeat"),
     ("active", "cleared_latched", "active", "condition_cleared_latched", "none"),
@@ -164,6 +168,7 @@ EXPECTED = [
     ("active", "lift_quiet", "active", "suppression_lifted", "none"),
     ("active", "priority_raised", "active", "priority_raised", "start"),
     ("active", "priority_lowered", "active", "priority_lowered", "none"),
+    ("active", "suppression_expired", "active", "suppression_expired", "start"),
     ("escalated", "escalate", "escalated", "escalation_due", "tier"),
     ("escalated", "renotify", "escalated", "renotify", "repeat"),
     ("escalated", "cleared_latched", "escalated", "condition_cleared_latched", "none"),
@@ -176,6 +181,7 @@ EXPECTED = [
     ("escalated", "lift_quiet", "escalated", "suppression_lifted", "none"),
     ("escalated", "priority_raised", "active", "priority_raised", "start"),
     ("escalated", "priority_lowered", "escalated", "priority_lowered", "none"),
+    ("escalated", "suppression_expired", "active", "suppression_expired", "start"),
     ("acknowledged", "ack", "acknowledged", "reacknowledged", "none"),
     ("acknowledged", "ack_expired", "active", "ack_expired", "start"),
     ("acknowledged", "ack_expired_clear", "resolved", "ack_expired_condition_clear", "none"),
@@ -213,6 +219,8 @@ _SPEC_FOR: dict[Trigger, RuleSpec] = {
     Trigger.HOLD_ELAPSED: rule(clear_hold_s=120),
     Trigger.ACK_EXPIRED_CLEAR: rule(clear_hold_s=7200),
     Trigger.LIFT_QUIET: rule(clear_hold_s=7200),
+    # a delay longer than the longest suppression (escalation.toml: 1800 s)
+    Trigger.SUPPRESSION_EXPIRED_WAIT: rule(condition_delay_s=3600),
 }
 
 
@@ -242,7 +250,8 @@ def _setup(bed: Bed, state: State, trig: Trigger) -> None:
         bed.update(True, dt=60, sup=TECH)
         if state is State.PENDING:
             bed.tick(T0 + bed.spec.condition_delay_s + 10)  # delay passes while suppressed
-    elif trig is Trigger.LIFT_WAIT:
+    elif trig in (Trigger.LIFT_WAIT, Trigger.SUPPRESSION_EXPIRED,
+                  Trigger.SUPPRESSION_EXPIRED_WAIT):  # fmt: skip
         bed.update(True, dt=60, sup=TECH)
     elif trig is Trigger.LIFT_QUIET:
         bed.update(True, dt=60, sup=TECH)
@@ -257,6 +266,7 @@ def _act(bed: Bed, trig: Trigger) -> list[AlarmEvent]:
     if trig in (
         Trigger.DELAY_ELAPSED, Trigger.ESCALATE, Trigger.RENOTIFY,
         Trigger.ACK_EXPIRED, Trigger.ACK_EXPIRED_CLEAR,
+        Trigger.SUPPRESSION_EXPIRED, Trigger.SUPPRESSION_EXPIRED_WAIT,
     ):  # fmt: skip
         return bed.tick_next()
     if trig is Trigger.HOLD_ELAPSED:
@@ -378,8 +388,14 @@ def test_latching_alarm_stays_after_clearing_until_acknowledged() -> None:
     bed.update(True)
     [e] = bed.update(False, dt=600)
     assert (e.state, e.reason) == (State.ACTIVE, "condition_cleared_latched")
-    assert bed.tick(T0 + 10 * 86400) != []  # nobody acked: still escalating days later
-    assert bed.state is State.ESCALATED
+    # nobody acks: shown for days, re-paged hourly to the tier reached (the bedside
+    # nurse), never escalated further (DESIGN §5)
+    later = [x for k in range(1, 24 * 6 + 1) for x in bed.tick(T0 + k * 600)]  # a day
+    assert later and {(x.reason, x.notify) for x in later} == {("renotify", BEDSIDE)}
+    gaps = [b.time - a.time for a, b in itertools.pairwise(later)]
+    assert later[0].time == T0 + 3600 and set(gaps) == {3600.0}  # hourly from the last page
+    assert bed.tick(T0 + 10 * 86400) != []  # days later, still shown and re-paged
+    assert bed.state is State.ACTIVE
     evs = bed.ack(by="nurse-c", role="charge-nurse")
     assert [(x.state, x.reason, x.by, x.role) for x in evs] == [
         (State.RESOLVED, "acknowledged_after_clear", "nurse-c", "charge-nurse")
@@ -619,19 +635,19 @@ def test_technical_alarm_suppresses_low_output_alarm_until_it_is_acknowledged() 
         tech.alarm_id,
         (),
     )
-    # the delay runs out while suppressed: no activation, and nothing is due for it
-    assert [x.alarm_id for x in book.tick(T0 + 4000)] == [tech.alarm_id]  # tech tier 1 only
+    # the delay runs out while suppressed: no activation within the longest suppression
+    assert book.tick(T0 + 1000) == []
     # the same condition on another bed is not suppressed
     [other] = book.update(
-        T0 + 4000, "b2", "w1", olig, True, "s", {}, suppressed_by=book.suppressor("b2")
+        T0 + 1000, "b2", "w1", olig, True, "s", {}, suppressed_by=book.suppressor("b2")
     )
     assert other.suppressed_by is None and other.reason == "condition_met"
     # the nurse acknowledges the technical alarm: suppression lifts, the alarm activates
-    acked = book.acknowledge(T0 + 4100, tech.alarm_id, "nurse-a", "bedside-nurse")
+    acked = book.acknowledge(T0 + 1100, tech.alarm_id, "nurse-a", "bedside-nurse")
     assert not isinstance(acked, str)
     assert book.suppressor("b1") is None
     [lift] = book.update(
-        T0 + 4100, "b1", "w1", olig, True, "s", {}, suppressed_by=book.suppressor("b1")
+        T0 + 1100, "b1", "w1", olig, True, "s", {}, suppressed_by=book.suppressor("b1")
     )
     assert (lift.state, lift.reason, lift.notify, lift.suppressed_by) == (
         State.ACTIVE,
@@ -648,11 +664,41 @@ def test_suppression_is_said_once_and_pauses_escalation() -> None:
     [e] = bed.update(True, dt=600, sup=TECH)
     assert (e.state, e.reason, e.suppressed_by) == (State.ACTIVE, "suppressed", TECH)
     assert bed.update(True, dt=60, sup=TECH) == []  # said once, not at every evaluation
-    assert bed.book.next_due() is None  # no escalation while suppressed
-    assert bed.tick(T0 + 5000) == []
+    # no escalation while suppressed; only the end of the longest suppression is due
+    assert bed.book.next_due() == T0 + 600 + SUPPRESSION_MAX_S
+    assert bed.tick(T0 + 2000) == []
     [lift] = bed.update(True, dt=0, sup=None)
-    assert (lift.reason, lift.notify, lift.time) == ("suppression_lifted", BEDSIDE, T0 + 5000)
-    assert bed.book.next_due() == T0 + 5000 + 900
+    assert (lift.reason, lift.notify, lift.time) == ("suppression_lifted", BEDSIDE, T0 + 2000)
+    assert bed.book.next_due() == T0 + 2000 + 900
+
+
+def test_suppression_is_bounded_then_the_alarm_pages_in_its_own_right() -> None:
+    """A technical alarm nobody acknowledges holds a low-output alarm back for at most
+    30 min (alert_rules/escalation.toml, our own default); then it pages, escalates as
+    any other, and is not held back again."""
+    bed = Bed(rule(condition_delay_s=0, priority=Priority.HIGH))
+    [e] = bed.update(True, sup=TECH)
+    assert (e.state, e.notify) == (State.PENDING, ())
+    [own] = bed.tick_next()
+    assert own.time == T0 + SUPPRESSION_MAX_S
+    assert (own.state, own.reason, own.suppressed_by) == (State.ACTIVE, "suppression_expired", None)
+    assert own.notify == BEDSIDE
+    assert bed.update(True, dt=60, sup=TECH) == []  # still there: no longer held back
+    [tier1] = bed.tick_next()
+    assert (tier1.reason, tier1.time) == ("escalation_due", own.time + 300)
+
+
+def test_the_suppressing_alarm_says_what_it_holds_back() -> None:
+    book = AlarmBook(POLICY)
+    offline = rule(rule_id="flow-stopped", kind=Kind.TECHNICAL, condition_delay_s=0,
+                   clear_hold_s=0, low_output=False)  # medium: tier 1 after 900 s  # fmt: skip
+    [tech] = book.update(T0, "b1", "w1", offline, True, "flow stopped", {})
+    assert tech.holding_back == ()
+    book.update(T0 + 60, "b1", "w1", rule(condition_delay_s=0, priority=Priority.HIGH), True,
+                "s", {}, suppressed_by=tech.alarm_id)  # fmt: skip
+    [esc] = book.tick(T0 + 900)
+    assert esc.alarm_id == tech.alarm_id and esc.holding_back == ("oliguria-kdigo-1",)
+    assert "Holding back: oliguria-kdigo-1." in esc.pager()
 
 
 def test_quiet_lift_resumes_the_paused_escalation_without_paging() -> None:
@@ -662,7 +708,10 @@ def test_quiet_lift_resumes_the_paused_escalation_without_paging() -> None:
     bed.update(False, dt=100, sup=TECH)  # condition clears at +700: hold runs
     [e] = bed.update(False, dt=300, sup=None)  # lifted at +1000
     assert (e.state, e.reason, e.notify) == (State.ACTIVE, "suppression_lifted", ())
-    # tier 1 was 300 s away when paused; it is 300 s away again
+    # while the condition is away nothing escalates: only the end of the hold is due
+    assert bed.book.next_due() == T0 + 700 + 7200
+    # it returns: tier 1 was 300 s away when paused at +600; it is 300 s after the lift
+    bed.update(True, dt=50)
     assert bed.book.next_due() == T0 + 1000 + 300
 
 
@@ -963,8 +1012,8 @@ def test_lowering_to_a_shorter_chain_keeps_the_tier_within_it() -> None:
     assert bed.log[-1].tier == 2
     [e] = bed.update(True, dt=10, prio=Priority.LOW)  # the low chain has tiers 0 and 1
     assert (e.reason, e.tier, e.state) == ("priority_lowered", 1, State.ESCALATED)
-    # low re-notifies 60 min after its last tier, counted from the first activation
-    assert bed.book.next_due() == T0 + 3600 + 3600
+    # low re-notifies its interval after the last page (tier 2 of high, at +600)
+    assert bed.book.next_due() == T0 + 600 + CHAIN[Priority.LOW][1]
 
 
 def test_tick_returns_events_of_several_alarms_in_time_order() -> None:

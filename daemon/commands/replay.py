@@ -9,11 +9,13 @@ import json
 import sqlite3
 import sys
 from collections.abc import Iterator
+from datetime import tzinfo
 from html import escape
 from pathlib import Path
 from typing import TYPE_CHECKING
 
 from ..caution import CAUTION
+from ..config import zone_info
 from ..engine.effects import Effect
 from ..engine.engine import Engine
 from ..engine.timefmt import TimeError, parse_iso
@@ -66,7 +68,20 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         metavar="PROFILES_B",
         help="what-if: replay again with this device profile folder",
     )
+    r.add_argument(
+        "--timezone",
+        default="UTC",
+        metavar="ZONE",
+        help="local time zone for the clock times on pages (IANA name; default UTC)",
+    )
     r.set_defaults(run=run)
+
+
+def _zone(name: str) -> tzinfo:
+    try:
+        return zone_info(name)
+    except ValueError as exc:
+        raise UserError(f"--timezone: {exc}") from None
 
 
 def _where(folder: Path | None) -> str:
@@ -94,6 +109,7 @@ def run(args: argparse.Namespace) -> int:
         load_rules(args.rules),
         load_policy(args.rules),
         advice_policy=load_advice(args.rules),
+        timezone=_zone(args.timezone),
     )
     out = sys.stdout
     if args.hourly:

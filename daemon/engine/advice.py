@@ -20,6 +20,7 @@ outcome. Every Advice carries CAUTION: a suggestion for the treating clinician.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 from enum import StrEnum
 from typing import Annotated, Literal
@@ -27,7 +28,7 @@ from typing import Annotated, Literal
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from .numbers import half_up, ml, num, span
-from .timefmt import iso
+from .timefmt import hhmm_utc, iso
 
 CAUTION = (
     "Decision support only: a suggestion for the treating clinician, to be checked "
@@ -551,6 +552,7 @@ def advise(
     hypovolaemia: str | None = None,
     residual_ml: float = 0.0,
     policy: AdvicePolicy = DEFAULT_POLICY,
+    clock: Callable[[float], str] = hhmm_utc,
 ) -> Advice:
     """What to tell the nurse for the completed hour starting at `hour_start`, at `now`.
 
@@ -576,7 +578,7 @@ def advise(
                             "No replacement order on file: no fluid or rate is suggested; the "
                             "physician decides whether and how to replace.")  # fmt: skip
     if order.ordered_at.timestamp() > now:
-        starts = iso(order.ordered_at.timestamp())
+        starts = clock(order.ordered_at.timestamp())
         return without_rate(AdviceKind.NO_ORDER, "Replacement order not yet in effect",
                             f"The replacement order on file starts at {starts}: no rate "
                             "before then.")  # fmt: skip

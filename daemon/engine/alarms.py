@@ -1,13 +1,18 @@
 """Alarm vocabulary shared by the rules, the lifecycle and the messages.
 
-Priority words follow the FHIR DeviceAlert priority codes; kinds and states use
-IEC 60601-1-8 terms (physiological / technical alarm condition, acknowledged).
+Priority words follow the FHIR DeviceAlert priority codes (high, medium, low, info).
+Kinds use the IEC 60601-1-8 terms physiological and technical alarm condition (advisory
+and reminder are ours). Of the states, "acknowledged" is an IEC 60601-1-8 alarm signal
+inactivation state; inactive, pending, active, escalated and resolved are Hourwatch's own
+lifecycle. What a person reads for each state is STATE_WORDS, and nothing else.
 """
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
+from types import MappingProxyType
 
 from .timefmt import iso
 
@@ -81,6 +86,8 @@ class AlarmEvent:
     suppressed_by: str | None = None
     title: str = ""
     advice: dict[str, object] | None = None  # the bed's latest replacement advice, if any
+    holding_back: tuple[str, ...] = ()  # a technical alarm: the rules it holds back
+    clock: str = ""  # the event's local clock time, HH:MM, for people (engine's time zone)
     ack_topic: str = "hourwatch/ack"
     ack_valid_s: int = 3600
 
@@ -90,12 +97,15 @@ class AlarmEvent:
         high-output alarm what the advice says, and always the caution. The numbers
         are shortened first; the bed, what, the advice and the caution always fit."""
         what = (self.title or self.rule).split(":")[0]
-        head = f"{self.bed} {_STATE_WORD[self.state]} {self.priority}: {what}"
+        when = f"{self.clock} " if self.clock else ""
+        head = f"{when}{self.bed} {STATE_WORDS[self.state]} {self.priority}: {what}"
         tail = ""
+        if self.holding_back:
+            tail = f" Holding back: {', '.join(self.holding_back)}."
         if self.advice and self.state in (State.ACTIVE, State.ESCALATED):
             words = self.advice.get("pager")
             if isinstance(words, str) and words:
-                tail = f" {words}"
+                tail += f" {words}"
         tail += f" {PAGER_CAUTION}"
         text = _ascii(f"{head}. {self.summary}.{tail}")
         if len(text) <= PAGER_MAX:
@@ -124,6 +134,7 @@ class AlarmEvent:
             "by": self.by,
             "role": self.role,
             "suppressed_by": self.suppressed_by,
+            "holding_back": list(self.holding_back),
             "title": self.title,
             "pager": self.pager(),
             "advice": self.advice,
@@ -155,11 +166,13 @@ ALARM_CAUTION = (
     "Decision support only: a prompt for the treating clinician, to be checked against "
     "local protocols and licensed practice. Hourwatch controls no pump and no order."
 )
-_STATE_WORD = {
-    State.INACTIVE: "clear",
-    State.PENDING: "pending",
+# The one table of the words a person reads for each state: pages, the timeline, the
+# ward view, the report and the board all use it.
+STATE_WORDS: Mapping[State, str] = MappingProxyType({
+    State.INACTIVE: "CLEARED",
+    State.PENDING: "PENDING",
     State.ACTIVE: "ALARM",
-    State.ESCALATED: "ALARM (escalated)",
-    State.ACKNOWLEDGED: "acknowledged",
-    State.RESOLVED: "resolved",
-}
+    State.ESCALATED: "ESCALATED",
+    State.ACKNOWLEDGED: "ACKNOWLEDGED",
+    State.RESOLVED: "RESOLVED",
+})  # fmt: skip

@@ -18,7 +18,7 @@ from .bedstate import BedState
 from .haemo import mean_arterial_pressure, shock_index
 from .numbers import half_up, ml, num, pct
 from .series import MinuteSeries
-from .timefmt import iso
+from .timefmt import hhmm_utc, iso
 from .windows import Window, above, below, hours_ending, measure, tenths, window_bounds
 
 
@@ -51,6 +51,8 @@ class BedView:
     quiet_wanted: bool = True
     # whether a fluid counts as hypotonic under the advice policy
     hypotonic: Callable[[str], bool] = lambda fluid: False
+    # a time as people read it: local clock HH:MM in the engine's time zone
+    clock: Callable[[float], str] = hhmm_utc
 
 
 Explain = Callable[[], tuple[str, dict[str, Any]]]
@@ -544,7 +546,8 @@ def _lab_limit(c: r.LabAbove | r.LabBelow, v: BedView, above: bool) -> Finding:
 
     def explain() -> tuple[str, dict[str, Any]]:
         word = "above" if above else "below"
-        text = f"{name} {x:g} {unit} at {iso(t)} (alarm {word} {c.threshold:g})"
+        age = num((v.now - t) / 3600, 1)
+        text = f"{name} {x:g} {unit} at {v.clock(t)}, {age} h ago (alarm {word} {c.threshold:g})"
         ev: dict[str, Any] = {"analyte": c.analyte, "value": x, "time": iso(t),
                               "threshold": c.threshold}  # fmt: skip
         order = v.bed.context.replacement
@@ -613,7 +616,7 @@ def reminder(c: r.Reminder, v: BedView) -> Finding:
     def explain() -> tuple[str, dict[str, Any]]:
         names = ", ".join(LAB_WORDS[a][1] for a in overdue)
         latest = "; ".join(
-            f"{LAB_WORDS[a][1]} {'never' if last[a] is None else iso(last[a] or 0.0)}"
+            f"{LAB_WORDS[a][1]} {'never' if last[a] is None else v.clock(last[a] or 0.0)}"
             for a in overdue
         )
         return (

@@ -12,7 +12,7 @@ import json
 from collections import Counter
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
-from datetime import datetime
+from datetime import UTC, datetime, tzinfo
 from typing import Any, NamedTuple
 
 from pydantic import BaseModel, ValidationError
@@ -42,7 +42,7 @@ from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outco
 from .profiles import DeviceProfile, Semantics
 from .rules import Hypovolemia, ReplacementRatio, RuleDef
 from .series import MinuteSeries
-from .timefmt import as_epoch
+from .timefmt import LocalClock, as_epoch
 from .windows import measure
 
 DEDUP_HORIZON_S = 86400.0
@@ -147,6 +147,7 @@ class Engine:
         ack_validity_s: int = 3600,
         observe: Callable[[ReadingTrace], None] | None = None,
         advice_policy: AdvicePolicy = DEFAULT_POLICY,
+        timezone: tzinfo = UTC,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -169,8 +170,11 @@ class Engine:
         self.rules = [r for r in rules if r.enabled]
         self.book = AlarmBook(policy or _bedside_only(), ack_validity_s)
         self.advice_policy = advice_policy
+        # what people read says local clock time (pages, summaries); data stays UTC
+        self.clock = LocalClock(timezone)
         self.evaluator = Evaluator(self.rules, self.book, hypotonic=self._hypotonic,
-                                   end_hold_s=advice_policy.criterion_end_hold_s)  # fmt: skip
+                                   end_hold_s=advice_policy.criterion_end_hold_s,
+                                   clock=self.clock)  # fmt: skip
         # rules whose met criterion brings replacement advice every completed hour
         self._advice_sources = tuple(r.id for r in self.rules if r.replacement_advice)
         # alarms whose page carries the advice: those, and the replacement checks on them
@@ -532,6 +536,7 @@ class Engine:
             sodium=Sodium(na[1], na[0]) if na is not None else None, urine_na=una, urine_k=uk,
             weight_kg=ctx.weight_kg, tbw_fraction=ctx.tbw_fraction,
             hypovolaemia=self._hypovolaemia_signs(bed), residual_ml=w.residual_ml, policy=pol,
+            clock=self.clock,
         )  # fmt: skip
         if (
             last is not None
@@ -584,6 +589,7 @@ class Engine:
                 )  # fmt: skip
                 e = replace(
                     e, ack_topic=self._ack_topic, ack_valid_s=self.book.ack_validity_s,
+                    clock=self.clock(e.time),
                     advice=adv.to_json() if adv is not None and current else None,
                 )  # fmt: skip
             out.append(e)

@@ -60,6 +60,9 @@ class PriorityPolicy(_Strict):
 
 class EscalationPolicy(_Strict):
     schema_version: Literal[1] = Field(1, alias="schema")
+    # the longest a technical alarm may hold back a low-output alarm before that one
+    # pages in its own right (DESIGN §4)
+    suppression_max_s: Annotated[int, Field(ge=60, le=DAY_S)] = 1800
     high: PriorityPolicy
     medium: PriorityPolicy
     low: PriorityPolicy

@@ -25,6 +25,7 @@ from .checks import (
 )
 from .lifecycle import AlarmBook, OpenRule
 from .rules import RuleDef
+from .timefmt import hhmm_utc
 
 # Alarm states that open a gate for dependent rules (replacement, reminders), while
 # the alarm's condition holds: a latched alarm whose condition has ended opens none.
@@ -79,8 +80,10 @@ class Evaluator:
     def __init__(
         self, rules: list[RuleDef], book: AlarmBook,
         hypotonic: Callable[[str], bool] = lambda fluid: False, end_hold_s: float = 3600.0,
+        clock: Callable[[float], str] = hhmm_utc,
     ) -> None:  # fmt: skip
         self.hypotonic = hypotonic
+        self.clock = clock
         self.end_hold_s = end_hold_s
         self.rules = sorted((r for r in rules if r.enabled), key=_order)
         self.plans = [self._plan(r) for r in self.rules]
@@ -113,7 +116,7 @@ class Evaluator:
         disabled = bed.context.disabled_rules
         book = self.book
         end = bed.series.latest_minute()
-        view = BedView(bed, now, devices, {}, end, hypotonic=self.hypotonic)
+        view = BedView(bed, now, devices, {}, end, hypotonic=self.hypotonic, clock=self.clock)
         quiet, input_due, arm_due = bed.quiet_until, bed.input_due, bed.arm_due
         stage = -1
         changed = False  # an evaluation opened or closed alarms: re-read the book's view

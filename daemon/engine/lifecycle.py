@@ -23,7 +23,7 @@ from typing import Any
 from pydantic import TypeAdapter
 
 from .alarms import URGENCY, AlarmEvent, Kind, Priority, RuleSpec, State
-from .escalation import EscalationPolicy
+from .escalation import EscalationPolicy, PriorityPolicy
 from .timefmt import to_datetime
 
 
@@ -49,6 +49,9 @@ class Trigger(StrEnum):
     LIFT = "lift"  # suppression ended, condition present (pending: delay has passed)
     LIFT_WAIT = "lift_wait"  # pending: suppression ended, delay still running
     LIFT_QUIET = "lift_quiet"  # suppression ended while the condition is in its clear-hold
+    # held back by a technical alarm for the policy's longest suppression: pages on its own
+    SUPPRESSION_EXPIRED = "suppression_expired"
+    SUPPRESSION_EXPIRED_WAIT = "suppression_expired_wait"  # pending: its delay still runs
     PRIORITY_RAISED = "priority_raised"
     PRIORITY_LOWERED = "priority_lowered"
 
@@ -91,6 +94,8 @@ TRANSITIONS: Mapping[tuple[State, Trigger], Step] = MappingProxyType({
     (_P, T.SUPPRESS): Step(_P, "suppressed"),
     (_P, T.LIFT): Step(_A, "suppression_lifted", Page.START),
     (_P, T.LIFT_WAIT): Step(_P, "suppression_lifted"),
+    (_P, T.SUPPRESSION_EXPIRED): Step(_A, "suppression_expired", Page.START),
+    (_P, T.SUPPRESSION_EXPIRED_WAIT): Step(_P, "suppression_expired"),
     (_P, T.PRIORITY_RAISED): Step(_P, "priority_raised"),
     (_P, T.PRIORITY_LOWERED): Step(_P, "priority_lowered"),
 
@@ -104,6 +109,7 @@ TRANSITIONS: Mapping[tuple[State, Trigger], Step] = MappingProxyType({
     (_A, T.SUPPRESS): Step(_A, "suppressed"),
     (_A, T.LIFT): Step(_A, "suppression_lifted", Page.START),
     (_A, T.LIFT_QUIET): Step(_A, "suppression_lifted"),
+    (_A, T.SUPPRESSION_EXPIRED): Step(_A, "suppression_expired", Page.START),
     (_A, T.PRIORITY_RAISED): Step(_A, "priority_raised", Page.START),
     (_A, T.PRIORITY_LOWERED): Step(_A, "priority_lowered"),
 
@@ -117,6 +123,7 @@ TRANSITIONS: Mapping[tuple[State, Trigger], Step] = MappingProxyType({
     (_E, T.SUPPRESS): Step(_E, "suppressed"),
     (_E, T.LIFT): Step(_A, "suppression_lifted", Page.START),
     (_E, T.LIFT_QUIET): Step(_E, "suppression_lifted"),
+    (_E, T.SUPPRESSION_EXPIRED): Step(_A, "suppression_expired", Page.START),
     (_E, T.PRIORITY_RAISED): Step(_A, "priority_raised", Page.START),
     (_E, T.PRIORITY_LOWERED): Step(_E, "priority_lowered"),
 
@@ -143,9 +150,14 @@ _TIE_ORDER: dict[Trigger, int] = {
     T.ACK_EXPIRED_CLEAR: 1,
     T.ACK_EXPIRED: 2,
     T.DELAY_ELAPSED: 3,
+    T.SUPPRESSION_EXPIRED: 3,
+    T.SUPPRESSION_EXPIRED_WAIT: 3,
     T.ESCALATE: 4,
     T.RENOTIFY: 5,
 }
+# A latched alarm whose condition has ended is shown until acknowledged, but re-paged at
+# most this often, to the tiers already reached, and never escalated (DESIGN §5).
+LATCHED_RENOTIFY_S = 3600.0
 _ANNUNCIATED = (State.ACTIVE, State.ESCALATED)
 _ENDED = (State.INACTIVE, State.RESOLVED)
 
@@ -181,6 +193,8 @@ class _Record:
     renotified: int = 0
     suppressed_by: str | None = None
     suppressed_at: float | None = None
+    suppression_spent: bool = False  # held back for the longest allowed: never again
+    paged_at: float | None = None  # when the alarm last paged anyone
     ack_by: str | None = None
     ack_role: str | None = None
     ack_until: float | None = None
@@ -279,8 +293,9 @@ class AlarmBook:
         if not condition and (slot is None or slot.record is None):
             return []
         prio = priority if priority is not None else spec.priority
-        sup = suppressed_by if spec.low_output else None
         rec = slot.record if slot is not None else None
+        spent = rec is not None and rec.suppression_spent
+        sup = suppressed_by if spec.low_output and not spent else None
         if (
             rec is not None
             and condition == rec.present
@@ -549,6 +564,16 @@ class AlarmBook:
         raw: list[tuple[float, Trigger]] = []
         s = rec.state
         free = rec.suppressed_by is None
+        if (
+            not free
+            and rec.present
+            and rec.suppressed_at is not None
+            and s is not State.ACKNOWLEDGED
+        ):
+            # suppression is bounded: after that the alarm pages in its own right
+            ends = rec.suppressed_at + self._policy.suppression_max_s
+            waits = s is State.PENDING and rec.onset + rec.spec.condition_delay_s > ends
+            raw.append((ends, T.SUPPRESSION_EXPIRED_WAIT if waits else T.SUPPRESSION_EXPIRED))
         if s is State.PENDING:
             if free:
                 raw.append((rec.onset + rec.spec.condition_delay_s, T.DELAY_ELAPSED))
@@ -557,11 +582,18 @@ class AlarmBook:
                 raw.append((rec.clear_since + rec.spec.clear_hold_s, T.HOLD_ELAPSED))
             if free and rec.activated_at is not None:
                 pol = self._policy.for_priority(rec.priority)
-                if rec.tier + 1 < len(pol.tiers):
+                if rec.latched_clear:  # shown until acknowledged; re-paged at most hourly
+                    if rec.paged_at is not None:
+                        raw.append((rec.paged_at + _renotify_s(rec, pol), T.RENOTIFY))
+                elif not rec.present:
+                    pass  # in its clear-hold: nobody is paged for a condition that has gone
+                elif rec.tier + 1 < len(pol.tiers):
                     raw.append((rec.activated_at + pol.tiers[rec.tier + 1].after_s, T.ESCALATE))
                 elif pol.renotify_s is not None:
-                    base = rec.activated_at + pol.tiers[-1].after_s
-                    raw.append((base + (rec.renotified + 1) * pol.renotify_s, T.RENOTIFY))
+                    base = rec.paged_at
+                    if base is None:
+                        base = rec.activated_at + pol.tiers[-1].after_s
+                    raw.append((base + pol.renotify_s, T.RENOTIFY))
         elif s is State.ACKNOWLEDGED:
             if rec.clear_since is not None:
                 raw.append((rec.clear_since + rec.spec.clear_hold_s, T.HOLD_ELAPSED))
@@ -585,11 +617,10 @@ class AlarmBook:
             if trig is T.RENOTIFY:
                 # After downtime, send the latest overdue re-notification once, not
                 # every one that was missed.
-                pol = self._policy.for_priority(rec.priority)
-                step = pol.renotify_s or 0
-                later = t + step
-                if step and later <= now and all(d[0] > later for d in due[1:]):
+                later = t + _renotify_s(rec, self._policy.for_priority(rec.priority))
+                if later <= now and all(d[0] > later for d in due[1:]):
                     rec.renotified += 1
+                    rec.paged_at = t
                     continue
             if not self._fire(slot, trig, t, out):
                 # counted in `refused`; drop the wake-up rather than spin on it
@@ -634,6 +665,8 @@ class AlarmBook:
             rec.latched_clear = False
         elif trig in (T.SUPPRESS, T.ONSET_SUPPRESSED):
             rec.suppressed_at = t
+        elif trig in (T.SUPPRESSION_EXPIRED, T.SUPPRESSION_EXPIRED_WAIT):
+            rec.suppressed_by, rec.suppression_spent = None, True
         elif trig in (T.LIFT, T.LIFT_QUIET) and rec.activated_at is not None:
             if rec.suppressed_at is not None and rec.state in _ANNUNCIATED:
                 # escalation was paused while suppressed: resume where it stood
@@ -656,6 +689,14 @@ class AlarmBook:
             notify += tuple(x for x in rec.spec.also_notify if x not in notify)
         if rec.suppressed_by is not None:
             notify = ()
+        if notify:
+            rec.paged_at = t
+        holding: tuple[str, ...] = ()
+        if rec.spec.kind is Kind.TECHNICAL:  # its page says what it is holding back
+            holding = tuple(sorted(
+                o.record.spec.rule_id for o in self._by_bed.get(rec.bed, {}).values()
+                if o.record is not None and o.record.suppressed_by == rec.alarm_id
+            ))  # fmt: skip
         rec.state = step.to
         rec.t_last = max(rec.t_last, t)
         out.append(
@@ -677,6 +718,7 @@ class AlarmBook:
                 role=role,
                 suppressed_by=rec.suppressed_by,
                 title=rec.spec.title,
+                holding_back=holding,
             )
         )
         if step.to in _ENDED:
@@ -687,6 +729,14 @@ class AlarmBook:
             self._explain.pop(rec.alarm_id, None)
             self._set_due(rec.alarm_id, None)
         return True
+
+
+def _renotify_s(rec: _Record, pol: PriorityPolicy) -> float:
+    """The re-notification interval: the policy's while the condition persists; for a
+    latched alarm whose condition has ended, at least an hour."""
+    if rec.latched_clear:
+        return max(float(pol.renotify_s or LATCHED_RENOTIFY_S), LATCHED_RENOTIFY_S)
+    return float(pol.renotify_s or 0.0)
 
 
 def _view(r: _Record) -> AlarmView:

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import re
-from datetime import UTC, datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta, timezone, tzinfo
 
 _OFFSET = re.compile(r"^([+-])(\d{2}):?(\d{2})$")
 
@@ -74,3 +74,21 @@ def as_epoch(when: datetime | float) -> float:
             raise TimeError("naive datetime given to the engine; times must be aware")
         return when.timestamp()
     return float(when)
+
+
+def hhmm_utc(t: float) -> str:
+    """A time as people read it on a page, when no local time zone is configured."""
+    return to_datetime(t).strftime("%H:%M")
+
+
+class LocalClock:
+    """HH:MM in `tz` (a tzinfo made by the shell: reading the zone database is I/O).
+    A class, not a closure, so an engine holding one can be pickled (snapshots)."""
+
+    __slots__ = ("tz",)
+
+    def __init__(self, tz: tzinfo) -> None:
+        self.tz = tz
+
+    def __call__(self, t: float) -> str:
+        return datetime.fromtimestamp(t, self.tz).strftime("%H:%M")

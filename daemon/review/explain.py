@@ -18,7 +18,7 @@ import numpy as np
 
 from ..caution import CAUTION
 from ..engine.advice import DEFAULT_POLICY, AdvicePolicy
-from ..engine.alarms import AlarmEvent, Kind
+from ..engine.alarms import STATE_WORDS, AlarmEvent, Kind, State
 from ..engine.effects import Effect
 from ..engine.engine import Engine, ReadingTrace
 from ..engine.escalation import EscalationPolicy
@@ -664,7 +664,7 @@ def lifecycle_lines(events: list[dict[str, Any]]) -> list[str]:
         last = events[j].get("until", events[j]["time"])
         what = e["reason"] if n == 1 else f"renotify x {n} until {_when(last)}"
         lines.append(
-            f"  {_when(e['time'])}  {e['state'].upper():<12} {e['priority']:<6} "
+            f"  {_when(e['time'])}  {STATE_WORDS[State(e['state'])]:<12} {e['priority']:<6} "
             f"{what}{who}{sup_}{page}"
         )
         i = j + 1
