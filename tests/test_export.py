@@ -114,7 +114,7 @@ def test_replay_of_journal_equals_replay_of_its_export(
         rc, out, _ = run(capsys, "replay", str(src), "--json", "--hourly")
         assert rc == 0
         outputs[name + " hourly"] = out
-    assert outputs["journal"].count("\n") > 100  # the night raises many alarms
+    assert outputs["journal"].count("\n") > 50  # the night raises many alarms
     assert outputs["journal"] == outputs["export"]
     assert outputs["journal hourly"] == outputs["export hourly"]
     # the odd messages are all rejected, so the alarms are the example log's; the

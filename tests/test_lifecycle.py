@@ -45,11 +45,29 @@ CHARGE = ("bedside-nurse", "charge-nurse")
 PHYSICIAN = ("bedside-nurse", "charge-nurse", "icu-physician")
 CHAIN: dict[Priority, tuple[list[tuple[int, tuple[str, ...]]], int | None]] = {
     # priority: ([(seconds after activation, everyone paged at that tier)], renotify_s)
-    Priority.HIGH: ([(0, BEDSIDE), (300, CHARGE), (600, PHYSICIAN)], 300),
-    Priority.MEDIUM: ([(0, BEDSIDE), (900, CHARGE), (1800, PHYSICIAN)], 900),
+    Priority.HIGH: ([(0, BEDSIDE), (300, CHARGE), (600, PHYSICIAN)], 900),
+    Priority.MEDIUM: ([(0, BEDSIDE), (900, CHARGE), (1800, PHYSICIAN)], 1800),
     Priority.LOW: ([(0, BEDSIDE), (3600, CHARGE)], 3600),
     Priority.INFO: ([(0, BEDSIDE)], None),
 }
+# each re-notification waits twice as long as the one before, up to (ours):
+RENOTIFY_MAX: dict[Priority, int | None] = {
+    Priority.HIGH: 3600, Priority.MEDIUM: 7200, Priority.LOW: 14400, Priority.INFO: None,
+}  # fmt: skip
+
+
+def renotify_times(prio: Priority, n: int) -> list[int]:
+    """Seconds after activation of the first n re-notifications (written out from the
+    policy's documented numbers, not from its code)."""
+    tiers, first = CHAIN[prio]
+    cap = RENOTIFY_MAX[prio]
+    assert first is not None and cap is not None
+    t, wait, out = tiers[-1][0], first, []
+    for _ in range(n):
+        t += wait
+        out.append(t)
+        wait = min(2 * wait, cap)
+    return out
 
 
 def rule(**kw: object) -> RuleSpec:
@@ -392,8 +410,9 @@ def test_latching_alarm_stays_after_clearing_until_acknowledged() -> None:
     # nurse), never escalated further (DESIGN §5)
     later = [x for k in range(1, 24 * 6 + 1) for x in bed.tick(T0 + k * 600)]  # a day
     assert later and {(x.reason, x.notify) for x in later} == {("renotify", BEDSIDE)}
-    gaps = [b.time - a.time for a, b in itertools.pairwise(later)]
-    assert later[0].time == T0 + 3600 and set(gaps) == {3600.0}  # hourly from the last page
+    gaps = [b.time - a.time for a, b in itertools.pairwise([bed.log[0], *later])]
+    # at most hourly, counted from its last page at activation (medium backs off to 2 h)
+    assert later[0].time == T0 + 3600 and min(gaps) >= 3600 and gaps == sorted(gaps)
     assert bed.tick(T0 + 10 * 86400) != []  # days later, still shown and re-paged
     assert bed.state is State.ACTIVE
     evs = bed.ack(by="nurse-c", role="charge-nurse")
@@ -521,13 +540,13 @@ def _due_points() -> list[tuple[Priority, int, int, tuple[str, ...], State, str]
         for n, (after, roles) in enumerate(tiers[1:], start=1):
             out.append((prio, n, after, roles, State.ESCALATED, "escalation_due"))
         if renotify is not None:
-            last, roles = tiers[-1]
-            for k in (1, 2):
+            roles = tiers[-1][1]
+            for k, at in enumerate(renotify_times(prio, 3), start=1):
                 out.append(
                     (
                         prio,
                         len(tiers) - 1 + k,
-                        last + k * renotify,
+                        at,
                         roles,
                         State.ESCALATED,
                         "renotify",
@@ -570,13 +589,15 @@ def test_escalations_missed_during_downtime_are_sent_once() -> None:
     bed = Bed(rule(condition_delay_s=0, priority=Priority.MEDIUM))
     bed.update(True)
     evs = bed.tick(T0 + 3 * 3600)  # the daemon was down for three hours
-    # each tier once at its own time, then only the latest re-notification
+    # each tier once at its own time, then only the latest re-notification: medium
+    # re-notifies 3600 and 7200 s after activation, then at 14400 (ours)
+    assert renotify_times(Priority.MEDIUM, 3) == [3600, 7200, 14400]
     assert [(e.time - T0, e.reason, e.tier) for e in evs] == [
         (900, "escalation_due", 1),
         (1800, "escalation_due", 2),
-        (10800, "renotify", 2),
+        (7200, "renotify", 2),
     ]
-    assert bed.book.next_due() == T0 + 10800 + 900
+    assert bed.book.next_due() == T0 + 14400
 
 
 def test_late_timers_give_the_same_events_as_exact_ones() -> None:
@@ -971,6 +992,7 @@ def test_shipped_policy_matches_the_documented_chain() -> None:
         pol = POLICY.for_priority(prio)
         assert [(t.after_s, pol.roles_up_to(n)) for n, t in enumerate(pol.tiers)] == tiers
         assert pol.renotify_s == renotify
+        assert pol.renotify_max_s == RENOTIFY_MAX[prio]
 
 
 _GOOD = (ROOT / "alert_rules" / "escalation.toml").read_text(encoding="utf-8")

@@ -62,6 +62,7 @@ class RuleSpec:
     clear_hold_s: int  # non-latching: condition must stay clear this long to resolve
     low_output: bool  # low-output rules are suppressed by a bed's technical alarms
     also_notify: tuple[str, ...] = ()  # paged with every page, besides the policy's roles
+    ack_valid_s: int | None = None  # how long an acknowledgement holds (None: the book's)
 
 
 @dataclass(frozen=True, slots=True)

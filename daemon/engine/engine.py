@@ -183,6 +183,7 @@ class Engine:
             if set(r.while_active) & set(self._advice_sources)
             and isinstance(r.check, ReplacementRatio)
         }  # fmt: skip
+        self._ack_valid = {r.id: r.ack_valid_s for r in self.rules if r.ack_valid_s}
         # while one of these holds, no replacement rate is suggested
         self._hypovolaemia_rules = {r.id for r in self.rules if isinstance(r.check, Hypovolemia)}
         self._due: dict[str, float] = {}  # bed -> its rules' next due time
@@ -588,7 +589,8 @@ class Engine:
                     and bool(self._holding(e.bed, e.time))
                 )  # fmt: skip
                 e = replace(
-                    e, ack_topic=self._ack_topic, ack_valid_s=self.book.ack_validity_s,
+                    e, ack_topic=self._ack_topic,
+                    ack_valid_s=self._ack_valid.get(e.rule, self.book.ack_validity_s),
                     clock=self.clock(e.time),
                     advice=adv.to_json() if adv is not None and current else None,
                 )  # fmt: skip

@@ -8,7 +8,14 @@ from __future__ import annotations
 import tomllib
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from .alarms import Priority
 
@@ -38,6 +45,9 @@ class PriorityPolicy(_Strict):
     # after the last tier, page everyone reached so far again at this interval;
     # absent = no re-notification
     renotify_s: Annotated[int, Field(gt=0, le=DAY_S)] | None = None
+    # each re-notification waits twice as long as the one before, up to this (absent:
+    # always renotify_s): urgent at first, never silent, bounded over hours
+    renotify_max_s: Annotated[int, Field(gt=0, le=DAY_S)] | None = None
 
     @field_validator("tiers")
     @classmethod
@@ -48,6 +58,23 @@ class PriorityPolicy(_Strict):
             if tiers[n].after_s <= tiers[n - 1].after_s:
                 raise ValueError(f"tiers.{n}.after_s must be later than tiers.{n - 1}.after_s")
         return tiers
+
+    @model_validator(mode="after")
+    def _backoff(self) -> PriorityPolicy:
+        if self.renotify_max_s is not None:
+            if self.renotify_s is None:
+                raise ValueError("renotify_max_s needs renotify_s")
+            if self.renotify_max_s < self.renotify_s:
+                raise ValueError("renotify_max_s must not be below renotify_s")
+        return self
+
+    def renotify_after(self, repeats: int) -> float | None:
+        """The wait before the next re-notification, after `repeats` of them."""
+        if self.renotify_s is None:
+            return None
+        if self.renotify_max_s is None:
+            return float(self.renotify_s)
+        return float(min(self.renotify_s * 2 ** min(repeats, 16), self.renotify_max_s))
 
     def roles_up_to(self, tier: int) -> tuple[str, ...]:
         """Everyone paged so far: an escalation adds people, it does not drop the

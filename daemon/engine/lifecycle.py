@@ -583,17 +583,17 @@ class AlarmBook:
             if free and rec.activated_at is not None:
                 pol = self._policy.for_priority(rec.priority)
                 if rec.latched_clear:  # shown until acknowledged; re-paged at most hourly
-                    if rec.paged_at is not None:
+                    if rec.paged_at is not None and pol.renotify_s is not None:
                         raw.append((rec.paged_at + _renotify_s(rec, pol), T.RENOTIFY))
                 elif not rec.present:
                     pass  # in its clear-hold: nobody is paged for a condition that has gone
                 elif rec.tier + 1 < len(pol.tiers):
                     raw.append((rec.activated_at + pol.tiers[rec.tier + 1].after_s, T.ESCALATE))
-                elif pol.renotify_s is not None:
+                elif (wait := pol.renotify_after(rec.renotified)) is not None:
                     base = rec.paged_at
                     if base is None:
                         base = rec.activated_at + pol.tiers[-1].after_s
-                    raw.append((base + pol.renotify_s, T.RENOTIFY))
+                    raw.append((base + wait, T.RENOTIFY))
         elif s is State.ACKNOWLEDGED:
             if rec.clear_since is not None:
                 raw.append((rec.clear_since + rec.spec.clear_hold_s, T.HOLD_ELAPSED))
@@ -617,7 +617,7 @@ class AlarmBook:
             if trig is T.RENOTIFY:
                 # After downtime, send the latest overdue re-notification once, not
                 # every one that was missed.
-                later = t + _renotify_s(rec, self._policy.for_priority(rec.priority))
+                later = t + _renotify_s(rec, self._policy.for_priority(rec.priority), 1)
                 if later <= now and all(d[0] > later for d in due[1:]):
                     rec.renotified += 1
                     rec.paged_at = t
@@ -657,7 +657,7 @@ class AlarmBook:
         # bookkeeping that belongs to the trigger
         if trig in (T.ACK, T.ACK_LATCHED_CLEAR):
             rec.ack_by, rec.ack_role = by, role
-            rec.ack_until = t + self.ack_validity_s
+            rec.ack_until = t + (rec.spec.ack_valid_s or self.ack_validity_s)
             rec.latched_clear = False
         elif trig is T.CLEARED_LATCHED:
             rec.latched_clear = True
@@ -731,12 +731,14 @@ class AlarmBook:
         return True
 
 
-def _renotify_s(rec: _Record, pol: PriorityPolicy) -> float:
-    """The re-notification interval: the policy's while the condition persists; for a
-    latched alarm whose condition has ended, at least an hour."""
+def _renotify_s(rec: _Record, pol: PriorityPolicy, ahead: int = 0) -> float:
+    """The wait before the next re-notification (`ahead` more after it): the policy's
+    while the condition persists; for a latched alarm whose condition has ended, at
+    least an hour."""
+    wait = pol.renotify_after(rec.renotified + ahead)
     if rec.latched_clear:
-        return max(float(pol.renotify_s or LATCHED_RENOTIFY_S), LATCHED_RENOTIFY_S)
-    return float(pol.renotify_s or 0.0)
+        return max(wait or LATCHED_RENOTIFY_S, LATCHED_RENOTIFY_S)
+    return wait or 0.0
 
 
 def _view(r: _Record) -> AlarmView:

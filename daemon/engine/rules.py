@@ -228,6 +228,9 @@ class RuleDef(BaseModel):
     also_notify: list[Role] = Field(default_factory=list)
     # while this rule's condition holds, the bed gets replacement advice every hour
     replacement_advice: bool = False
+    # how long an acknowledgement holds before a persisting condition re-activates the
+    # alarm; absent: the service's (60 min). Longer for conditions that change slowly.
+    ack_valid_s: Annotated[int, Field(ge=300, le=86400)] | None = None
     check: Check
 
     @model_validator(mode="after")
@@ -255,6 +258,7 @@ class RuleDef(BaseModel):
             clear_hold_s=self.clear_hold_s,
             low_output=self.low_output,
             also_notify=tuple(self.also_notify),
+            ack_valid_s=self.ack_valid_s,
         )
 
 
