@@ -88,7 +88,10 @@ class Tally:
     acks: int = 0
     advice: int = 0
     first_alarm: str | None = None
+    start: float = 0.0  # simulated time the ward started at
     end: float = 0.0  # simulated time the ward stopped at
+    beds: int = 0
+    paged: set[str] = field(default_factory=set)  # alarm ids that paged anyone
 
 
 class Nurse:
@@ -167,12 +170,13 @@ def _on_message(msg: mqtt.MQTTMessage, beds: dict[str, BedView], tally: Tally, n
         tally.events[body["state"]] += 1
         if body.get("notify"):
             tally.pages += 1
+            tally.paged.add(body["alarm_id"])
         if body["state"] == "active" and body.get("reason") in ("condition_met", "delay_elapsed"):
             tally.rules[body["rule"]] += 1
             tally.first_alarm = tally.first_alarm or body["alarm_id"]
         nurse.consider(body)
         who = f" -> page {', '.join(body['notify'])}" if body.get("notify") else ""
-        lines.put(f"{body['time'][11:16]} {body['pager']}{who}")
+        lines.put(f"{body['pager']}{who}")  # the pager line starts with its clock time
     elif kind == "advice":
         tally.advice += 1
         view.advice = _rate(body)
@@ -281,7 +285,7 @@ def run_demo(
         logging.getLogger().setLevel(saved_log[2])
         log_file.close()
     tally.acks = nurse.sent
-    tally.end = clock.now()
+    tally.start, tally.end, tally.beds = sim_start, clock.now(), len(built.beds)
     _summary(console, tally, journal, work)
     return 0
 
@@ -312,6 +316,13 @@ def _summary(console: Console, tally: Tally, journal: Path, work: Path) -> None:
     console.print(f"  alarms raised: {sum(tally.rules.values())} ({opened})")
     states = ", ".join(f"{s} {n}" for s, n in sorted(tally.events.items()))
     console.print(f"  lifecycle events: {states or 'none'}; pages sent: {tally.pages}")
+    bed_days = tally.beds * max(tally.end - tally.start, 1.0) / 86400
+    per_alarm = tally.pages / len(tally.paged) if tally.paged else 0.0
+    console.print(
+        f"  pages per alarm that paged: {num(per_alarm, 1)} ({len(tally.paged)} alarms); "
+        f"pages per bed-day: {num(tally.pages / bed_days, 1)} ({tally.beds} beds, "
+        f"{num(bed_days / max(tally.beds, 1) * 24, 1)} h)"
+    )
     console.print(
         f"  acknowledged by the demo nurse: {tally.acks}; advice messages: {tally.advice}"
     )

@@ -38,7 +38,7 @@ from .engine.rules import (
     BagFull,
     FlowStopped,
     HourlyAbove,
-    Hypovolemia,
+    Hypovolaemia,
     LabAbove,
     LabBelow,
     LabFall,
@@ -73,7 +73,7 @@ def rule_window_s(rule: RuleDef) -> float:
         return 0.0  # the bag's level comes with the next reading
     if isinstance(c, NoUsableData):
         return float(c.max_gap_s)
-    if isinstance(c, Hypovolemia):
+    if isinstance(c, Hypovolaemia):
         return max(c.balance_window_h * HOUR, float(c.vitals_max_age_s))
     if isinstance(c, LabAbove | LabBelow):
         return float(c.max_age_s)

@@ -9,7 +9,7 @@ from pydantic import ValidationError
 
 from .engine.advice import AdvicePolicy
 from .engine.escalation import EscalationPolicy, load_policy_text
-from .engine.rules import RuleDef
+from .engine.rules import RuleDef, canonical_rule_id
 from .errors import UserError, describe_validation
 
 BUNDLED = Path(__file__).resolve().parent.parent / "alert_rules"
@@ -32,7 +32,7 @@ def load_rule(path: Path) -> RuleDef:
         rule = RuleDef.model_validate(_toml(path))
     except ValidationError as exc:
         raise UserError(describe_validation(path, exc)) from None
-    if rule.id != path.stem:
+    if rule.id != canonical_rule_id(path.stem):
         raise UserError(f"{path}: id: {rule.id!r} must match the file name {path.stem!r}")
     return rule
 

@@ -216,7 +216,7 @@ def test_disabled_rules_in_the_context_silence_a_rule() -> None:
     assert w.alarms("pod-hourly") == []
     # the other rules still run on this bed: the hypovolaemia check sees the output
     bed.vitals(at(3, seconds=30), heart_rate_bpm=110, systolic_mmhg=100)  # SI 1.1: Mutschler 2013
-    assert "hypovolemia-risk" in w.fired()
+    assert "hypovolaemia-risk" in w.fired()
     # ... and another bed on the same engine is not affected
     other = Bed(w, bed="b02", device="rc-0202", weight_kg=70.0)
     other.bind(at(3, minutes=1))
@@ -315,7 +315,7 @@ def test_alarm_events_are_json_with_the_issue_fields() -> None:
     bed = diuresis_bed()
     bed.vitals(at(3, seconds=30), heart_rate_bpm=110, systolic_mmhg=100)  # SI 1.1
     events = bed.ward.alarms()
-    assert {e.rule for e in events} >= {"pod-hourly", "replacement-behind", "hypovolemia-risk"}
+    assert {e.rule for e in events} >= {"pod-hourly", "replacement-behind", "hypovolaemia-risk"}
     for e in events:
         obj = json.loads(json.dumps(e.to_json()))
         for key in ("time", "alarm_id", "bed", "ward", "rule", "priority", "kind", "state",

@@ -621,7 +621,7 @@ def test_next_due_is_exactly_the_next_change() -> None:
     specs = [
         rule(condition_delay_s=600, priority=Priority.LOW),
         rule(rule_id="pod-hourly", latching=True, low_output=False, condition_delay_s=0),
-        rule(rule_id="hypovolemia-risk", low_output=False, condition_delay_s=120, clear_hold_s=60),
+        rule(rule_id="hypovolaemia-risk", low_output=False, condition_delay_s=120, clear_hold_s=60),
     ]
     book.update(T0, "b1", "w1", specs[0], True, "s", {})
     book.update(T0 + 30, "b2", "w1", specs[1], True, "s", {})
@@ -792,8 +792,8 @@ def test_a_pending_alarm_that_clears_names_the_suppression_that_holds_now() -> N
 
 
 def test_priority_override_raises_and_lowers() -> None:
-    # hypovolemia-risk: high with a haemodynamic sign, else medium (DESIGN §4)
-    bed = Bed(rule(rule_id="hypovolemia-risk", low_output=False, condition_delay_s=0))
+    # hypovolaemia-risk: high with a haemodynamic sign, else medium (DESIGN §4)
+    bed = Bed(rule(rule_id="hypovolaemia-risk", low_output=False, condition_delay_s=0))
     bed.update(True)
     [up] = bed.update(True, dt=60, prio=Priority.HIGH)
     assert (up.state, up.reason, up.priority, up.notify) == (
@@ -873,7 +873,7 @@ SPECS = [
         condition_delay_s=300,
         clear_hold_s=0,
     ),
-    rule(rule_id="hypovolemia-risk", low_output=False, condition_delay_s=120, clear_hold_s=600),
+    rule(rule_id="hypovolaemia-risk", low_output=False, condition_delay_s=120, clear_hold_s=600),
 ]
 
 _op = st.one_of(
@@ -917,7 +917,7 @@ def test_snapshot_resume_mid_episode_gives_identical_later_events() -> None:
     assert {(v.rule, v.state) for v in book.active()} == {
         ("oliguria-kdigo-1", State.ACTIVE),
         ("pod-hourly", State.ESCALATED),
-        ("hypovolemia-risk", State.PENDING),
+        ("hypovolaemia-risk", State.PENDING),
     }
     assert ("oliguria-kdigo-1", "suppression_lifted") in {(e.rule, e.reason) for e in mid}
     resumed = AlarmBook.restore(json.loads(json.dumps(book.snapshot())), POLICY)
@@ -1028,7 +1028,7 @@ def test_policy_needs_every_priority() -> None:
 
 
 def test_lowering_to_a_shorter_chain_keeps_the_tier_within_it() -> None:
-    bed = Bed(rule(rule_id="hypovolemia-risk", low_output=False, condition_delay_s=0))
+    bed = Bed(rule(rule_id="hypovolaemia-risk", low_output=False, condition_delay_s=0))
     bed.update(True, prio=Priority.HIGH)
     bed.tick(T0 + 600)  # high: tiers 1 and 2
     assert bed.log[-1].tier == 2
@@ -1041,7 +1041,7 @@ def test_lowering_to_a_shorter_chain_keeps_the_tier_within_it() -> None:
 def test_tick_returns_events_of_several_alarms_in_time_order() -> None:
     book = AlarmBook(POLICY)
     slow = rule(condition_delay_s=900)
-    fast = rule(rule_id="hypovolemia-risk", low_output=False, condition_delay_s=60)
+    fast = rule(rule_id="hypovolaemia-risk", low_output=False, condition_delay_s=60)
     book.update(T0, "b1", "w1", slow, True, "s", {})  # opened first, due later
     book.update(T0 + 10, "b2", "w1", fast, True, "s", {})
     evs = book.tick(T0 + 2000)

@@ -59,7 +59,7 @@ def _base_messages() -> list[Message]:
     msgs += sim.records
     bed = f"hourwatch/beds/{BED}"
     msgs += [
-        # SI 1.1 (Mutschler 2013: >= 1.0 is a sign) with > 200 mL/h: hypovolemia-risk, high
+        # SI 1.1 (Mutschler 2013: >= 1.0 is a sign) with > 200 mL/h: hypovolaemia-risk, high
         (T0 + 2.5 * 3600 + 3.3, f"{bed}/vitals",
          {"time": iso_z(T0 + 2.5 * 3600), "heart_rate_bpm": 110, "systolic_mmhg": 100}),
         (T0 + 2.75 * 3600 + 1.1, f"{bed}/intake",
@@ -139,7 +139,7 @@ def wall_clock(engine: Engine, msgs: tuple[Message, ...] | list[Message], step_s
 def test_the_scenario_has_something_to_compare() -> None:
     ref = reference()
     text = "\n".join(ref)
-    for rule in ("pod-hourly", "replacement-behind", "hypovolemia-risk", "sodium-high",
+    for rule in ("pod-hourly", "replacement-behind", "hypovolaemia-risk", "sodium-high",
                  "labs-due", "meter-offline", "data-gap"):  # fmt: skip
         assert f'"rule": "{rule}"' in text, rule
     for state in ("active", "escalated", "acknowledged"):

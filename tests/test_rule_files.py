@@ -34,7 +34,7 @@ DESIGN_RULES: dict[str, tuple[Kind, Priority, bool]] = {
     "replacement-behind": (Kind.PHYSIOLOGICAL, Priority.MEDIUM, False),
     "replacement-excess": (Kind.ADVISORY, Priority.LOW, False),
     # medium without a haemodynamic sign; the check raises it to high with one
-    "hypovolemia-risk": (Kind.PHYSIOLOGICAL, Priority.MEDIUM, False),
+    "hypovolaemia-risk": (Kind.PHYSIOLOGICAL, Priority.MEDIUM, False),
     "sodium-high": (Kind.PHYSIOLOGICAL, Priority.MEDIUM, False),
     "sodium-rise": (Kind.PHYSIOLOGICAL, Priority.HIGH, True),
     "labs-due": (Kind.REMINDER, Priority.LOW, False),
@@ -238,3 +238,29 @@ def test_bad_escalation_policy(tmp_path: Path) -> None:
     msg = str(exc.value)
     assert "\n" not in msg
     assert msg.startswith(f"{tmp_path / 'escalation.toml'}: high.tiers.1.after_s: ")
+
+
+def test_the_old_spelling_of_the_hypovolaemia_rule_is_still_accepted(tmp_path: Path) -> None:
+    """One spelling throughout (hypovolaemia); a site's own rule folder, bed contexts and
+    annotations that use the old id keep working."""
+    from daemon.engine.context import BedContext
+    from daemon.engine.rules import canonical_alarm_id
+
+    rules = tmp_path / "rules"
+    shutil.copytree(BUNDLED, rules)
+    text = (rules / "hypovolaemia-risk.toml").read_text(encoding="utf-8")
+    (rules / "hypovolaemia-risk.toml").unlink()
+    old = text.replace('"hypovolaemia-risk"', '"hypovolemia-risk"').replace(
+        'type = "hypovolaemia"', 'type = "hypovolemia"'
+    )
+    (rules / "hypovolemia-risk.toml").write_text(old, encoding="utf-8")
+    loaded = {r.id: r for r in load_rules(rules)}
+    assert "hypovolaemia-risk" in loaded and "hypovolemia-risk" not in loaded
+    assert loaded["hypovolaemia-risk"].check.type == "hypovolaemia"
+    ctx = BedContext.model_validate(
+        {"ward": "w", "device_ids": [], "disabled_rules": ["hypovolemia-risk"]}
+    )
+    assert ctx.disabled_rules == ["hypovolaemia-risk"]
+    assert canonical_alarm_id("b1/hypovolemia-risk/20260314T010000Z") == (
+        "b1/hypovolaemia-risk/20260314T010000Z"
+    )

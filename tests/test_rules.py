@@ -316,16 +316,16 @@ def diuresis(ml_h: float = 300.0, hours: int = 2) -> Bed:
 
 
 def hypo_events(bed: Bed) -> list[tuple[State, Priority]]:
-    return [(e.state, e.priority) for e in bed.ward.alarms("hypovolemia-risk")]
+    return [(e.state, e.priority) for e in bed.ward.alarms("hypovolaemia-risk")]
 
 
 def test_e7_shock_index_is_a_sign() -> None:
     """E7: HR 110 / SBP 100 gives SI 1.10 >= 1.0 (Mutschler class moderate)."""
     # source: Mutschler M et al., Crit Care 2013;17:R172 (SI >= 1.0); worked example E7
     bed = diuresis()
-    assert "hypovolemia-risk" not in bed.ward.fired()  # high output alone is not enough
+    assert "hypovolaemia-risk" not in bed.ward.fired()  # high output alone is not enough
     bed.vitals(at(2, seconds=30), heart_rate_bpm=110, systolic_mmhg=100, diastolic_mmhg=70)
-    ev = bed.ward.first("hypovolemia-risk")
+    ev = bed.ward.first("hypovolaemia-risk")
     assert ev is not None
     assert ev.time == at(2, seconds=30)
     assert ev.priority is Priority.HIGH  # with a haemodynamic sign (DESIGN §4)
@@ -339,7 +339,7 @@ def test_e7_low_map_is_a_sign() -> None:
     bed = diuresis()
     # HR 80: SI 0.89 < 1.0 and HR <= 100, so MAP is the only sign
     bed.vitals(at(2, seconds=30), heart_rate_bpm=80, systolic_mmhg=90, diastolic_mmhg=50)
-    ev = bed.ward.first("hypovolemia-risk")
+    ev = bed.ward.first("hypovolaemia-risk")
     assert ev is not None and ev.priority is Priority.HIGH
     assert ev.evidence["map_mmhg"] == pytest.approx(63.3)
     assert ev.evidence["signs"] == ["MAP 63 mmHg"]
@@ -367,7 +367,7 @@ def test_negative_balance_alone_is_medium() -> None:
     bed = started(70.0)
     bed.intake(at(0, 30), 100.0)
     bed.hours([300.0] * 4)  # 1200 out, 100 in: -1100 mL = -15.7 mL/kg at 70 kg
-    ev = bed.ward.first("hypovolemia-risk")
+    ev = bed.ward.first("hypovolaemia-risk")
     assert ev is not None and ev.priority is Priority.MEDIUM
     assert ev.evidence["balance_low"] is True
     assert ev.evidence["balance_ml_kg"] < -15.0  # Hourwatch's own threshold

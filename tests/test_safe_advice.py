@@ -130,7 +130,7 @@ def test_hypovolaemia_holds_every_rate_until_the_signs_clear() -> None:
     assert advice_kinds(bed)[-1] is AdviceKind.RATE
     bed.vitals(at(3, seconds=20), heart_rate_bpm=116, systolic_mmhg=80, mean_mmhg=60)
     w = bed.ward
-    hypo = w.first("hypovolemia-risk")
+    hypo = w.first("hypovolaemia-risk")
     assert hypo is not None and hypo.priority is Priority.HIGH
     assert "assess volume status" in hypo.pager()
     assert hypo.advice is None and not any(f in text_of(hypo) for f in FLUIDS)
@@ -141,11 +141,11 @@ def test_hypovolaemia_holds_every_rate_until_the_signs_clear() -> None:
     assert all("mL/h" not in (e.advice or {}).get("pager", "") for e in pod_pages)
     assert all(a.advice.rate_high_ml_h is None for a in w.advice() if a.time >= at(3, 20))
     # signs clear: HR 80, SBP 125, MAP 90 (SI 0.64); once the alarm has ended (after its
-    # 15-min clear-hold, alert_rules/hypovolemia-risk.toml) the rate comes back
+    # 15-min clear-hold, alert_rules/hypovolaemia-risk.toml) the rate comes back
     bed.vitals(at(4, seconds=20), heart_rate_bpm=80, systolic_mmhg=125, mean_mmhg=90)
     assert w.advice()[-1].advice.kind is AdviceKind.HELD_CIRCULATION
     bed.hours([300.0])
-    ended = w.first("hypovolemia-risk", State.RESOLVED)
+    ended = w.first("hypovolaemia-risk", State.RESOLVED)
     assert ended is not None and ended.time == at(4, seconds=20) + 900
     back = w.advice()[-1]
     assert back.advice.kind is AdviceKind.RATE and back.time >= ended.time
@@ -353,7 +353,7 @@ def test_no_message_breaks_the_safety_rules(spec: dict[str, Any]) -> None:
         bed.vitals(at(seconds=40), heart_rate_bpm=116, systolic_mmhg=80, mean_mmhg=60)
     bed.hours(spec["hours"])
     w = bed.ward
-    hypo_on = [(e.time, e.state) for e in w.alarms("hypovolemia-risk")]
+    hypo_on = [(e.time, e.state) for e in w.alarms("hypovolaemia-risk")]
     for e in w.effects:
         words = text_of(e)
         named = {f for f in FLUIDS if f in words}
@@ -378,7 +378,7 @@ def _hypovolaemia_holds(w: Ward, t: float) -> bool:
     """Whether the hypovolaemia condition held at t, from its events (a pending or open
     alarm whose condition had not cleared)."""
     state = False
-    for e in w.alarms("hypovolemia-risk"):
+    for e in w.alarms("hypovolaemia-risk"):
         if e.time > t:
             break
         state = e.state not in (State.RESOLVED, State.INACTIVE)

@@ -278,7 +278,7 @@ def test_physiological_pod(tmp_path_factory: pytest.TempPathFactory) -> None:
     # it does not stay behind
     behind = [a for a in r.alarms() if a.rule == "replacement-behind"]
     assert not behind or behind[-1].state is State.RESOLVED
-    assert "hypovolemia-risk" not in r.rules_raised()
+    assert "hypovolaemia-risk" not in r.rules_raised()
     advice = [e for e in r.effects if type(e).__name__ == "AdviceIssued"]
     assert len(advice) >= 10  # one per completed clock hour while POD is open
 
@@ -295,7 +295,7 @@ def test_pathological_pod(tmp_path_factory: pytest.TempPathFactory) -> None:
     # source: 50-75% replacement practice (Halbgewachs 2015, from memory)
     assert "replacement-behind" in raised
     # shock index >= 1.0 is "moderate" (Mutschler et al., Crit Care 2013)
-    hypo = [a for a in r.alarms() if a.rule == "hypovolemia-risk" and a.state is State.ACTIVE]
+    hypo = [a for a in r.alarms() if a.rule == "hypovolaemia-risk" and a.state is State.ACTIVE]
     assert hypo and hypo[0].priority == "high"
     # source: hypernatraemia > 145 mmol/L (Adrogué & Madias, NEJM 2000)
     assert "sodium-high" in raised
@@ -362,7 +362,7 @@ def test_the_demo_ward_shows_every_picture(tmp_path_factory: pytest.TempPathFact
     r = replayed("ward-demo", tmp_path_factory)
     expect = {
         "bed-02": {"pod-hourly"},
-        "bed-03": {"pod-hourly", "pod-24h", "replacement-behind", "hypovolemia-risk",
+        "bed-03": {"pod-hourly", "pod-24h", "replacement-behind", "hypovolaemia-risk",
                    "sodium-high"},
         "bed-04": {"oliguria-kdigo-1", "oliguria-kdigo-2", "oliguria-kdigo-3"},
         "bed-05": {"flow-stopped"},

@@ -7,6 +7,7 @@ import sqlite3
 import sys
 from pathlib import Path
 
+from ..engine.rules import canonical_alarm_id
 from ..errors import UserError
 from ..profile_files import load_profiles
 from ..review import verdicts
@@ -44,6 +45,7 @@ def run(args: argparse.Namespace) -> int:
     if not args.source.is_file():
         raise UserError(f"{args.source}: no such file")
     parse_alarm_id(args.alarm_id)
+    args.alarm_id = canonical_alarm_id(args.alarm_id)  # an old rule id names the same alarm
     if args.note is not None and len(args.note) > 2000:
         raise UserError("--note: at most 2000 characters")
     rules = load_rules(args.rules)

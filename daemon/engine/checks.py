@@ -456,7 +456,7 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
     return Finding(cond, explain)
 
 
-def hypovolemia(c: r.Hypovolemia, v: BedView) -> Finding:
+def hypovolaemia(c: r.Hypovolaemia, v: BedView) -> Finding:
     end = v.end
     if end is None:
         return NOT_YET
@@ -653,7 +653,7 @@ CHECKS: dict[type, Callable[[Any, BedView], Finding]] = {
     r.BagFull: bag_full,
     r.NoUsableData: no_usable_data,
     r.ReplacementRatio: replacement_ratio,
-    r.Hypovolemia: hypovolemia,
+    r.Hypovolaemia: hypovolaemia,
     r.LabAbove: lab_above,
     r.LabBelow: lab_below,
     r.LabRise: lab_rise,

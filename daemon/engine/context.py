@@ -4,9 +4,10 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, model_validator
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from .advice import ReplacementOrder
+from .rules import canonical_rule_id
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
 WeightBasis = Literal["actual", "ideal", "adjusted"]
@@ -55,9 +56,14 @@ class BedContext(BaseModel):
     device_ids: Annotated[list[DeviceId], Field(max_length=8)]
     weight_kg: Annotated[float, Field(gt=0, le=400)] | None = None
     weight_basis: WeightBasis | None = None
-    # per-bed overrides, by clinician order
+    # per-bed overrides, by clinician order (an old rule id reads as its current one)
     disabled_rules: list[Annotated[str, Field(max_length=64)]] = Field(default_factory=list)
     # the clinician's replacement order; without one no fluid or rate is suggested
     replacement: ReplacementOrder | None = None
     tbw_fraction: Annotated[float, Field(ge=0.3, le=0.7)] = 0.6  # total body water / weight
     episodes: Annotated[list[Episode], Field(max_length=32)] = Field(default_factory=list)
+
+    @field_validator("disabled_rules")
+    @classmethod
+    def _current_ids(cls, ids: list[str]) -> list[str]:
+        return [canonical_rule_id(x) for x in ids]

@@ -40,7 +40,7 @@ from .evaluator import Evaluator, criterion_holds
 from .lifecycle import AlarmBook
 from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outcome
 from .profiles import DeviceProfile, Semantics
-from .rules import Hypovolemia, ReplacementRatio, RuleDef
+from .rules import Hypovolaemia, ReplacementRatio, RuleDef
 from .series import MinuteSeries
 from .timefmt import LocalClock, as_epoch
 from .windows import measure
@@ -185,7 +185,7 @@ class Engine:
         }  # fmt: skip
         self._ack_valid = {r.id: r.ack_valid_s for r in self.rules if r.ack_valid_s}
         # while one of these holds, no replacement rate is suggested
-        self._hypovolaemia_rules = {r.id for r in self.rules if isinstance(r.check, Hypovolemia)}
+        self._hypovolaemia_rules = {r.id for r in self.rules if isinstance(r.check, Hypovolaemia)}
         self._due: dict[str, float] = {}  # bed -> its rules' next due time
         self._heap: list[tuple[float, str]] = []  # (due, bed), stale entries skipped
 

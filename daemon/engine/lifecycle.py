@@ -346,7 +346,7 @@ class AlarmBook:
             elif sup is None:
                 self._fire(slot, self._lift_trigger(rec, now), now, out)
             # else another technical alarm took over: the record names it, no new event
-        # 3. priority (e.g. hypovolemia-risk gains or loses a haemodynamic sign)
+        # 3. priority (e.g. hypovolaemia-risk gains or loses a haemodynamic sign)
         if prio != rec.priority:
             up = URGENCY[prio] > URGENCY[rec.priority]
             rec.priority = prio

@@ -6,7 +6,7 @@ themselves live in `checks.py`. Nothing in a rule file is evaluated as code.
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
@@ -14,6 +14,23 @@ from .alarms import Kind, Priority, RuleSpec
 from .escalation import Role
 
 RULE_ID = r"^[a-z0-9][a-z0-9-]{1,62}$"
+
+# Rule ids and check types renamed to one spelling (British, as everywhere else), old
+# name -> new: still accepted in rule files, bed contexts and annotations.
+RULE_ALIASES: dict[str, str] = {"hypovolemia-risk": "hypovolaemia-risk"}
+CHECK_ALIASES: dict[str, str] = {"hypovolemia": "hypovolaemia"}
+
+
+def canonical_rule_id(rule_id: str) -> str:
+    return RULE_ALIASES.get(rule_id, rule_id)
+
+
+def canonical_alarm_id(alarm_id: str) -> str:
+    """BED/RULE/STAMP with the rule's current id (an annotation may name an old one)."""
+    parts = alarm_id.split("/")
+    if len(parts) == 3 and parts[1] in RULE_ALIASES:
+        parts[1] = RULE_ALIASES[parts[1]]
+    return "/".join(parts)
 
 # Serum results a rule can read (fields of the labs message).
 Analyte = Literal[
@@ -111,8 +128,8 @@ class ReplacementRatio(_Check):
     min_output_ml: Annotated[float, Field(ge=0)] = 50.0
 
 
-class Hypovolemia(_Check):
-    type: Literal["hypovolemia"]
+class Hypovolaemia(_Check):
+    type: Literal["hypovolaemia"]
     hourly_above_ml: Annotated[float, Field(gt=0)] = 200.0
     shock_index_at_least: Annotated[float, Field(gt=0)] = 1.0
     map_below_mmhg: Annotated[float, Field(gt=0)] = 65.0
@@ -182,7 +199,7 @@ Check = Annotated[
     | BagFull
     | NoUsableData
     | ReplacementRatio
-    | Hypovolemia
+    | Hypovolaemia
     | LabAbove
     | LabBelow
     | LabRise
@@ -233,6 +250,23 @@ class RuleDef(BaseModel):
     ack_valid_s: Annotated[int, Field(ge=300, le=86400)] | None = None
     check: Check
 
+    @model_validator(mode="before")
+    @classmethod
+    def _old_names(cls, data: Any) -> Any:
+        """Old spellings in a rule file (see RULE_ALIASES) read as the current ones."""
+        if not isinstance(data, dict):
+            return data
+        data = dict(data)
+        if isinstance(data.get("id"), str):
+            data["id"] = canonical_rule_id(data["id"])
+        if isinstance(data.get("while_active"), list):
+            data["while_active"] = [canonical_rule_id(x) if isinstance(x, str) else x
+                                    for x in data["while_active"]]  # fmt: skip
+        check = data.get("check")
+        if isinstance(check, dict) and check.get("type") in CHECK_ALIASES:
+            data["check"] = check | {"type": CHECK_ALIASES[check["type"]]}
+        return data
+
     @model_validator(mode="after")
     def _consistent(self) -> RuleDef:
         if isinstance(self.check, ReplacementRatio | Reminder) and not self.while_active:
@@ -275,7 +309,7 @@ DEFAULT_RULE_IDS = (
     "bag-full",
     "replacement-behind",
     "replacement-excess",
-    "hypovolemia-risk",
+    "hypovolaemia-risk",
     "sodium-high",
     "sodium-rise",
     "sodium-low",

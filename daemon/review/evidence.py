@@ -227,7 +227,7 @@ def windows_at(rule: r.RuleDef, bed: BedState) -> list[WindowFact]:
             "min_output_ml": c.min_output_ml,
         }
         return [_fact(bed, f"last {c.window_h} h", "window", w, thr, meets)]
-    if isinstance(c, r.Hypovolemia):
+    if isinstance(c, r.Hypovolaemia):
         w = measure(series, end, 60, bed.residual)
         thr = {"volume_ml": c.hourly_above_ml, "comparator": ">"}
         return [_fact(bed, "last hour", "hour", w, thr, above(w.volume_ml, c.hourly_above_ml))]

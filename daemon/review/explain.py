@@ -26,7 +26,7 @@ from ..engine.evaluator import OPEN
 from ..engine.numbers import half_up, num, pct
 from ..engine.outcomes import COUNTED_IN_SERIES, Outcome
 from ..engine.profiles import DeviceProfile
-from ..engine.rules import RuleDef
+from ..engine.rules import RuleDef, canonical_alarm_id
 from ..engine.timefmt import iso
 from ..errors import UserError
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
@@ -306,6 +306,7 @@ def explain(
     progress: TextIO | None = None,
     advice: AdvicePolicy = DEFAULT_POLICY,
 ) -> dict[str, Any]:
+    alarm_id = canonical_alarm_id(alarm_id)  # an old rule id names the same alarm
     bed, _ = parse_alarm_id(alarm_id)
     rv = review(
         path,

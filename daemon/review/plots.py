@@ -148,7 +148,7 @@ def _thresholds(pic: BedPicture) -> tuple[list[tuple[float, str]], list[tuple[fl
         c = rule.check
         if isinstance(c, r.HourlyAbove):
             hourly.setdefault(c.threshold_ml_h, []).append(rule.id)
-        elif isinstance(c, r.Hypovolemia):
+        elif isinstance(c, r.Hypovolaemia):
             hourly.setdefault(c.hourly_above_ml, []).append(rule.id)
         elif isinstance(c, r.VolumeAbove) and c.window_h == 24:
             day.setdefault(c.threshold_ml, []).append(rule.id)

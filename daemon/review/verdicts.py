@@ -12,6 +12,8 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
+from ..engine.rules import canonical_alarm_id, canonical_rule_id
+
 SUFFIX = ".annotations.sqlite"
 SCHEMA_VERSION = 1
 
@@ -97,11 +99,11 @@ def _rows(con: sqlite3.Connection, tail: str, params: tuple[object, ...]) -> lis
         f"FROM annotation {tail}",
         params,
     )
-    return [
+    return [  # an annotation of an alarm under a rule's old id counts for its current id
         Annotation(
-            r[0],
+            canonical_alarm_id(r[0]),
             r[1],
-            r[2],
+            canonical_rule_id(r[2]),
             float(r[3]),
             None if r[4] is None else float(r[4]),
             bool(r[5]),
