@@ -70,6 +70,11 @@ def test_raising_pod_hourly_to_250_drops_the_borderline_alarm_only(
     assert delay["n"] == 1 and 4.0 <= delay["median_min"] <= 6.0
     assert pod["burden_b"]["alarms_per_bed_day"] < pod["burden_a"]["alarms_per_bed_day"]
     assert pod["burden_b"]["minutes_in_alarm"] < pod["burden_a"]["minutes_in_alarm"]
+    # pages per bed-day per rule: the alarm that went took its pages with it
+    assert 0 < pod["burden_b"]["pages"] < pod["burden_a"]["pages"]
+    assert pod["burden_a"]["pages_per_bed_day"] == pytest.approx(
+        pod["burden_a"]["pages"] / c["bed_days_a"], rel=0.01  # bed-days shown to 3 decimals
+    )
     # the replacement rule only runs while pod-* is open, so it follows
     rep = next(r for r in c["rules"] if r["rule"] == "replacement-behind")
     assert (rep["only_a"], rep["only_b"]) == (1, 0)
@@ -77,6 +82,7 @@ def test_raising_pod_hourly_to_250_drops_the_borderline_alarm_only(
     assert main(["replay", str(night), "--compare", str(raised)]) == 0
     out = capsys.readouterr().out
     assert "only under A: bed-bord/pod-hourly/" in out
+    assert "pages/bed-day A" in out
     assert "only under B" not in out
     assert "Decision support only" in out
 

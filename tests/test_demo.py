@@ -27,6 +27,7 @@ def test_demo_runs_a_ward_and_its_journal_replays_to_the_same_alarms(
     assert run_demo(sim_hours=4, speed=20, seed=7, out=out, keep_dir=tmp_path) == 0
     text = out.getvalue()
     assert "Summary" in text and "journal:" in text
+    assert "pages per alarm that paged:" in text and "pages per bed-day:" in text
     assert " ".join(CAUTION.split()) in " ".join(text.split())
     assert "pod-hourly" in text  # the ward has a post-obstructive diuresis (invented)
     journal = tmp_path / "journal.db"

@@ -122,6 +122,7 @@ def test_alarm_table_links_to_explanations(made: tuple[Path, str, Checker, Path]
         anchor = "alarm-" + re.sub(r"[^A-Za-z0-9_.-]", "-", alarm_id)
         assert anchor in ids and f'href="#{anchor}"' in text
     assert "recomputed windows equal the alarm event" in text
+    assert "<th>pages per bed-day</th>" in text and "<th>pages per alarm</th>" in text
 
 
 def test_acknowledgement_shown(made: tuple[Path, str, Checker, Path]) -> None:

@@ -158,6 +158,7 @@ _TIE_ORDER: dict[Trigger, int] = {
 # A latched alarm whose condition has ended is shown until acknowledged, but re-paged at
 # most this often, to the tiers already reached, and never escalated (DESIGN §5).
 LATCHED_RENOTIFY_S = 3600.0
+LATCHED_RENOTIFY_MAX_S = 4 * 3600.0
 _ANNUNCIATED = (State.ACTIVE, State.ESCALATED)
 _ENDED = (State.INACTIVE, State.RESOLVED)
 
@@ -735,9 +736,11 @@ def _renotify_s(rec: _Record, pol: PriorityPolicy, ahead: int = 0) -> float:
     """The wait before the next re-notification (`ahead` more after it): the policy's
     while the condition persists; for a latched alarm whose condition has ended, at
     least an hour."""
-    wait = pol.renotify_after(rec.renotified + ahead)
-    if rec.latched_clear:
-        return max(wait or LATCHED_RENOTIFY_S, LATCHED_RENOTIFY_S)
+    n = rec.renotified + ahead
+    wait = pol.renotify_after(n)
+    if rec.latched_clear:  # hourly at first, then every 2 h, then every 4 h
+        latched = min(LATCHED_RENOTIFY_S * float(2 ** min(n, 8)), LATCHED_RENOTIFY_MAX_S)
+        return max(wait or 0.0, latched)
     return wait or 0.0
 
 

@@ -32,6 +32,7 @@ def canonical_alarm_id(alarm_id: str) -> str:
         parts[1] = RULE_ALIASES[parts[1]]
     return "/".join(parts)
 
+
 # Serum results a rule can read (fields of the labs message).
 Analyte = Literal[
     "serum_na_mmol_l", "serum_k_mmol_l", "serum_mg_mmol_l", "serum_phosphate_mmol_l",

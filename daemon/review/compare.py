@@ -78,9 +78,16 @@ def match(a: RunSummary, b: RunSummary) -> Match:
 
 
 def _burden(run: RunSummary, eps: list[Episode]) -> dict[str, float]:
-    per_day = len(eps) / run.bed_days if run.bed_days > 0 else 0.0
+    days = run.bed_days
+    per_day = len(eps) / days if days > 0 else 0.0
+    pages = sum(e.pages for e in eps)
     minutes = sum(e.minutes_in_alarm(run.end) for e in eps)
-    return {"alarms_per_bed_day": half_up(per_day, 3), "minutes_in_alarm": half_up(minutes, 1)}
+    return {
+        "alarms_per_bed_day": half_up(per_day, 3),
+        "pages": pages,
+        "pages_per_bed_day": half_up(pages / days if days > 0 else 0.0, 2),
+        "minutes_in_alarm": half_up(minutes, 1),
+    }
 
 
 def _delays(pairs: list[tuple[Episode, Episode]]) -> dict[str, Any]:
@@ -205,7 +212,8 @@ def text(c: dict[str, Any]) -> list[str]:
         f"{num(c['bed_days_b'], 2)} under B",
         "",
         f"  {'rule':<22} {'A':>4} {'B':>4} {'only A':>7} {'only B':>7} {'both':>5} "
-        f"{'B-A min to alarm':>17} {'per bed-day A':>14} {'B':>6} {'min in alarm A':>15} {'B':>8}",
+        f"{'B-A min to alarm':>17} {'per bed-day A':>14} {'B':>6} {'pages/bed-day A':>16} "
+        f"{'B':>6} {'min in alarm A':>15} {'B':>8}",
     ]
     for row in [*c["rules"], c["total"]]:
         ba, bb = row["burden_a"], row["burden_b"]
@@ -214,6 +222,7 @@ def text(c: dict[str, Any]) -> list[str]:
             f"  {row['rule']:<22} {row['a']:>4} {row['b']:>4} {row['only_a']:>7} "
             f"{row['only_b']:>7} {row['both']:>5} {delay:>17} "
             f"{num(ba['alarms_per_bed_day'], 2):>14} {num(bb['alarms_per_bed_day'], 2):>6} "
+            f"{num(ba['pages_per_bed_day'], 1):>16} {num(bb['pages_per_bed_day'], 1):>6} "
             f"{num(ba['minutes_in_alarm']):>15} {num(bb['minutes_in_alarm']):>8}"
         )
     lines.append("")

@@ -47,6 +47,11 @@ class Episode:
         start = self.activated if self.activated is not None else self.onset
         return start, self.ended if self.ended is not None else max(end_of_replay, start)
 
+    @property
+    def pages(self) -> int:
+        """Events that paged anyone (activation, escalations, re-notifications, returns)."""
+        return sum(1 for e in self.events if e.notify)
+
     def minutes_in_alarm(self, end_of_replay: float) -> float:
         if self.activated is None:
             return 0.0

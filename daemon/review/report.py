@@ -136,6 +136,7 @@ def render(
         f'<p class="caution">{_e(CAUTION)}</p>',
         _overview(inp, rv, run),
         '<h2 id="alarms">Alarms</h2>',
+        _burden_table(run),
         _alarm_table(raised, rv.episodes, end),
     ]
     if inp.comparison_html:
@@ -200,6 +201,30 @@ def _overview(inp: ReportInput, rv: Review, run: RunSummary) -> str:
         f"<table>{body}</table><p>Beds: {links or 'none'} · "
         '<a href="#alarms">alarms</a> · <a href="#quality">data quality</a></p>'
     )
+
+
+def _burden_table(run: RunSummary) -> str:
+    """Per rule: alarms and pages per bed-day, so a unit can see what its pager carries."""
+    if not run.raised:
+        return ""
+    rows = []
+    rules = sorted({e.rule for e in run.raised})
+    for rule in [*rules, None]:
+        eps = [e for e in run.raised if rule is None or e.rule == rule]
+        pages = sum(e.pages for e in eps)
+        per_alarm = pages / len(eps) if eps else 0.0
+        days = run.bed_days or 1.0
+        name = "all rules" if rule is None else rule
+        rows.append(
+            f'<tr><td>{_e(name)}</td><td class="n">{len(eps)}</td>'
+            f'<td class="n">{num(len(eps) / days, 2)}</td><td class="n">{pages}</td>'
+            f'<td class="n">{num(pages / days, 1)}</td><td class="n">{num(per_alarm, 1)}</td></tr>'
+        )
+    head = (
+        "<tr><th>rule</th><th>alarms</th><th>alarms per bed-day</th><th>pages</th>"
+        "<th>pages per bed-day</th><th>pages per alarm</th></tr>"
+    )
+    return f"<table>{head}{''.join(rows)}</table>"
 
 
 def _prio(p: object) -> str:
