@@ -237,7 +237,7 @@ def load_config(
         raise UserError(describe_validation(Path(where), exc).replace("\n", " ")) from None
     if cfg.broker.password_file is not None:
         cfg.broker.secret()  # unreadable file: say so now, not at the first connect
-    if cfg.notify.enabled:  # roles against the escalation policy; secrets readable
+    if cfg.notify.channels or cfg.notify.routes:  # channels, roles, secrets
         from .notify.settings import check_notify, policy_roles
         from .rule_files import load_policy
 

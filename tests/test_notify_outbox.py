@@ -264,8 +264,11 @@ def test_an_acknowledged_alarm_cancels_its_pages_still_waiting(tmp_path, servers
         n.wake()
         store = n.store
         assert store is not None
-        hl7 = wait_until(lambda: [d for d in store.deliveries() if d.channel == "alert-mgr"
-                                  and d.status == "cancelled"], 5, "the HL7 page cancelled")  # fmt: skip
+        def cancelled() -> list:
+            return [d for d in store.deliveries()
+                    if d.channel == "alert-mgr" and d.status == "cancelled"]  # fmt: skip
+
+        hl7 = wait_until(cancelled, 5, "the HL7 page cancelled")
     finally:
         n.stop()
     assert "acknowledged" in (hl7[0].answer or "")

@@ -146,31 +146,6 @@ class NotifyConfig(_Strict):
             raise ValueError("ack_base_url must be an http(s) URL without query or fragment")
         return v.rstrip("/")
 
-    @model_validator(mode="after")
-    def _consistent(self) -> NotifyConfig:
-        names = [c.name for c in self.channels]
-        for i, n in enumerate(names):
-            if n in names[:i]:
-                raise ValueError(f"channels.{i}.name: channel {n!r} is defined twice")
-        kinds = {c.name: c.kind for c in self.channels}
-        for i, r in enumerate(self.routes):
-            if r.channel not in kinds:
-                known = ", ".join(names) or "none defined"
-                raise ValueError(f"routes.{i}.channel: unknown channel {r.channel!r} "
-                                 f"(channels: {known})")  # fmt: skip
-            pattern = MAIL_ADDRESS if kinds[r.channel] == "smtp" else RECIPIENT
-            for j, to in enumerate(r.to):
-                if not pattern.match(to):
-                    what = "a mail address" if kinds[r.channel] == "smtp" else "a recipient id"
-                    raise ValueError(f"routes.{i}.to.{j}: {to!r} is not {what}")
-        if self.retry_max_s < self.retry_min_s:
-            raise ValueError("retry_max_s must be at least retry_min_s")
-        if self.ack_base_url is not None and (
-            (self.ack_secret_env is None) == (self.ack_secret_file is None)
-        ):
-            raise ValueError("ack_base_url needs ack_secret_env or ack_secret_file, one")
-        return self
-
     @property
     def enabled(self) -> bool:
         return bool(self.channels)
@@ -210,11 +185,41 @@ def _read_secret(key: str, env_name: str | None, path: Path | None,
     return value
 
 
+def _structure(cfg: NotifyConfig) -> None:
+    """Checks across keys; ValueError("KEY: message") with KEY under notify."""
+    names = [c.name for c in cfg.channels]
+    for i, n in enumerate(names):
+        if n in names[:i]:
+            raise ValueError(f"channels.{i}.name: channel {n!r} is defined twice")
+    kinds = {c.name: c.kind for c in cfg.channels}
+    for i, r in enumerate(cfg.routes):
+        if r.channel not in kinds:
+            known = ", ".join(names) or "none defined"
+            raise ValueError(f"routes.{i}.channel: unknown channel {r.channel!r} "
+                             f"(channels: {known})")  # fmt: skip
+        pattern = MAIL_ADDRESS if kinds[r.channel] == "smtp" else RECIPIENT
+        for j, to in enumerate(r.to):
+            if not pattern.match(to):
+                what = "a mail address" if kinds[r.channel] == "smtp" else "a recipient id"
+                raise ValueError(f"routes.{i}.to.{j}: {to!r} is not {what}")
+    if cfg.retry_max_s < cfg.retry_min_s:
+        raise ValueError("retry_max_s: must be at least retry_min_s")
+    if cfg.ack_base_url is not None and (
+        (cfg.ack_secret_env is None) == (cfg.ack_secret_file is None)
+    ):
+        raise ValueError("ack_base_url: needs ack_secret_env or ack_secret_file, one of them")
+
+
 def check_notify(cfg: NotifyConfig, roles: set[str], where: str,
                  env: Mapping[str, str] | None = None) -> Secrets:  # fmt: skip
-    """What the file alone cannot say: every route and technical role is a role of the
-    escalation policy, and every secret can be read. UserError: one line naming the key."""
+    """What one key alone cannot say: channels named by routes exist, addresses suit their
+    channel, every route and technical role is a role of the escalation policy, and every
+    secret can be read. UserError: one line naming the key."""
     env = os.environ if env is None else env
+    try:
+        _structure(cfg)
+    except ValueError as exc:
+        raise UserError(f"{where}: notify.{exc}") from None
     known = ", ".join(sorted(roles))
     for i, r in enumerate(cfg.routes):
         if r.role not in roles:
