@@ -1,0 +1,296 @@
+"""The live service with paging channels, end to end: a REAL Mosquitto (tests/broker.py),
+the service, and the three real servers of tests/paging.py (aiosmtpd, an http.server that
+checks the webhook signature, an MLLP listener that parses with hl7apy).
+
+Beds, meters and volumes are invented. The stream is a post-obstructive diuresis at an
+invented 300 mL/h after a recorded obstruction relief; the criterion it must meet:
+# source: Halbgewachs C, Domes T. Postobstructive diuresis. Can Fam Physician
+# 2015;61(2):137-42 -- > 200 mL/h for 2 consecutive hours
+"""
+
+from __future__ import annotations
+
+import json
+import time
+import urllib.error
+import urllib.request
+from collections import Counter
+from datetime import UTC, datetime
+from typing import Any
+
+import pytest
+
+from daemon.engine.engine import Engine
+from daemon.journal import Journal
+from daemon.notify import acklinks
+from daemon.profile_files import load_profiles
+from daemon.replay import replay_file
+from daemon.rule_files import load_policy, load_rules
+from simulator.meterlog import constant, simulate
+from tests.broker import (
+    Watcher,
+    broker,  # noqa: F401  (the fixture)
+    publish_all,
+    publisher,
+    running_service,
+)
+from tests.paging import MailCatcher, MllpListener, WebhookReceiver, free_port, wait_until
+
+PROFILE = {p.name: p for p in load_profiles()}["reference-cumulative"]
+FLOW_ML_H = 300.0  # invented: a clear post-obstructive diuresis
+HOOK_KEY = "invented-webhook-key-0123456789"
+ACK_KEY = "invented-ack-link-key-0123456789"
+
+
+def context(device: str, start: float) -> dict[str, Any]:
+    relieved = datetime.fromtimestamp(start - 2 * 3600, UTC).isoformat()
+    return {"ward": "icu-east", "device_ids": [device], "weight_kg": 80,
+            "weight_basis": "actual",
+            "episodes": [{"kind": "obstruction_relieved", "at": relieved}]}  # fmt: skip
+
+
+def readings(device: str, start: float, hours: float) -> list[tuple[str, Any]]:
+    sim = simulate(PROFILE, device, datetime.fromtimestamp(start, UTC), hours, constant(FLOW_ML_H))
+    return [(topic, payload) for _, topic, payload in sim.records]
+
+
+def raise_pod_alarm(pub: Any, bed: str, device: str) -> None:
+    """Three hours of buffered readings uploaded at once: the pod-hourly alarm fires."""
+    start = time.time() - 3 * 3600
+    publish_all(pub, [(f"hourwatch/beds/{bed}/context", context(device, start))], retain=True)
+    publish_all(pub, readings(device, start, 3.0))
+
+
+class Servers:
+    def __init__(self) -> None:
+        self.mail = MailCatcher()
+        self.hook = WebhookReceiver(HOOK_KEY.encode())
+        self.mllp_port = free_port()
+        self.mllp: MllpListener | None = MllpListener(["AA"], port=self.mllp_port)
+        self.hl7_seen: list[Any] = []
+
+    def hl7_down(self) -> None:
+        assert self.mllp is not None
+        self.hl7_seen += self.mllp.received
+        self.mllp.stop()
+        self.mllp = None
+
+    def hl7_up(self) -> None:
+        self.mllp = MllpListener(["AA"], port=self.mllp_port)
+
+    def hl7(self) -> list[Any]:
+        return self.hl7_seen + (self.mllp.received if self.mllp else [])
+
+    def stop(self) -> None:
+        self.mail.stop()
+        self.hook.stop()
+        if self.mllp:
+            self.mllp.stop()
+
+
+@pytest.fixture
+def servers(monkeypatch):
+    monkeypatch.setenv("HW_TEST_HOOK_KEY", HOOK_KEY)
+    monkeypatch.setenv("HW_TEST_ACK_KEY", ACK_KEY)
+    s = Servers()
+    yield s
+    s.stop()
+
+
+def notify(s: Servers, **kw: Any) -> dict[str, Any]:
+    return {
+        "channels": [
+            {"name": "pager-mail", "kind": "smtp", "host": "127.0.0.1", "port": s.mail.port,
+             "sender": "hourwatch@icu-east.example", "timeout_s": 2},
+            {"name": "unit-hook", "kind": "webhook", "url": s.hook.url,
+             "secret_env": "HW_TEST_HOOK_KEY", "timeout_s": 2},
+            {"name": "alert-mgr", "kind": "hl7v2-mllp", "host": "127.0.0.1",
+             "port": s.mllp_port, "timeout_s": 2},
+        ],
+        "routes": [
+            {"role": "bedside-nurse", "channel": "pager-mail", "to": ["nurse-east@pager.example"],
+             "ward": "icu-east"},
+            {"role": "bedside-nurse", "channel": "unit-hook", "to": ["team-east"]},
+            {"role": "bedside-nurse", "channel": "alert-mgr", "to": ["east-station"]},
+        ],
+        # the bound under test: 2 failed attempts in a row, or 8 s after the first failure
+        "fail_after_attempts": 2, "fail_after_s": 8, "retry_min_s": 0.5, "retry_max_s": 1,
+    } | kw  # fmt: skip
+
+
+def pod_alarms(w: Watcher, state: str = "active") -> list[dict[str, Any]]:
+    return [a for a in w.json("hourwatch/alarms/")
+            if a["rule"] == "pod-hourly" and a["state"] == state]  # fmt: skip
+
+
+def get(url: str) -> Any:
+    with urllib.request.urlopen(url, timeout=5) as r:
+        return json.loads(r.read()) if "json" in r.headers["Content-Type"] else r.read().decode()
+
+
+def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
+    broker, tmp_path, servers  # noqa: F811
+):
+    jpath = tmp_path / "j.db"
+    health = free_port()
+    w = Watcher(broker)
+    overrides = {"notify": notify(servers), "health__listen": f"127.0.0.1:{health}"}
+    with running_service(broker, jpath, w, **overrides):
+        pub = publisher(broker)
+        # 1. a post-obstructive diuresis alarm reaches the nurse over all three channels
+        raise_pod_alarm(pub, "b01", "rc-0101")
+        (a1,) = w.wait_for(lambda w: pod_alarms(w), 10, "the pod-hourly alarm on MQTT")
+        t_alarm = time.monotonic()
+        (mail,) = servers.mail.wait(1, timeout=10)
+        wait_until(lambda: servers.hook.received and servers.hl7(), 10, "webhook and HL7 pages")
+        took = time.monotonic() - t_alarm
+        assert mail["Subject"] == a1["pager"]
+        assert servers.hook.received[0].json()["page"] == a1["pager"]
+        assert servers.hook.received[0].json()["alarm"]["alarm_id"] == a1["alarm_id"]
+        assert servers.hl7()[0].answered == "AA" and a1["alarm_id"] in servers.hl7()[0].raw
+        assert took < 10  # "within seconds": all three confirmed inside the wait above
+        # 2. the alert manager dies; a second bed alarms: mail and webhook keep delivering,
+        # the dead channel raises its technical alarm within the bound (2 attempts / 8 s)
+        servers.hl7_down()
+        raise_pod_alarm(pub, "b02", "rc-0202")
+        (a2,) = w.wait_for(lambda w: [a for a in pod_alarms(w) if a["bed"] == "b02"], 10, "b02")
+        t_b02 = time.monotonic()
+        servers.mail.wait(2, timeout=10)
+        wait_until(lambda: len(servers.hook.received) >= 2, 10, "the b02 webhook page")
+        def technical(w: Watcher) -> list[dict[str, Any]]:
+            return [s for s in w.json("hourwatch/status") if s.get("technical_alarms")]
+
+        status = w.wait_for(technical, 15, "the technical alarm in the retained status")
+        raised_after = time.monotonic() - t_b02
+        assert raised_after < 8 + 2 * 2 + 1  # fail_after_s, plus two attempts' timeouts
+        tech = status[-1]["technical_alarms"][0]
+        assert tech["code"] == "notify_channel_failing" and "alert-mgr" in tech["text"]
+        mails = servers.mail.wait(3, timeout=10)  # the technical alarm, paged by mail
+        assert "TECHNICAL ALARM" in mails[2]["Subject"] and "alert-mgr" in mails[2]["Subject"]
+        body = get(f"http://127.0.0.1:{health}/health")
+        assert body["notify"]["channels"]["alert-mgr"]["state"] == "failing"
+        assert body["notify"]["channels"]["pager-mail"]["state"] == "ok"
+        assert any(t["code"] == "notify_channel_failing" for t in body["technical_alarms"])
+        metrics = get(f"http://127.0.0.1:{health}/metrics")
+        assert 'hourwatch_notify_channel_failing{channel="alert-mgr"} 1' in metrics
+        assert 'hourwatch_notify_pages_total{channel="pager-mail",outcome="confirmed"} 3' \
+            in metrics  # fmt: skip
+        pub.disconnect()
+    # 3. restart with the b02 HL7 page still in flight; the alert manager is back
+    servers.hl7_up()
+    with running_service(broker, jpath, w, **overrides):
+        wait_until(lambda: any(a2["alarm_id"] in r.raw for r in servers.hl7()), 15, "b02 HL7")
+        w.wait_for(lambda w: [s for s in w.json("hourwatch/status")
+                              if s["status"] == "online" and not s.get("technical_alarms")],
+                   15, "the technical alarm resolved in the status")  # fmt: skip
+        servers.mail.wait(4, timeout=10)  # its resolution, by mail
+        time.sleep(1.5)  # anything sent twice would have arrived by now
+    w.close()
+    assert "resolved" in servers.mail.mails[3]["Subject"]
+    # nobody got the same page twice, on any channel, across the restart
+    for seen in (Counter(m["Message-ID"] for m in servers.mail.mails),
+                 Counter(h.headers["Idempotency-Key"] for h in servers.hook.received),
+                 Counter(r.message.msh.msh_10.to_er7() for r in servers.hl7())):  # fmt: skip
+        assert set(seen.values()) == {1}, seen
+    assert len(servers.mail.mails) == 4 and len(servers.hook.received) == 4
+    assert [a1["alarm_id"] in r.raw or a2["alarm_id"] in r.raw for r in servers.hl7()] == [
+        True, True]  # fmt: skip
+    with Journal(jpath) as j:
+        kinds = Counter(ev.body["state"] for ev in j.events_between(None, None)
+                        if ev.kind == "notify_alarm")  # fmt: skip
+    assert kinds == {"active": 1, "resolved": 1}
+
+
+def test_acknowledgement_link_get_shows_post_acknowledges_once(broker, tmp_path, servers):  # noqa: F811
+    jpath = tmp_path / "j.db"
+    health = free_port()
+    base = f"http://127.0.0.1:{health}"
+    w = Watcher(broker)
+    cfg = notify(servers, ack_base_url=base, ack_secret_env="HW_TEST_ACK_KEY")
+    with running_service(broker, jpath, w, notify=cfg, health__listen=f"127.0.0.1:{health}") \
+            as svc:  # fmt: skip
+        pub = publisher(broker)
+        raise_pod_alarm(pub, "b01", "rc-0101")
+        (alarm,) = w.wait_for(lambda w: pod_alarms(w), 10, "the pod-hourly alarm")
+        (mail,) = servers.mail.wait(1, timeout=10)
+        wait_until(lambda: servers.hook.received, 10, "the webhook page")
+        url = next(line for line in mail.get_content().splitlines() if line.startswith(base))
+        assert servers.hook.received[0].json()["ack_url"].startswith(base + "/ack/")
+        assert servers.hook.received[0].json()["ack_url"] != url  # one link per recipient
+        # GET shows a confirmation page and acknowledges nothing (a link preview is safe)
+        page = get(url)
+        assert "Acknowledge as bedside-nurse" in page and alarm["alarm_id"] in page
+        assert 'method="post"' in page
+        time.sleep(0.5)
+        assert not pod_alarms(w, "acknowledged")
+        # a tampered token is refused
+        token = url.rsplit("/", 1)[1]
+        forged = token[:-2] + ("AA" if not token.endswith("AA") else "BB")
+        for method, data in (("GET", None), ("POST", b"by=someone")):
+            forged_req = urllib.request.Request(f"{base}/ack/{forged}", data=data, method=method)
+            with pytest.raises(urllib.error.HTTPError) as exc:
+                urllib.request.urlopen(forged_req, timeout=5)
+            assert exc.value.code == 403
+        # POST acknowledges once, as the role the page went to, through the engine
+        req = urllib.request.Request(url, data=b"by=nurse+seven", method="POST")
+        with urllib.request.urlopen(req, timeout=10) as r:
+            assert r.status == 200 and "Acknowledged by nurse seven" in r.read().decode()
+        (acked,) = w.wait_for(lambda w: pod_alarms(w, "acknowledged"), 5, "the ack event")
+        assert (acked["by"], acked["role"]) == ("nurse seven", "bedside-nurse")
+        with pytest.raises(urllib.error.HTTPError) as exc:  # reused
+            urllib.request.urlopen(urllib.request.Request(url, data=b"", method="POST"), timeout=5)
+        assert exc.value.code == 409
+        with pytest.raises(urllib.error.HTTPError) as exc:  # and its GET says so
+            urllib.request.urlopen(url, timeout=5)
+        assert exc.value.code == 409 and "already used" in exc.value.read().decode()
+        # the same handler, an hour and a minute later: the link has expired
+        n = svc.notifier
+        assert n is not None and n.store is not None
+        later = acklinks.AckLinks(ACK_KEY.encode(), n.store, svc.acknowledge_from_link,
+                                  lambda: time.time() + 3660)  # fmt: skip
+        hook_url = servers.hook.received[0].json()["ack_url"]
+        reply = later.handle("POST", hook_url[len(base):], b"")
+        assert reply is not None and reply.status == 410
+        pub.disconnect()
+    w.close()
+    # journaled as an acknowledgement message with who and role: a replay agrees
+    with Journal(jpath) as j:
+        acks = [json.loads(m.payload) for m in j.messages_between(None, None)
+                if m.topic == "hourwatch/ack"]  # fmt: skip
+    assert acks == [{"alarm_id": alarm["alarm_id"], "by": "nurse seven", "role": "bedside-nurse"}]
+    engine = Engine(load_profiles(), load_rules(), load_policy())
+    replayed = replay_file(jpath, engine, warn=None).effects
+    states = [(e.state, e.by, e.role) for e in replayed
+              if getattr(e, "alarm_id", None) == alarm["alarm_id"]]  # fmt: skip
+    assert ("acknowledged", "nurse seven", "bedside-nurse") in states
+
+
+def test_notify_test_command_reports_each_recipient(tmp_path, servers, capsys):
+    from daemon.cli import main
+
+    conf = tmp_path / "hw.toml"
+    n = notify(servers)
+    lines = []
+    for c in n["channels"]:
+        lines.append("[[notify.channels]]")
+        lines += [f"{k} = {json.dumps(v)}" for k, v in c.items()]
+    for r in n["routes"]:
+        lines.append("[[notify.routes]]")
+        lines += [f"{k} = {json.dumps(v)}" for k, v in r.items()]
+    conf.write_text(f'[journal]\npath = "{tmp_path / "j.db"}"\n' + "\n".join(lines) + "\n")
+    assert main(["notify-test", "--config", str(conf), "--role", "bedside-nurse"]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0].startswith("ok    pager-mail (smtp)  nurse-east@pager.example  SMTP 250")
+    assert out[1].startswith("ok    unit-hook (webhook)  team-east  HTTP 200")
+    assert out[2].startswith("ok    alert-mgr (hl7v2-mllp)  east-station  ACK AA")
+    assert out[3] == "3 of 3 test pages confirmed for role bedside-nurse"
+    assert servers.mail.mails[0]["Subject"].startswith("TEST PAGE, not an alarm")
+    assert servers.hook.received[0].json()["type"] == "test"
+    assert "TEST PAGE" in servers.hl7()[0].raw
+    assert not (tmp_path / "j.db").exists()  # nothing journaled
+    servers.hl7_down()
+    assert main(["notify-test", "--config", str(conf), "--role", "bedside-nurse"]) == 1
+    out = capsys.readouterr().out.splitlines()
+    assert out[2].startswith("FAIL  alert-mgr (hl7v2-mllp)  east-station  MLLP")
+    assert main(["notify-test", "--config", str(conf), "--role", "icu-physician"]) == 2
+    assert "--role: no route for role 'icu-physician'" in capsys.readouterr().err
