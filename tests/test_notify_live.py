@@ -16,6 +16,7 @@ import urllib.error
 import urllib.request
 from collections import Counter
 from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -294,3 +295,92 @@ def test_notify_test_command_reports_each_recipient(tmp_path, servers, capsys):
     assert out[2].startswith("FAIL  alert-mgr (hl7v2-mllp)  east-station  MLLP")
     assert main(["notify-test", "--config", str(conf), "--role", "icu-physician"]) == 2
     assert "--role: no route for role 'icu-physician'" in capsys.readouterr().err
+
+
+def outbox(jpath: Path) -> list[tuple[str, str, str]]:
+    """(channel, status, alarm id) of every delivery, read-only (the service is writing)."""
+    import sqlite3
+
+    db = sqlite3.connect(f"file:{jpath}?mode=ro", uri=True)
+    try:
+        return db.execute("SELECT channel, status, alarm_id FROM deliveries ORDER BY id").fetchall()
+    except sqlite3.OperationalError:  # not created yet
+        return []
+    finally:
+        db.close()
+
+
+def test_kill_9_with_a_page_in_flight_then_restart_sends_it_once(broker, tmp_path, servers):  # noqa: F811
+    """The alert manager is down: the HL7 page waits in the outbox while mail and webhook
+    deliver. The service is killed -9; the alert manager comes back; the restarted
+    service sends the waiting page once and repeats none of the confirmed ones."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    jpath = tmp_path / "j.db"
+    n = notify(servers)
+    lines = ['[health]\nlisten = ""', f'[journal]\npath = "{jpath}"',
+             f'[broker]\nhost = "{broker.host}"\nport = {broker.port}\n'
+             'client_id = "hourwatch-kill-test"']  # fmt: skip
+    for c in n.pop("channels"):
+        lines.append("[[notify.channels]]\n" + "\n".join(f"{k} = {json.dumps(v)}"
+                                                         for k, v in c.items()))  # fmt: skip
+    for r in n.pop("routes"):
+        lines.append("[[notify.routes]]\n" + "\n".join(f"{k} = {json.dumps(v)}"
+                                                       for k, v in r.items()))  # fmt: skip
+    head = "[notify]\n" + "\n".join(f"{k} = {json.dumps(v)}" for k, v in n.items())
+    conf = tmp_path / "hw.toml"
+    conf.write_text("\n".join([lines[0], lines[1], lines[2], head, *lines[3:]]) + "\n")
+    root = Path(__file__).resolve().parent.parent
+    env = dict(os.environ, PYTHONPATH=str(root))
+    cmd = [sys.executable, "-m", "daemon.cli", "run", "--config", str(conf)]
+    w = Watcher(broker)
+    servers.hl7_down()
+    proc = None
+
+    def start(k: int) -> subprocess.Popen[bytes]:
+        seen = len(w.json("hourwatch/status"))
+        with (tmp_path / f"service-{k}.log").open("w") as log:  # kept for a post-mortem
+            p = subprocess.Popen(cmd, env=env, stdout=log, stderr=log)
+        w.wait_for(lambda w: [s for s in w.json("hourwatch/status")[seen:]
+                              if s["status"] != "offline"], 20, "the service online")  # fmt: skip
+        return p
+
+    try:
+        proc = start(0)
+        pub = publisher(broker)
+        raise_pod_alarm(pub, "b01", "rc-0101")
+        (alarm,) = w.wait_for(lambda w: pod_alarms(w), 10, "the pod-hourly alarm")
+
+        def settled() -> bool:  # every page but the HL7 one confirmed, incl. the technical
+            rows = outbox(jpath)
+            waiting = {(ch, a.split("/")[0]) for ch, st, a in rows if st != "confirmed"}
+            return any(a.startswith("notify/") for _, _, a in rows) and \
+                waiting == {("alert-mgr", "b01")}  # fmt: skip
+
+        wait_until(settled, 20, "mail and webhook confirmed, the HL7 page waiting")
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(10)
+        pub.disconnect()
+        servers.hl7_up()
+        proc = start(1)
+        wait_until(lambda: servers.hl7(), 15, "the waiting HL7 page")
+        wait_until(lambda: all(st == "confirmed" for _, st, _ in outbox(jpath)), 15,
+                   "every page confirmed, the resolution too")  # fmt: skip
+        time.sleep(1.0)  # anything sent twice would have arrived by now
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(15) == 0
+    finally:
+        if proc is not None and proc.poll() is None:
+            proc.kill()
+        w.close()
+    (hl7,) = servers.hl7()  # once, after the restart
+    assert alarm["alarm_id"] in hl7.raw and hl7.answered == "AA"
+    for seen in (Counter(m["Message-ID"] for m in servers.mail.mails),
+                 Counter(h.headers["Idempotency-Key"] for h in servers.hook.received)):  # fmt: skip
+        assert set(seen.values()) == {1}, seen
+    subjects = [m["Subject"] for m in servers.mail.mails]
+    assert subjects[0] == alarm["pager"]
+    assert "TECHNICAL ALARM" in subjects[1] and "resolved" in subjects[2] and len(subjects) == 3

@@ -26,7 +26,7 @@ import json
 import sqlite3
 import threading
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, Protocol
 
@@ -277,7 +277,8 @@ class SqliteDeliveryStore:
                 (channel, now, limit)).fetchall()  # fmt: skip
             c.executemany("UPDATE deliveries SET status = 'sending', attempts = attempts + 1, "
                           "sent_at = ? WHERE id = ?", [(now, r[0]) for r in rows])  # fmt: skip
-            return [_delivery(r) for r in rows]
+            # as updated: `attempts` counts this one
+            return [replace(_delivery(r), status="sending", attempts=r[11] + 1) for r in rows]
 
         out: list[Delivery] = self._write(tx)
         return out
