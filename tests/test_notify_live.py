@@ -384,3 +384,74 @@ def test_kill_9_with_a_page_in_flight_then_restart_sends_it_once(broker, tmp_pat
     subjects = [m["Subject"] for m in servers.mail.mails]
     assert subjects[0] == alarm["pager"]
     assert "TECHNICAL ALARM" in subjects[1] and "resolved" in subjects[2] and len(subjects) == 3
+
+
+def status_report(alarm_id: str, status: str, control: str, person: str = "",
+                  recipient: str = "east-station") -> bytes:  # fmt: skip
+    """An alert manager's ORU^R41, built with hl7apy on the test side."""
+    from hl7apy.core import Message
+
+    m = Message("ORU_R01", version="2.6")
+    m.msh.msh_3 = "ALERT-MGR"
+    m.msh.msh_7 = time.strftime("%Y%m%d%H%M%S+0000", time.gmtime())
+    m.msh.msh_9 = "ORU^R41^ORU_R01"
+    m.msh.msh_10 = control
+    m.msh.msh_11 = "P"
+    order = m.add_group("ORU_R01_PATIENT_RESULT").add_group("ORU_R01_ORDER_OBSERVATION")
+    order.obr.obr_1 = "1"
+    order.obr.obr_3 = alarm_id
+    order.obr.obr_4 = "196616^MDC_EVT_ALARM^MDC"
+    for n, (code, value) in enumerate((("STATUS", status), ("RECIPIENT", recipient)), start=1):
+        obx = order.add_group("ORU_R01_OBSERVATION").obx
+        obx.obx_1, obx.obx_2, obx.obx_3 = str(n), "ST", f"{code}^{code.title()}^99HW"
+        obx.obx_5, obx.obx_11 = value, "F"
+        if code == "STATUS" and person:
+            obx.obx_16 = person
+    return bytes(m.to_er7().encode())
+
+
+def mllp_send(port: int, message: bytes) -> str:
+    """Send one MLLP block, return MSA-1 and MSA-3 of the answer."""
+    import socket
+
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as s:
+        s.sendall(b"\x0b" + message + b"\x1c\r")
+        buf = b""
+        while b"\x1c\r" not in buf:
+            chunk = s.recv(4096)
+            assert chunk, "closed before the ACK"
+            buf += chunk
+    ack = buf.strip(b"\x0b\x1c\r").decode()
+    msa = next(seg for seg in ack.split("\r") if seg.startswith("MSA|")).split("|")
+    return "|".join([msa[1], msa[3] if len(msa) > 3 else ""])
+
+
+def test_hl7_status_report_from_the_alert_manager_acknowledges_when_configured(
+    broker, tmp_path, servers  # noqa: F811
+):
+    status_port = free_port()
+    cfg = notify(servers)
+    cfg["channels"][2] |= {"status_listen": f"127.0.0.1:{status_port}",
+                           "ack_statuses": ["accepted"]}  # fmt: skip
+    w = Watcher(broker)
+    with running_service(broker, tmp_path / "j.db", w, notify=cfg):
+        pub = publisher(broker)
+        raise_pod_alarm(pub, "b01", "rc-0101")
+        (alarm,) = w.wait_for(lambda w: pod_alarms(w), 10, "the pod-hourly alarm")
+        wait_until(lambda: servers.hl7(), 10, "the HL7 page")
+        aid = alarm["alarm_id"]
+        # a status that is not an acceptance is taken (AA) and changes nothing
+        assert mllp_send(status_port, status_report(aid, "delivered", "s1")) == "AA|"
+        time.sleep(0.5)
+        assert not pod_alarms(w, "acknowledged")
+        # not a valid ORU^R41: AR; an alarm we never paged over this channel: AE
+        assert mllp_send(status_port, b"MSH|^~\\&|X||||||ADT^A01|s2|P|2.6").startswith("AR|")
+        unknown = mllp_send(status_port, status_report("b09/pod-hourly/x", "accepted", "s3"))
+        assert unknown.startswith("AE|")
+        # accepted by a person on the alert manager: acknowledged as the paged role
+        answer = mllp_send(status_port, status_report(aid, "Accepted", "s4", "n7^Seven"))
+        assert answer == "AA|", answer
+        (acked,) = w.wait_for(lambda w: pod_alarms(w, "acknowledged"), 5, "the ack event")
+        assert (acked["by"], acked["role"]) == ("n7", "bedside-nurse")
+        pub.disconnect()
+    w.close()

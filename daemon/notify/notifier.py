@@ -21,6 +21,7 @@ again; its pages are deliveries like any other, so nobody is paged twice for it.
 
 from __future__ import annotations
 
+import functools
 import threading
 import time
 from collections import Counter
@@ -33,12 +34,14 @@ from pydantic import ValidationError
 
 from ..engine.alarms import ALARM_CAUTION
 from ..engine.timefmt import iso
+from ..errors import UserError
 from ..health import Histogram
 from ..messages import SCHEMA, AlarmMessage
 from . import acklinks
 from .channels import Sender, sender_for
+from .channels.hl7 import StatusListener, StatusReport
 from .pages import Answer, Page
-from .settings import NotifyConfig, Route, Secrets
+from .settings import Hl7Channel, NotifyConfig, Route, Secrets
 from .store import Delivery, DeliveryStore, JournaledEvent, NewDelivery, SqliteDeliveryStore
 
 ENDED = frozenset({"acknowledged", "resolved", "inactive"})  # nothing left to page
@@ -107,6 +110,8 @@ class Notifier:
         self._threads: list[threading.Thread] = []
         self._next_prune = 0.0
         self.ack_links: acklinks.AckLinks | None = None
+        self.status_listeners: list[StatusListener] = []
+        self._submit: acklinks.Submit | None = None
 
     # --- lifecycle ---------------------------------------------------------------------
     def start(self, submit_ack: acklinks.Submit | None = None) -> None:
@@ -124,6 +129,9 @@ class Notifier:
             st.alarm_id, st.alarm_since = ev.alarm_id, ev.time
         if self.ack_key is not None and self.cfg.ack_base_url and submit_ack is not None:
             self.ack_links = acklinks.AckLinks(self.ack_key, store, submit_ack, self.clock)
+        self._submit = submit_ack
+        if submit_ack is not None:
+            self._listen_for_status()
         self._threads = [threading.Thread(target=self._dispatch, name="hourwatch-notify",
                                           daemon=True)]  # fmt: skip
         for name in self.senders:
@@ -133,7 +141,48 @@ class Notifier:
         for t in self._threads:
             t.start()
 
+    def _listen_for_status(self) -> None:
+        for i, c in enumerate(self.cfg.channels):
+            if not isinstance(c, Hl7Channel) or c.status_listen is None:
+                continue
+            host, _, port = c.status_listen.rpartition(":")
+            try:
+                listener = StatusListener(c, host.strip("[]"), int(port),
+                                          functools.partial(self.on_status, c), self.clock,
+                                          self.log)  # fmt: skip
+            except OSError as exc:
+                for other in self.status_listeners:
+                    other.stop()
+                raise UserError(f"notify.channels.{i}.status_listen: cannot listen on "
+                                f"{c.status_listen}: {exc.strerror or exc}") from None  # fmt: skip
+            listener.start()
+            self.status_listeners.append(listener)
+            self._log("info", "hl7_status_listening", channel=c.name,
+                      address=f"{listener.address[0]}:{listener.address[1]}")  # fmt: skip
+
+    def on_status(self, cfg: Hl7Channel, r: StatusReport) -> tuple[str, str]:
+        """A status report from the alert manager: AA, or AE with the reason. A status in
+        `ack_statuses` acknowledges the alarm as the role its page to that recipient went
+        to, through the engine like any acknowledgement."""
+        self._log("info", "hl7_status", channel=cfg.name, alarm_id=r.alarm_id, status=r.status,
+                  by=r.by, recipient=r.recipient)  # fmt: skip
+        if r.status.lower() not in {x.lower() for x in cfg.ack_statuses}:
+            return "AA", ""
+        store, submit = self.store, self._submit
+        if store is None or submit is None:
+            return "AE", "not running"
+        sent = [d for d in store.deliveries(r.alarm_id) if d.channel == cfg.name
+                and d.status == "confirmed" and r.recipient in (None, d.recipient)]  # fmt: skip
+        if not sent:
+            return "AE", "no page of this alarm went to that recipient over this channel"
+        page = sent[-1]
+        outcome = submit(r.alarm_id, (r.by or page.recipient)[: acklinks.BY_MAX], page.role)
+        return ("AA", "") if outcome.ok else ("AE", outcome.text)
+
     def stop(self, wait_s: float = 5.0) -> None:
+        for listener in self.status_listeners:
+            listener.stop()
+        self.status_listeners = []
         self._stop.set()
         self._wake.set()
         for ev in self._channel_wake.values():

@@ -25,6 +25,7 @@ EnvName = Annotated[str, Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]{0,127}$")]
 Host = Annotated[str, Field(min_length=1, max_length=253)]
 HL7Name = Annotated[str, Field(pattern=r"^[^|^~\\&\r\n]{0,180}$")]  # no HL7 delimiter
 Timeout = Annotated[float, Field(gt=0, le=120)]
+Listen = Annotated[str, Field(pattern=r"^\[?[A-Za-z0-9.:_-]+\]?:[0-9]{1,5}$")]
 MAIL_ADDRESS = re.compile(r"^[^@\s<>,;\"]+@[^@\s<>,;\"]+\.[^@\s<>,;\"]+$")
 RECIPIENT = re.compile(r"^[^\x00-\x1f\x7f]{1,128}$")  # an id in the receiving system
 
@@ -99,6 +100,11 @@ class Hl7Channel(_Strict):
     receiving_application: HL7Name = ""
     receiving_facility: HL7Name = ""
     timeout_s: Timeout = 10.0
+    # Optional: where the alert manager sends status reports (ORU^R41) back; a status in
+    # `ack_statuses` acknowledges the alarm as the role its page went to (docs/operations.md)
+    status_listen: Listen | None = None  # "host:port"
+    ack_statuses: list[Annotated[str, Field(min_length=1, max_length=40)]] = Field(
+        default_factory=lambda: ["accepted"])
 
 
 Channel = Annotated[SmtpChannel | WebhookChannel | Hl7Channel, Field(discriminator="kind")]

@@ -11,9 +11,13 @@ observation of type PL. Observations use a local coding system, 99HW.
 from __future__ import annotations
 
 import socket
+import socketserver
+import threading
 import time
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime
+from typing import Any
 
 from hl7apy.consts import VALIDATION_LEVEL  # type: ignore[import-untyped]
 from hl7apy.core import Message  # type: ignore[import-untyped]
@@ -161,3 +165,138 @@ class Hl7Sender:
         except OSError as exc:
             return Answer(False, f"MLLP: {exc.strerror or exc}"[:300])
         return Answer(True, "MLLP: connection accepted")
+
+
+# --- status reports from the alert manager (optional) --------------------------------------
+@dataclass(frozen=True)
+class StatusReport:
+    """An ORU^R41 from the alert manager about one of our alerts (our layout, modelled
+    on IHE PCD ACM "Report Alert Status"): OBR-3 our alarm id, an OBX `STATUS` with the
+    status word, optionally `RECIPIENT` (as we sent it) and OBX-16 the person."""
+
+    control_id: str
+    alarm_id: str
+    status: str
+    recipient: str | None
+    by: str | None
+
+
+def read_status(text: str) -> StatusReport:
+    """Parse and validate (hl7apy) an ORU^R41; ValueError says what is wrong."""
+    try:
+        msg = parse_message(text, validation_level=VALIDATION_LEVEL.STRICT)
+        msg.validate()
+    except HL7apyException as exc:
+        raise ValueError(f"not a valid HL7 v2 message: {exc}") from None
+    control = msg.msh.msh_10.to_er7()
+    mtype = msg.msh.msh_9.to_er7().split("^")
+    if mtype[:2] != ["ORU", "R41"]:
+        raise ValueError(f"expected ORU^R41, got {'^'.join(mtype[:2])}")
+    order = msg.ORU_R01_PATIENT_RESULT.ORU_R01_ORDER_OBSERVATION
+    alarm_id = unescape(order.obr.obr_3.to_er7().split("^")[0])
+    values: dict[str, str] = {}
+    by: str | None = None
+    for group in order.ORU_R01_OBSERVATION:
+        obx = group.obx
+        code = obx.obx_3.to_er7().split("^")[0].upper()
+        values[code] = unescape(obx.obx_5.to_er7())
+        if code == "STATUS":
+            person = [unescape(x) for x in obx.obx_16.to_er7().split("^")[:2]]
+            by = next((x.strip() for x in person if x.strip()), None)
+    if not alarm_id or "STATUS" not in values:
+        raise ValueError("OBR-3 (the alarm id) and an OBX STATUS are required")
+    return StatusReport(control, alarm_id, values["STATUS"].strip(), values.get("RECIPIENT"), by)
+
+
+def unescape(text: str) -> str:
+    for seq, ch in (("\\F\\", "|"), ("\\S\\", "^"), ("\\T\\", "&"), ("\\R\\", "~")):
+        text = text.replace(seq, ch)
+    return text.replace("\\E\\", "\\")
+
+
+def ack_message(cfg: Hl7Channel, control: str, code: str, text: str, now: float) -> str:
+    """Our ACK (original mode) to a message the alert manager sent us."""
+    ack = Message("ACK", version=VERSION, validation_level=VALIDATION_LEVEL.STRICT)
+    ack.msh.msh_3 = escape(cfg.sending_application)
+    ack.msh.msh_4 = escape(cfg.sending_facility)
+    ack.msh.msh_5 = escape(cfg.receiving_application)
+    ack.msh.msh_6 = escape(cfg.receiving_facility)
+    ack.msh.msh_7 = hl7_time(now)
+    ack.msh.msh_9 = "ACK^R41^ACK"
+    ack.msh.msh_10 = f"ack-{control}"[:20]
+    ack.msh.msh_11 = "P"
+    ack.msa.msa_1 = code
+    ack.msa.msa_2 = escape(control)
+    if text:
+        ack.msa.msa_3 = escape(text)[:80]
+    out: str = ack.to_er7()
+    return out
+
+
+OnStatus = Callable[[StatusReport], tuple[str, str]]  # -> (MSA-1 code, MSA-3 text)
+
+
+class StatusListener:
+    """An MLLP listener for the alert manager's status reports. Each block is answered:
+    AA (taken), AE (understood, not acted on: e.g. the alarm is over), AR (not a
+    valid ORU^R41)."""
+
+    def __init__(self, cfg: Hl7Channel, host: str, port: int, on_status: OnStatus,
+                 clock: Callable[[], float] = time.time, log: Any = None) -> None:  # fmt: skip
+        self.cfg = cfg
+        listener = self
+
+        class Handler(socketserver.BaseRequestHandler):
+            def handle(self) -> None:
+                sock = self.request
+                sock.settimeout(max(30.0, cfg.timeout_s))
+                buf = b""
+                while True:
+                    try:
+                        chunk = sock.recv(65536)
+                    except OSError:
+                        return
+                    if not chunk:
+                        return
+                    buf += chunk
+                    if len(buf) > MAX_ACK_BYTES:
+                        return
+                    while END in buf:
+                        block, buf = buf.split(END, 1)
+                        start = block.find(START)
+                        reply = listener.answer(block[start + 1 if start >= 0 else 0 :])
+                        sock.sendall(START + reply.encode("utf-8") + END)
+
+        class Server(socketserver.ThreadingTCPServer):
+            allow_reuse_address = True
+            daemon_threads = True
+
+        self._on_status = on_status
+        self._clock = clock
+        self._log = log
+        self.server = Server((host, port), Handler)
+        self.address: tuple[str, int] = self.server.server_address[:2]  # type: ignore[assignment]
+        self._thread = threading.Thread(target=self.server.serve_forever,
+                                        name=f"hourwatch-hl7-status-{cfg.name}", daemon=True)
+
+    def answer(self, block: bytes) -> str:
+        text = block.decode("utf-8", errors="replace").replace("\n", "\r").strip("\r")
+        control = ""
+        try:
+            control = text.split("\r", 1)[0].split("|")[9] if text.startswith("MSH|") else ""
+            report = read_status(text)
+        except (ValueError, IndexError) as exc:
+            if self._log is not None:
+                self._log.warning("hl7_status_refused", channel=self.cfg.name, error=str(exc)[:200])
+            return ack_message(self.cfg, control, "AR", str(exc), self._clock())
+        code, why = self._on_status(report)
+        return ack_message(self.cfg, report.control_id, code, why, self._clock())
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        if self._thread.is_alive():
+            self.server.shutdown()
+            self._thread.join(2.0)
+        self.server.server_close()
