@@ -149,6 +149,11 @@ def test_check_command_prints_the_paging_section_or_one_line(tmp_path, capsys, m
     assert "paging     3 channel(s)" in out
     assert "route   bedside-nurse    -> pager-mail: nurse-east@pager.example (ward icu-east only)" \
         in out  # fmt: skip
+    assert "no route for" not in out  # the three roles of the shipped policy are routed
+    one_role = write(tmp_path, CHANNELS + ROUTES.split("[[notify.routes]]\nrole = \"charge")[0])
+    assert main(["check", "--config", str(one_role)]) == 0
+    assert "no route for charge-nurse, icu-physician: their pages stay on MQTT" in \
+        capsys.readouterr().out  # fmt: skip
     bad = write(tmp_path, CHANNELS + ROUTES.replace('"icu-physician"', '"icu-doctor"'))
     assert main(["check", "--config", str(bad)]) == 2
     err = capsys.readouterr().err.strip().splitlines()

@@ -301,3 +301,34 @@ def test_the_outbox_starts_after_the_events_already_journaled(tmp_path):
         assert store.events_after(store.cursor(), 10) == []
     finally:
         store.close()
+
+
+def test_a_page_whose_event_the_retention_pruned_is_given_up_not_sent(tmp_path, servers):
+    path = fresh_journal(tmp_path)
+    port = servers.mllp.port
+    servers.mllp.stop()
+    cfg = config(servers.mail.port, servers.hook.url, port, fail_after_attempts=50)
+    n = notifier(path, cfg)
+    try:
+        journal(path, event())
+        n.wake()
+        store = n.store
+        assert store is not None
+        wait_until(lambda: any(d.channel == "alert-mgr" and d.attempts
+                               for d in store.deliveries()), 5, "an HL7 attempt")  # fmt: skip
+    finally:
+        n.stop()
+    with Journal(path, retention_days=1) as j:  # two days on: the event is past retention
+        assert j.prune(time.time() + 2 * 86400) >= 1
+    servers.mllp = MllpListener(["AA"], port=port)
+    n = notifier(path, cfg)
+    try:
+        store = n.store
+        assert store is not None
+        (hl7,) = wait_until(lambda: [d for d in store.deliveries()
+                                     if d.channel == "alert-mgr" and d.status == "expired"],
+                            5, "the HL7 page given up")  # fmt: skip
+    finally:
+        n.stop()
+    assert "no longer in the journal" in (hl7.answer or "")
+    assert not servers.mllp.received

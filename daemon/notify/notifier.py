@@ -388,8 +388,10 @@ class Notifier:
         pages: list[Page] = []
         for d in batch:
             page = self.page_for(d)
-            if page is None:  # its event is gone (pruned): nothing to send
-                store.confirm(d.id, now, "not sent: event no longer in the journal")
+            if page is None:  # its event is gone (pruned by the retention): nothing to send
+                store.drop(d.id, now, "not sent: its event is no longer in the journal")
+                with self.lock:
+                    self.counts[(name, "expired")] += 1
                 continue
             pages.append(page)
         with self.lock:
