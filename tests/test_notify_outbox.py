@@ -200,6 +200,7 @@ def test_a_failing_channel_raises_a_technical_alarm_paged_over_the_others(tmp_pa
         wait_until(lambda: n.technical(), 10, "the technical alarm")
         mails = servers.mail.wait(2)  # the alarm's page, then the technical alarm's
         assert "TECHNICAL ALARM" in mails[1]["Subject"] and "alert-mgr" in mails[1]["Subject"]
+        assert mails[1]["Subject"].endswith("Decision support: verify per local protocol.")
         wait_until(lambda: len(servers.hook.received) >= 2, 5, "technical alarm by webhook")
         tech = servers.hook.received[1].json()
         assert tech["type"] == "technical" and tech["alarm"]["channel"] == "alert-mgr"
