@@ -235,13 +235,16 @@ class SqliteDeliveryStore:
         """One transaction: cancel what is still open for alarms that have `ended`
         (acknowledged or over), supersede older open pages to the same recipient for the
         same alarm, insert the new deliveries (a key already present is left alone), and
-        move the cursor to `upto`. Returns how many deliveries were new."""
+        move the cursor to `upto`. Returns how many deliveries were new. A page being
+        sent at that moment is cancelled too: should the channel confirm it, `confirm`
+        records that; should it fail, `retry` leaves it cancelled."""
 
         def tx(c: sqlite3.Connection) -> int:
             for alarm_id in ended:
                 c.execute("UPDATE deliveries SET status = 'cancelled', done_at = ?, answer = "
                           "'not sent: the alarm was acknowledged or has ended' "
-                          "WHERE alarm_id = ? AND status = 'pending'", (now, alarm_id))  # fmt: skip
+                          f"WHERE alarm_id = ? AND status IN {OPEN!r}",
+                          (now, alarm_id))  # fmt: skip
             added = 0
             for d in new:
                 status, done, answer = (("expired", now, "not sent: the event was already "
@@ -258,8 +261,8 @@ class SqliteDeliveryStore:
                 added += 1
                 c.execute("UPDATE deliveries SET status = 'cancelled', done_at = ?, answer = "
                           "'not sent: superseded by a newer page for this alarm' WHERE "
-                          "alarm_id = ? AND channel = ? AND recipient = ? AND status = 'pending' "
-                          "AND event_id < ?",
+                          "alarm_id = ? AND channel = ? AND recipient = ? "
+                          f"AND status IN {OPEN!r} AND event_id < ?",
                           (now, d.alarm_id, d.channel, d.recipient, d.event_id))  # fmt: skip
             c.execute("UPDATE notify_cursor SET event_id = ? WHERE one = 1 AND event_id < ?",
                       (upto, upto))  # fmt: skip

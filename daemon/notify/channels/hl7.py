@@ -105,6 +105,7 @@ def oru_r40(page: Page, cfg: Hl7Channel, now: float) -> str:
 def exchange(host: str, port: int, message: bytes, timeout_s: float) -> bytes:
     """Send one MLLP block and read one back (the ACK), within `timeout_s` per step."""
     with socket.create_connection((host, port), timeout=timeout_s) as sock:
+        _not_self(sock)
         sock.sendall(START + message + END)
         buf = b""
         while END not in buf:
@@ -116,6 +117,13 @@ def exchange(host: str, port: int, message: bytes, timeout_s: float) -> bytes:
                 raise ConnectionError("no end of block within 1 MiB")
     start = buf.find(START)
     return buf[start + 1 if start >= 0 else 0 : buf.find(END)]
+
+
+def _not_self(sock: socket.socket) -> None:
+    """A connect to a loopback port nobody listens on can meet itself (TCP simultaneous
+    open, when the kernel picks that very port as the local one): that is no receiver."""
+    if sock.getsockname() == sock.getpeername():
+        raise ConnectionRefusedError(111, "connection refused (connected to itself)")
 
 
 def read_ack(raw: bytes, expected_control_id: str) -> Answer:
@@ -160,8 +168,9 @@ class Hl7Sender:
 
     def probe(self) -> Answer:
         try:
-            with socket.create_connection((self.cfg.host, self.cfg.port), self.cfg.timeout_s):
-                pass
+            with socket.create_connection((self.cfg.host, self.cfg.port),
+                                          self.cfg.timeout_s) as sock:  # fmt: skip
+                _not_self(sock)
         except OSError as exc:
             return Answer(False, f"MLLP: {exc.strerror or exc}"[:300])
         return Answer(True, "MLLP: connection accepted")
