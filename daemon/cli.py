@@ -14,6 +14,7 @@ from .commands import (
     demo,
     explain,
     export,
+    notify_test,
     probe,
     replay,
     run,
@@ -22,7 +23,10 @@ from .commands import (
 from .errors import UserError
 
 # Each command module adds its own parser; add new commands to this list.
-COMMANDS = [replay, check_profiles, export, run, check, probe, simulate, demo, explain, annotate]
+COMMANDS = [
+    replay, check_profiles, export, run, check, probe, simulate, demo, explain, annotate,
+    notify_test,
+]  # fmt: skip
 
 
 def _parser() -> argparse.ArgumentParser:

@@ -25,6 +25,7 @@ from pydantic import (
 )
 
 from .errors import UserError, describe_validation
+from .notify.settings import NotifyConfig
 
 ENV_USERNAME = "HOURWATCH_MQTT_USERNAME"
 ENV_PASSWORD = "HOURWATCH_MQTT_PASSWORD"
@@ -145,6 +146,7 @@ class ServiceConfig(_Strict):
     health: HealthConfig = HealthConfig()
     publish: PublishConfig = PublishConfig()
     recovery: RecoveryConfig = RecoveryConfig()
+    notify: NotifyConfig = NotifyConfig()  # paging channels; none = pages stay on MQTT
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
@@ -194,6 +196,11 @@ def _resolve(base: Path, data: dict[str, Any]) -> None:
     fix(broker, ("password_file",))
     if isinstance(broker, dict):
         fix(broker.get("tls"), ("ca_file", "cert_file", "key_file"))
+    notify = data.get("notify")
+    if isinstance(notify, dict):
+        fix(notify, ("ack_secret_file",))
+        for channel in notify.get("channels") or []:
+            fix(channel, ("ca_file", "password_file", "secret_file"))
 
 
 def _set(data: dict[str, Any], dotted: str, value: object) -> None:
@@ -249,4 +256,12 @@ def load_config(
         raise UserError(describe_validation(Path(where), exc).replace("\n", " ")) from None
     if cfg.broker.password_file is not None:
         cfg.broker.secret()  # unreadable file: say so now, not at the first connect
+    if cfg.notify.channels or cfg.notify.routes:  # channels, roles, secrets
+        from .notify.settings import check_notify, policy_roles
+        from .rule_files import load_policy
+
+        check_notify(cfg.notify, policy_roles(load_policy(cfg.rules)), where, env)
+        if cfg.notify.ack_base_url and not cfg.health.listen:
+            raise UserError(f"{where}: notify.ack_base_url: the links are served on "
+                            "health.listen, which is off")  # fmt: skip
     return cfg

@@ -9,7 +9,7 @@ import bisect
 import json
 import threading
 from collections import Counter
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
@@ -153,15 +153,49 @@ def _esc(s: str) -> str:
 
 HealthFn = Callable[[], tuple[bool, dict[str, Any]]]
 MetricsFn = Callable[[], str]
+# More pages on the same server (the acknowledgement links): (method, path, body) ->
+# (status, headers, body), or None when the path is not theirs.
+RoutesFn = Callable[[str, str, bytes], tuple[int, Sequence[tuple[str, str]], bytes] | None]
+MAX_POST_BYTES = 16 * 1024
 
 
 class HealthServer:
     """GET /health (200 healthy, 503 not, JSON body) and GET /metrics, on a thread."""
 
-    def __init__(self, host: str, port: int, health: HealthFn, metrics: MetricsFn) -> None:
+    def __init__(self, host: str, port: int, health: HealthFn, metrics: MetricsFn,
+                 routes: RoutesFn | None = None) -> None:  # fmt: skip
         class Handler(BaseHTTPRequestHandler):
+            def _routed(self, method: str, body: bytes = b"") -> bool:
+                if routes is None:
+                    return False
+                reply = routes(method, self.path.split("?", 1)[0], body)
+                if reply is None:
+                    return False
+                status, headers, data = reply
+                self.send_response(status)
+                for name, value in headers:
+                    self.send_header(name, value)
+                self.send_header("Content-Length", str(len(data)))
+                self.end_headers()
+                if method != "HEAD":
+                    self.wfile.write(data)
+                return True
+
+            def do_POST(self) -> None:
+                try:
+                    n = int(self.headers.get("Content-Length") or 0)
+                except ValueError:
+                    n = -1
+                if not 0 <= n <= MAX_POST_BYTES:
+                    self._send(413, "text/plain", "request body too large\n")
+                    return
+                if not self._routed("POST", self.rfile.read(n) if n else b""):
+                    self._send(404, "text/plain", "not found\n")
+
             def do_GET(self) -> None:
                 path = self.path.split("?", 1)[0]
+                if self._routed("GET"):
+                    return
                 if path == "/health":
                     ok, body = health()
                     self._send(200 if ok else 503, "application/json", json.dumps(body))

@@ -164,12 +164,17 @@ class _Journaled:
 
 
 _ENDED_STATES = frozenset({"resolved", "inactive"})
+# Events the engine made, journaled in engine time order. Others (a paging channel's
+# technical alarm, a publish failure) are journaled by the service at its own clock,
+# possibly ahead of the engine's last event: they must not move the recovery's cut.
+ENGINE_KINDS = frozenset({"alarm", "advice", "notice"})
 
 
 def _read_events(journal: Journal, since: float | None) -> _Journaled:
     out = _Journaled()
     for ev in journal.events_between(since, None):
-        out.last_time = ev.time if out.last_time is None else max(out.last_time, ev.time)
+        if ev.kind in ENGINE_KINDS:  # the service's own events run on its clock, not the engine's
+            out.last_time = ev.time if out.last_time is None else max(out.last_time, ev.time)
         if ev.kind == "alarm" and ev.alarm_id is not None:
             out.first_seen.setdefault(ev.alarm_id, ev.time)
             out.last_state[ev.alarm_id] = str(ev.body.get("state", ""))

@@ -57,6 +57,9 @@ from .messages import (
     offline_status,
 )
 from .mqtt_ingest import Connection, Inbound, MqttLink, Published
+from .notify.acklinks import AckOutcome
+from .notify.notifier import Notifier
+from .notify.settings import check_notify, policy_roles
 from .profile_files import load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover
@@ -155,6 +158,20 @@ class _Wake:
 
 _STOP = _Stop()
 _WAKE = _Wake()
+LOCAL_ACK_WAIT_S = 10.0  # an acknowledgement from a link waits this long for the worker
+
+
+@dataclass
+class _LocalInput:
+    """A message that did not come over MQTT (an acknowledgement from a page's link):
+    journaled and fed to the engine by the worker exactly like a received one, so a
+    replay of the journal sees it too. `done` is set once `effects` holds the result."""
+
+    topic: str
+    payload: bytes
+    done: threading.Event = field(default_factory=threading.Event)
+    effects: list[Effect] = field(default_factory=list)
+    error: str | None = None
 
 
 @dataclass
@@ -247,6 +264,12 @@ class Service:
         self.scheduler = BackgroundScheduler(
             executors={"default": ThreadPoolExecutor(1)}, timezone=UTC
         )
+        # Paging channels (daemon/notify): none configured = pages stay on MQTT.
+        self.notifier: Notifier | None = None
+        if cfg.notify.enabled:
+            secrets = check_notify(cfg.notify, policy_roles(self.policy), "configuration")
+            self.notifier = Notifier(cfg.notify, secrets, cfg.journal.path, clock=clock,
+                                     log=self.log)  # fmt: skip
 
     # --- lifecycle --------------------------------------------------------------
     def start(self) -> None:
@@ -264,7 +287,8 @@ class Service:
         if cfg.health.listen:  # first: a taken address should fail before anything runs
             host, port = split_address(cfg.health.listen, allow_zero=True)
             try:
-                self.health = HealthServer(host, port, self.health_report, self.render_metrics)
+                self.health = HealthServer(host, port, self.health_report, self.render_metrics,
+                                           self._http_routes)  # fmt: skip
             except OSError as exc:
                 raise UserError(f"health.listen: cannot listen on {host}:{port}: "
                                 f"{exc.strerror or exc}") from None  # fmt: skip
@@ -282,6 +306,8 @@ class Service:
             (self._topic("status"), will.to_bytes()), self.log,
         )  # fmt: skip
         self.outbox = Outbox(self.link.publish, cfg.publish.confirm_timeout_s)
+        if self.notifier is not None:  # before anything new is journaled: downtime pages too
+            self.notifier.start(self.acknowledge_from_link)
         self._queue_recovered()
         self.scheduler.start()
         with self.lock:
@@ -323,6 +349,8 @@ class Service:
             self.link.stop()
         if self.health is not None:
             self.health.stop()
+        if self.notifier is not None:  # pages still queued go at the next start
+            self.notifier.stop()
         if self.journal is not None:
             self.journal.close()
             self.journal = None
@@ -459,6 +487,9 @@ class Service:
             with self.lock:
                 effects, self._timer_effects = self._timer_effects, []
             self._emit(effects)
+        for item in items:
+            if isinstance(item, _LocalInput):
+                self._local_input(item)
         self.outbox.flush(self._connected)
 
     def _ingest(self, batch: list[Inbound]) -> None:
@@ -591,6 +622,8 @@ class Service:
         assert self.journal is not None and self.outbox is not None
         rows = [journal_row(e) for e in effects]
         ids = self.journal.append_events(rows)  # journaled before it is published
+        if self.notifier is not None:
+            self.notifier.wake()  # it pages from the journal
         now = self.clock()
         for e, event_id in zip(effects, ids, strict=True):
             if isinstance(e, AlarmEvent):
@@ -778,7 +811,8 @@ class Service:
         if not self._connected:
             return
         delivery = self._delivery()
-        tech = sorted(self.stats.technical.values(), key=lambda t: (t.since, t.code))
+        tech = sorted(list(self.stats.technical.values()) + self._notify_technical(),
+                      key=lambda t: (t.since, t.code))  # fmt: skip
         key = (delivery, tuple((t.code, t.alarm_id) for t in tech))
         if key == self._last_status:
             return
@@ -878,9 +912,12 @@ class Service:
             "technical_alarms": [
                 {"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
                 for t in list(self.stats.technical.values())  # the worker may change it
-            ],
+            ] + [{"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
+                 for t in self._notify_technical()],
             "caution": CAUTION,
         }
+        if self.notifier is not None:
+            body["notify"] = self.notifier.health()
         return ok, body
 
     def render_metrics(self) -> str:
@@ -908,4 +945,74 @@ class Service:
                     dups[prof] = dups.get(prof, 0) + n
         for prof, n in sorted(dups.items()):
             labelled.append(("duplicates_total", f'profile="{prof}"', float(n)))
-        return self.metrics.render(gauges, labelled)
+        text = self.metrics.render(gauges, labelled)
+        if self.notifier is not None:
+            text += self.notifier.metrics_text()
+        return text
+
+    # --- paging channels (daemon/notify) -----------------------------------------------
+    def _notify_technical(self) -> list[_Technical]:
+        if self.notifier is None:
+            return []
+        return [_Technical(t.code, t.text, t.since, t.alarm_id) for t in self.notifier.technical()]
+
+    def _http_routes(self, method: str, path: str,
+                     body: bytes) -> tuple[int, list[tuple[str, str]], bytes] | None:  # fmt: skip
+        """Acknowledgement links on the health endpoint's server (None: not ours)."""
+        links = self.notifier.ack_links if self.notifier is not None else None
+        if links is None:
+            return None
+        reply = links.handle(method, path, body)
+        if reply is None:
+            return None
+        return reply.status, list(reply.headers), reply.body.encode()
+
+    def acknowledge_from_link(self, alarm_id: str, by: str, role: str) -> AckOutcome:
+        """An acknowledgement from a page's link, through the worker like an MQTT one:
+        journaled as a message on the acknowledgement topic (who and role in it), fed to
+        the engine, published. Waits for the engine's answer."""
+        if self._worker is None or not self._worker.is_alive() or self._stopping.is_set():
+            return AckOutcome(False, "the service is not running; acknowledge another way")
+        payload = json.dumps({"alarm_id": alarm_id, "by": by, "role": role}).encode()
+        item = _LocalInput(self._topic("ack"), payload)
+        self.queue.put(item)
+        if not item.done.wait(LOCAL_ACK_WAIT_S):
+            return AckOutcome(False, "the service did not answer in time; check the alarm "
+                              "before acknowledging again")  # fmt: skip
+        outcome = AckOutcome(False, item.error or "not acknowledged: the alarm is not open")
+        for e in item.effects:
+            if isinstance(e, AlarmEvent) and e.alarm_id == alarm_id and e.by == by:
+                outcome = AckOutcome(True, f"{e.state}: {e.reason}")
+                break
+            if isinstance(e, RejectedInput):
+                outcome = AckOutcome(False, f"not acknowledged ({e.reason}): the alarm may "
+                                     "have ended or been acknowledged already")  # fmt: skip
+                break
+        self.log.info("ack_link_used", alarm_id=alarm_id, bed=bed_of(alarm_id), by=by,
+                      role=role, acknowledged=outcome.ok, detail=outcome.text)  # fmt: skip
+        return outcome
+
+    def _local_input(self, item: _LocalInput) -> None:
+        """As `_ingest` for one message that needs no broker acknowledgement."""
+        assert self.journal is not None
+        try:
+            with self.lock:
+                self._now = t = max(self._now, self.clock())
+                self.journal.append_messages([(t, item.topic, item.payload, 0)])
+                effects, self._timer_effects = self._timer_effects, []
+                try:
+                    effects += self.engine.advance(t)
+                    stepped = self.engine.step(item.topic, item.payload, t)
+                except Exception:
+                    self.stats.engine_errors += 1
+                    self.log.error("engine_error", topic=item.topic[:200], exc_info=True)
+                    stepped = []
+                    item.error = "the engine failed on it (logged)"
+                effects += stepped
+                self._arm()
+            with self.metrics.lock:
+                self.metrics.journaled += 1
+            self._emit(effects)
+            item.effects = stepped
+        finally:
+            item.done.set()

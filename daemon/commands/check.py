@@ -12,6 +12,7 @@ from pathlib import Path
 from ..config import ServiceConfig, load_config
 from ..errors import UserError
 from ..journal import is_journal
+from ..notify.settings import policy_roles
 from ..profile_files import BUNDLED as BUNDLED_PROFILES
 from ..profile_files import load_profiles
 from ..rule_files import BUNDLED as BUNDLED_RULES
@@ -98,4 +99,27 @@ def run(args: argparse.Namespace) -> int:
     print(f"publishes  {prefix}/alarms/WARD/BED, {prefix}/advice/WARD/BED, "
           f"{prefix}/state/WARD/BED (retained), {prefix}/status (retained, last will), "
           f"{prefix}/rejected")  # fmt: skip
+    print_notify(cfg, svc)
     return 0
+
+
+def print_notify(cfg: ServiceConfig, svc: Service) -> None:
+    """The paging section (validated by load_config: roles, channels, secrets)."""
+    n = cfg.notify
+    if not n.enabled:
+        print("paging     no channels: pages stay on MQTT")
+        return
+    print(f"paging     {len(n.channels)} channel(s); failing after {n.fail_after_attempts} "
+          f"attempts or {n.fail_after_s:g} s; given up after {n.give_up_after_s:g} s")  # fmt: skip
+    for c in n.channels:
+        where = getattr(c, "url", None) or f"{getattr(c, 'host', '')}:{getattr(c, 'port', '')}"
+        print(f"  channel {c.name:<16} {c.kind:<11} {where}")
+    for r in n.routes:
+        ward = f" (ward {r.ward} only)" if r.ward else ""
+        print(f"  route   {r.role:<16} -> {r.channel}: {', '.join(r.to)}{ward}")
+    links = f"{n.ack_base_url}/ack/..., valid {n.ack_link_valid_s} s" if n.ack_base_url \
+        else "off (no ack_base_url)"  # fmt: skip
+    print(f"  acknowledgement links {links}")
+    unrouted = sorted(policy_roles(svc.policy) - {r.role for r in n.routes})
+    if unrouted:
+        print(f"  no route for {', '.join(unrouted)}: their pages stay on MQTT")
