@@ -167,7 +167,7 @@ def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
         tech = status[-1]["technical_alarms"][0]
         assert tech["code"] == "notify_channel_failing" and "alert-mgr" in tech["text"]
         mails = servers.mail.wait(3, timeout=10)  # the technical alarm, paged by mail
-        assert "TECHNICAL ALARM" in mails[2]["Subject"] and "alert-mgr" in mails[2]["Subject"]
+        assert "ALARM medium: technical:" in mails[2]["Subject"] and "alert-mgr" in mails[2]["Subject"]
         body = get(f"http://127.0.0.1:{health}/health")
         assert body["notify"]["channels"]["alert-mgr"]["state"] == "failing"
         assert body["notify"]["channels"]["pager-mail"]["state"] == "ok"
@@ -187,7 +187,7 @@ def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
         servers.mail.wait(4, timeout=10)  # its resolution, by mail
         time.sleep(1.5)  # anything sent twice would have arrived by now
     w.close()
-    assert "resolved" in servers.mail.mails[3]["Subject"]
+    assert "RESOLVED" in servers.mail.mails[3]["Subject"]
     # nobody got the same page twice, on any channel, across the restart
     for seen in (Counter(m["Message-ID"] for m in servers.mail.mails),
                  Counter(h.headers["Idempotency-Key"] for h in servers.hook.received),
@@ -383,7 +383,7 @@ def test_kill_9_with_a_page_in_flight_then_restart_sends_it_once(broker, tmp_pat
         assert set(seen.values()) == {1}, seen
     subjects = [m["Subject"] for m in servers.mail.mails]
     assert subjects[0] == alarm["pager"]
-    assert "TECHNICAL ALARM" in subjects[1] and "resolved" in subjects[2] and len(subjects) == 3
+    assert "ALARM medium: technical:" in subjects[1] and "RESOLVED" in subjects[2] and len(subjects) == 3
 
 
 def status_report(alarm_id: str, status: str, control: str, person: str = "",

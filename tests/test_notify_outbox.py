@@ -199,7 +199,7 @@ def test_a_failing_channel_raises_a_technical_alarm_paged_over_the_others(tmp_pa
         n.wake()
         wait_until(lambda: n.technical(), 10, "the technical alarm")
         mails = servers.mail.wait(2)  # the alarm's page, then the technical alarm's
-        assert "TECHNICAL ALARM" in mails[1]["Subject"] and "alert-mgr" in mails[1]["Subject"]
+        assert "ALARM medium: technical:" in mails[1]["Subject"] and "alert-mgr" in mails[1]["Subject"]
         assert mails[1]["Subject"].endswith("Decision support: verify per local protocol.")
         wait_until(lambda: len(servers.hook.received) >= 2, 5, "technical alarm by webhook")
         tech = servers.hook.received[1].json()
@@ -211,7 +211,7 @@ def test_a_failing_channel_raises_a_technical_alarm_paged_over_the_others(tmp_pa
         servers.mllp.codes = ["AA"]
         wait_until(lambda: not n.technical(), 10, "the technical alarm to resolve")
         servers.mail.wait(3)  # the resolution, by mail
-        assert "resolved" in servers.mail.mails[2]["Subject"]
+        assert "RESOLVED" in servers.mail.mails[2]["Subject"]
     finally:
         n.stop()
     # the HL7 channel never carried its own technical alarm: only the alarm's page, retried

@@ -32,7 +32,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from ..engine.alarms import ALARM_CAUTION
+from ..engine.alarms import ALARM_CAUTION, PAGER_CAUTION, PAGER_MAX, STATE_WORDS, State
 from ..engine.timefmt import iso
 from ..errors import UserError
 from ..health import Histogram
@@ -49,9 +49,8 @@ BATCH = 20  # deliveries claimed per round by one channel
 FOLLOW_EVERY_S = 0.25  # the dispatcher looks at the journal at least this often
 IDLE_WAIT_S = 1.0
 PRUNE_EVERY_S = 3600.0
-TECH_PAGER_MAX = 240  # a failing channel's page: what failed, how, and the caution
-# The pager line's short caution (the engine's pager lines end with theirs).
-TECH_CAUTION = "Decision support: verify per local protocol."
+TECH_PAGER_MAX = PAGER_MAX  # a failing channel's page: what failed, how, and the caution
+TECH_CAUTION = PAGER_CAUTION  # the same short caution as every pager line
 DELIVERY_BUCKETS = (0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0, 1800.0)
 
 
@@ -335,8 +334,8 @@ class Notifier:
 
     def _alarm_body(self, st: ChannelState, alarm_id: str, now: float, state: str, reason: str,
                     roles: list[str], summary: str) -> dict[str, object]:  # fmt: skip
-        word = "TECHNICAL ALARM" if state == "active" else "technical alarm resolved"
-        head = f"hourwatch {word} {self.cfg.technical_priority}: "
+        word = STATE_WORDS[State(state)]  # the one table of state words
+        head = f"hourwatch {word} {self.cfg.technical_priority}: technical: "
         room = TECH_PAGER_MAX - len(head) - len(TECH_CAUTION) - 2
         text = summary if len(summary) <= room else summary[: room - 3].rstrip() + "..."
         pager = f"{head}{text}. {TECH_CAUTION}"
