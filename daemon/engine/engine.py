@@ -55,6 +55,9 @@ class ReadingTrace(NamedTuple):
     volume_ml: float | None
     seq: int | None
     outcomes: tuple[Outcome, ...]
+    # earlier readings of this device now found to be artefacts (a jump or fall they
+    # followed was taken back): (effective time, the outcome they were counted with)
+    revised: tuple[tuple[float, Outcome], ...] = ()
 
 
 @dataclass(slots=True)
@@ -230,17 +233,26 @@ class Engine:
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
-        if dev.bed is not None and not _PLAIN.issuperset(outcomes):
+        revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
+        if dev.bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
             self.beds[dev.bed].forget_quiet()
         if self.observe is not None:
             self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
-                                      result.volume_ml, result.seq, tuple(outcomes)))  # fmt: skip
+                                      result.volume_ml, result.seq, tuple(outcomes),
+                                      tuple(revised)))  # fmt: skip
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
         counts = dev.quality.counts
+        for _, was in revised:  # counted before; an artefact after all
+            counts[was] -= 1
+            if not counts[was]:
+                del counts[was]
+            counts[Outcome.ARTEFACT_DROPPED] += 1
+            effects.append(RejectedInput(now, topic, device_id, Outcome.ARTEFACT_DROPPED,
+                                         _DETAIL_REVERTED))  # fmt: skip
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
@@ -278,8 +290,10 @@ class Engine:
         if outcomes[-1] not in _REFUSED and (dev.latest_t is None or t > dev.latest_t):
             dev.latest_t = t
         bed = self.beds[dev.bed] if dev.bed else None
-        if bed is not None and outcomes[-1] not in _NOT_IN_SERIES:
-            bed.series.note_reading(t)
+        newest = dev.cleaner.last_t
+        if bed is not None and newest is not None:
+            # the newest reading in the series: this one, or a held one it let in
+            bed.series.note_reading(newest)
         if adjusted is not None and outcomes[-1] is Outcome.ACCEPTED:
             outcomes[-1] = adjusted
         return outcomes
@@ -612,6 +626,7 @@ _SILENT = frozenset(
         Outcome.DUPLICATE,
     }
 )
+_DETAIL_REVERTED = "a reading after a jump or fall, taken back: the meter went back to its level"
 _DETAIL = {
     Outcome.LATE: "older than the reorder tolerance",
     Outcome.TOO_OLD: "older than the store-and-forward limit",
