@@ -44,6 +44,7 @@ from typing import Any, Self
 from pydantic import ValidationError
 
 from .engine.context import BedContext
+from .engine.strictjson import NotJson, validate
 from .errors import UserError
 from .logfile import BadLine, LogRecord
 
@@ -158,10 +159,12 @@ class BedFilter:
         if len(rest) != 2 or not rest[0] or rest[1] != "context":
             return
         try:
-            ctx = BedContext.model_validate(json.loads(payload))
-        except (ValidationError, ValueError, TypeError, RecursionError):
+            ctx = validate(BedContext, payload)  # as strictly as the engine reads it
+        except (ValidationError, NotJson):
             return  # the engine ignores it too
-        bed, wanted = rest[0], set(ctx.device_ids)
+        bed = rest[0]
+        # a meter another bed holds moves only when the context says so (`replaces`)
+        wanted = {d for d in ctx.device_ids if self._owner.get(d, bed) == bed or d in ctx.replaces}
         for dev, owner in list(self._owner.items()):
             if owner == bed and dev not in wanted:
                 del self._owner[dev]
@@ -173,7 +176,7 @@ class BedFilter:
         if topic.startswith(self._beds):
             self.see(topic, payload)
             return topic.startswith(self._own)
-        if topic == self._ack:
+        if topic == self._ack or topic.startswith(self._ack + "/"):  # shared or per user
             return self._my_ack(payload)
         mine = self._mine
         return bool(mine) and any(level in mine for level in topic.split("/"))

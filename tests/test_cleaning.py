@@ -14,7 +14,16 @@ import pytest
 from daemon.engine.effects import RejectedInput
 from daemon.engine.outcomes import Outcome
 from daemon.engine.series import ESTIMATED, MEASURED, UNKNOWN
-from tests.conftest import CUMULATIVE, FLAGGED, INTERVAL, PROFILES, T0, Meter, send_steady
+from tests.conftest import (
+    CUMULATIVE,
+    FLAGGED,
+    INTERVAL,
+    PROFILES,
+    T0,
+    Meter,
+    context_payload,
+    send_steady,
+)
 
 ALL = sorted(PROFILES)
 FLOW_ML_H = 60.0  # invented steady flow
@@ -458,7 +467,10 @@ def test_meter_moved_to_another_bed_starts_a_fresh_baseline(name: str) -> None:
     interval = name in INTERVAL
     send_steady(m, T0, 5, step, level=300)
     first_bed = m.total()
-    m.bind("b02", at=T0 + 5 * p)
+    # the new bed's context says it takes the meter over (else the move is refused)
+    ctx = context_payload([m.device]) | {"replaces": [m.device]}
+    eff = m.engine.step("hourwatch/beds/b02/context", ctx, T0 + 5 * p)
+    assert [getattr(e, "code", None) for e in eff] == ["device_moved"]
     # on the new bed the bag already holds 300+ mL of the previous patient's urine
     for i in range(5, 10):
         m.send(T0 + i * p, value(name, i, level=300))

@@ -9,6 +9,7 @@ from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
 from .advice import ReplacementOrder
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
+ProfileName = Annotated[str, Field(min_length=1, max_length=64)]
 WeightBasis = Literal["actual", "ideal", "adjusted"]
 
 
@@ -36,3 +37,9 @@ class BedContext(BaseModel):
     replacement: ReplacementOrder = ReplacementOrder()
     tbw_fraction: Annotated[float, Field(ge=0.3, le=0.7)] = 0.6  # total body water / weight
     episodes: list[Episode] = Field(default_factory=list)
+    # a meter's family (device profile name), fixed from the binding on (optional)
+    device_profiles: Annotated[dict[DeviceId, ProfileName], Field(max_length=8)] = Field(
+        default_factory=dict
+    )
+    # meters this bed takes over from another bed's binding (moved with a notice)
+    replaces: Annotated[list[DeviceId], Field(max_length=8)] = Field(default_factory=list)

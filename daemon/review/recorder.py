@@ -25,6 +25,7 @@ from ..engine.evaluator import Notice
 from ..engine.outcomes import Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
+from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
 from ..logfile import BadLine, LogRecord
 from ..replay import ReplayResult, drive
@@ -185,13 +186,8 @@ class Recorder:
 
     def _note_intake(self, bed: str, rec: LogRecord) -> None:
         try:
-            payload = rec.payload
-            msg = (
-                IntakeMessage.model_validate_json(payload)
-                if isinstance(payload, str)
-                else IntakeMessage.model_validate(payload)
-            )
-        except ValidationError:
+            msg = validate(IntakeMessage, rec.payload)  # as strictly as the engine reads it
+        except (ValidationError, NotJson):
             return  # the engine rejects and counts it
         self.intake.setdefault(bed, []).append(
             Intake(msg.time.timestamp(), msg.volume_ml, msg.fluid)
