@@ -193,7 +193,7 @@ class BedFilter:
 class Journal:
     """The service's journal file (created with its schema when missing or empty)."""
 
-    def __init__(self, path: Path, *, retention_days: float = 30.0) -> None:
+    def __init__(self, path: Path, *, retention_days: float = 30.0, max_bytes: int = 0) -> None:
         if not retention_days > 0:
             raise UserError(f"journal retention must be positive, got {retention_days} days")
         self.path = path
@@ -224,6 +224,15 @@ class Journal:
             db.close()
             raise
         self._db = db
+        self.limit(max_bytes)
+
+    def limit(self, max_bytes: int) -> None:
+        """Cap the database file at about `max_bytes` (0: no cap but the disk's). Past it
+        an append fails with SQLITE_FULL, as on a full disk (see `is_full`); rows freed by
+        pruning are reused. A cap below the present size holds the file where it is."""
+        page = int(self._db.execute("PRAGMA page_size").fetchone()[0])
+        pages = max_bytes // page if max_bytes > 0 else 0xFFFFFFFE
+        self._db.execute(f"PRAGMA max_page_count = {max(1, pages)}")
 
     # --- writing ---------------------------------------------------------------
     def append_messages(self, rows: Sequence[tuple[float, str, bytes, int]]) -> list[int]:
@@ -253,7 +262,7 @@ class Journal:
             last = db.execute("SELECT last_insert_rowid()").fetchone()[0]
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
         # one writer inside BEGIN IMMEDIATE and AUTOINCREMENT: the ids are consecutive
         return list(range(last - len(rows) + 1, last + 1))
@@ -271,7 +280,7 @@ class Journal:
             )
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
 
     def prune(
@@ -312,7 +321,7 @@ class Journal:
             )
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
         return cur.rowcount
 
@@ -416,6 +425,21 @@ class Journal:
 _EVENT_COLS = "id, time, kind, bed, alarm_id, body, delivered_at"
 
 
+def _rollback(db: sqlite3.Connection) -> None:
+    """Undo a failed transaction. SQLite has already rolled back after some errors (a
+    full disk: SQLITE_FULL), and a second ROLLBACK would hide the first error."""
+    if db.in_transaction:
+        db.execute("ROLLBACK")
+
+
+def is_full(exc: BaseException) -> bool:
+    """The journal's disk (or its size cap) is full: SQLite says SQLITE_FULL."""
+    return (
+        isinstance(exc, sqlite3.OperationalError)
+        and getattr(exc, "sqlite_errorcode", None) == sqlite3.SQLITE_FULL
+    )
+
+
 def _event(r: tuple[Any, ...]) -> StoredEvent:
     return StoredEvent(r[0], r[1], r[2], r[3], r[4], json.loads(r[5]), r[6])
 
@@ -470,7 +494,7 @@ def _init_schema(db: sqlite3.Connection, path: Path) -> None:
             db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
         db.execute("COMMIT")
     except BaseException:
-        db.execute("ROLLBACK")
+        _rollback(db)
         raise
 
 

@@ -600,3 +600,26 @@ def test_is_sqlite(tmp_path: Path, jpath: Path) -> None:
     # may leave an empty -wal and -shm, as SQLite's read-only connections do)
     names = sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith("j.db"))
     assert names == ["empty.jsonl", "other.db"]
+
+
+# --- a full disk ---------------------------------------------------------------------------
+
+
+def test_a_full_journal_says_so_and_takes_rows_again_once_there_is_room(jpath: Path) -> None:
+    """The size cap stands for a full disk: an append fails with SQLITE_FULL (not with
+    a second error from undoing it), keeps nothing of the failed batch, and appends
+    succeed again once the cap is lifted or pruning frees pages."""
+    from daemon.journal import is_full
+
+    with Journal(jpath, max_bytes=256 * 1024) as j:
+        n = 0
+        with pytest.raises(sqlite3.OperationalError) as exc:
+            while True:
+                j.append_messages(_batch(n))
+                n += 1
+        assert is_full(exc.value), exc.value
+        stored = len(list(j.messages_between(None, None)))
+        assert stored == n * 16  # the failed batch left nothing behind
+        j.limit(0)
+        j.append_messages(_batch(n))
+        assert len(list(j.messages_between(None, None))) == (n + 1) * 16
