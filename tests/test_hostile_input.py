@@ -247,6 +247,27 @@ def test_an_acknowledgement_that_is_not_the_users_own_is_refused(
     assert "nurse 12" not in rej.topic
 
 
+def test_a_staff_list_limits_each_user_to_their_roles() -> None:
+    ward = Ward()
+    staff = {"nurse-12": ["bedside-nurse"], "charge-3": ["charge-nurse", "bedside-nurse"]}
+    ward.engine = Engine(PROFILES.values(), ward.rules, ward.policy, ack_users=staff)
+    bed = Bed(ward)
+    bed.bind()
+    bed.start()
+    bed.hours([300.0] * 3)  # > 200 mL/h for 2 h (Halbgewachs & Domes 2015)
+    pod = ward.first("pod-hourly")
+    assert pod is not None
+    t = at(3, seconds=20)
+    for user, role in [("nurse-12", "charge-nurse"), ("cleaner-1", "bedside-nurse")]:
+        out = ward.send(f"hourwatch/ack/{user}", {"alarm_id": pod.alarm_id, "role": role}, t)
+        (rej,) = rejections(out)
+        assert rej.reason == Outcome.UNKNOWN_ROLE
+    out = ward.send("hourwatch/ack/charge-3", {"alarm_id": pod.alarm_id, "role": "charge-nurse"}, t)
+    assert [e.state for e in out if isinstance(e, AlarmEvent)] == [State.ACKNOWLEDGED]
+    with pytest.raises(ValueError, match="visitor"):
+        Engine(PROFILES.values(), ward.rules, ward.policy, ack_users={"v-1": ["visitor"]})
+
+
 def test_alarm_messages_say_where_to_acknowledge() -> None:
     ward = Ward()
     ward.engine = Engine(PROFILES.values(), ward.rules, ward.policy,

@@ -10,7 +10,7 @@ import bisect
 import heapq
 import re
 from collections import Counter
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import NamedTuple, TypeVar
@@ -163,6 +163,7 @@ class Engine:
         max_unbound_devices: int = MAX_UNBOUND_DEVICES,
         max_beds: int = MAX_BEDS,
         ack_topic: str | None = None,
+        ack_users: Mapping[str, Iterable[str]] | None = None,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -206,6 +207,12 @@ class Engine:
             for tier in prio.tiers
             for role in tier.roles
         )
+        # optionally, who may acknowledge and in which roles (the site's staff list)
+        self._staff = None if ack_users is None else {u: frozenset(r) for u, r in ack_users.items()}
+        if self._staff is not None:
+            strays = {r for roles in self._staff.values() for r in roles} - self._ack_roles
+            if strays:
+                raise ValueError(f"roles not in the escalation policy: {', '.join(sorted(strays))}")
         self.evaluator = Evaluator(self.rules, self.book)
         self._high_output = {
             r.id for r in self.rules
@@ -567,6 +574,8 @@ class Engine:
             reason, detail = ack
         elif ack.role not in self._ack_roles:
             reason, detail = Outcome.UNKNOWN_ROLE, "role not named by the escalation policy"
+        elif self._staff is not None and ack.role not in self._staff.get(ack.by or "", ()):
+            reason, detail = Outcome.UNKNOWN_ROLE, "not a role this user may acknowledge in"
         else:
             assert ack.by is not None
             result = self.book.acknowledge(now, ack.alarm_id, ack.by, ack.role)
