@@ -388,3 +388,16 @@ def test_unbound_devices_are_forgotten_and_never_grow_without_bound() -> None:
     topic, body = encode(REF, "x-late", T0 + 20000, 1.0, seq=1)
     engine.step(topic, body, T0 + 20000)
     assert set(engine.devices) == {"rc-1", "x-late"}
+
+
+def test_a_held_reading_of_a_meter_that_leaves_its_bed_is_still_counted() -> None:
+    """received = sum of outcomes + held, also when the cleaner holding a reading goes."""
+    m = Meter(REF, device="rc-1", bed="b01")
+    p = float(REF.timing.period_s)
+    send_steady(m, T0, 5, 1.0, level=400)
+    m.send(T0 + 5 * p, 0.0)  # a fall to near zero: held for the next reading
+    assert m.engine.quality()["rc-1"]["held"] == 1
+    m.engine.step("hourwatch/beds/b01/context", context_payload([]), T0 + 6 * p)
+    q = m.engine.quality()["rc-1"]
+    assert q["held"] == 0 and q["outcomes"] == {"accepted": 5, "artefact_dropped": 1}
+    assert q["received"] == 6

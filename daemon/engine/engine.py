@@ -188,6 +188,10 @@ class Engine:
         self._max_beds = max_beds
         self._unbound: dict[str, float] = {}  # unbound device -> last message, oldest first
         self.devices_forgotten = 0  # unbound entries expired or pushed out
+        self.received_forgotten = 0  # the messages those entries had counted
+        # non-meter messages that were used: context, clinical, ack (each counted once;
+        # the refused ones are in unrouted, context_rejections and input_rejections)
+        self.applied: Counter[str] = Counter()
         self._slowest_period = max((p.timing.period_s for p in self.profiles), default=60)
         self._max_ml_per_min = max((_max_ml_per_min(p) for p in self.profiles), default=0.0)
         self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
@@ -259,8 +263,14 @@ class Engine:
         return route
 
     def _device(self, device_id: str, decoder: Decoder, now: float) -> _Device:
-        """A new entry for a device (its family not fixed yet, or first heard of)."""
-        dev = _Device(device_id, decoder, DeviceQuality(decoder.profile.name))
+        """A new entry for a device (first heard of, or its family not fixed yet: then
+        what it counted so far stays counted)."""
+        quality = DeviceQuality(decoder.profile.name)
+        old = self.devices.get(device_id)
+        if old is not None:
+            self._drop_held(old)
+            quality.received, quality.counts = old.quality.received, old.quality.counts
+        dev = _Device(device_id, decoder, quality)
         self.devices[device_id] = dev
         bed = self._bound.get(device_id)
         if bed is not None:
@@ -283,7 +293,7 @@ class Engine:
             if seen >= horizon and len(table) <= self._max_unbound:
                 break
             del table[oldest]
-            del self.devices[oldest]
+            self.received_forgotten += self.devices.pop(oldest).quality.received
             self.devices_forgotten += 1
 
     def _wrong_profile(self, topic: str, dev: _Device, now: float) -> list[Effect]:
@@ -506,6 +516,7 @@ class Engine:
             detail = f"too many beds: this engine keeps at most {self._max_beds}"
             return self._bad_context(topic, bed_id, now, Outcome.BAD_CONTEXT, detail)
         effects, moved_from = self._bind(topic, bed_id, ctx, now)
+        self.applied["context"] += 1
         for other in sorted(moved_from):  # they lost a meter: their rules may change
             effects += self._evaluate(self.beds[other], now)
         return effects + self._evaluate(self.beds[bed_id], now)
@@ -530,6 +541,7 @@ class Engine:
             ahead = self._ahead(msg.time.timestamp(), now)
             if ahead is None:
                 self._record_clinical(bed, msg, now)
+                self.applied[what] += 1
                 return self._evaluate(bed, now)
             reason, detail = Outcome.FUTURE_TIME, ahead
         self.input_rejections[reason] += 1
@@ -582,6 +594,7 @@ class Engine:
             if isinstance(result, str):
                 self.input_rejections[result] += 1
                 return [self._refused(topic, result, f"alarm {ack.alarm_id[:80]!r}", now)]
+            self.applied["ack"] += 1
             effects: list[Effect] = list(result)
             bed = self.beds.get(result[0].bed) if result else None
             if bed is not None:  # an acknowledged technical alarm stops suppressing
@@ -664,9 +677,17 @@ class Engine:
             self._attach(dev, bed_id)
         dev.owned = True
 
+    @staticmethod
+    def _drop_held(dev: _Device) -> None:
+        """A reading held for confirmation whose cleaner goes away (the meter leaves its
+        bed, or its family is named anew) is never confirmed: it is an artefact."""
+        if dev.cleaner is not None and dev.cleaner.pending():
+            dev.quality.counts[Outcome.ARTEFACT_DROPPED] += dev.cleaner.pending()
+
     def _attach(self, dev: _Device, bed_id: str) -> None:
         # A meter moved to another bed starts afresh: what is in its bag is not
         # this patient's.
+        self._drop_held(dev)
         series = self.beds[bed_id].series
         prof = dev.decoder.profile
         dev.bed = bed_id
@@ -679,6 +700,7 @@ class Engine:
         dev.latest_t = None
 
     def _detach(self, dev: _Device, now: float) -> None:
+        self._drop_held(dev)
         dev.bed = None
         dev.cleaner = None
         dev.latest_t = None
@@ -823,6 +845,19 @@ class Engine:
         return effects
 
     # --- queries -------------------------------------------------------------
+    def messages_counted(self) -> int:
+        """Every message stepped, each counted exactly once by its outcome: meter
+        messages per device (also those of forgotten devices), the rest by what became
+        of them."""
+        return (
+            sum(d.quality.received for d in self.devices.values())
+            + self.received_forgotten
+            + sum(self.unrouted.values())
+            + sum(self.context_rejections.values())
+            + sum(self.input_rejections.values())
+            + sum(self.applied.values())
+        )
+
     def quality(self) -> dict[str, dict[str, object]]:
         out: dict[str, dict[str, object]] = {}
         for dev_id, dev in sorted(self.devices.items()):
