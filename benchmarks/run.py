@@ -10,7 +10,14 @@ import platform
 import sys
 from collections.abc import Sequence
 
-from benchmarks import bench_intake, bench_journal, bench_replay, bench_review, bench_service
+from benchmarks import (
+    bench_fuzz,
+    bench_intake,
+    bench_journal,
+    bench_replay,
+    bench_review,
+    bench_service,
+)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -26,6 +33,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_review.main([]) or rc
     print()
     rc = bench_service.main([]) or rc
+    print()
+    rc = bench_fuzz.main([]) or rc
     return rc
 
 

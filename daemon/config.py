@@ -8,6 +8,7 @@ possible: HOURWATCH_MQTT_USERNAME, HOURWATCH_MQTT_PASSWORD, HOURWATCH_MQTT_PASSW
 from __future__ import annotations
 
 import os
+import re
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
@@ -24,6 +25,12 @@ from pydantic import (
     model_validator,
 )
 
+from .engine.engine import (
+    CLINICAL_AHEAD_S,
+    ID_PATTERN,
+    MAX_UNBOUND_DEVICES,
+    UNBOUND_EXPIRY_S,
+)
 from .errors import UserError, describe_validation
 from .notify.settings import NotifyConfig
 
@@ -105,6 +112,11 @@ class BrokerConfig(_Strict):
 class JournalConfig(_Strict):
     path: Path = Path("hourwatch-journal.db")
     retention_days: Annotated[float, Field(gt=0, le=3650)] = 30.0
+    # Size cap of the journal file in bytes (0: none but the disk's). Full disk or cap:
+    # the service acknowledges nothing more, says so, and retries every full_retry_s
+    # (docs/operations.md, "When the journal's disk is full").
+    max_bytes: Annotated[int, Field(ge=0)] = 0
+    full_retry_s: Annotated[float, Field(gt=0, le=300)] = 5.0
 
 
 class HealthConfig(_Strict):
@@ -127,6 +139,65 @@ class PublishConfig(_Strict):
     state_interval_s: Annotated[float, Field(ge=0, le=3600)] = 10.0
 
 
+class LimitsConfig(_Strict):
+    """Bounds on what hostile or broken input can cost (docs/operations.md)."""
+
+    # A payload over this is never read or journaled: it becomes the outcome too_large.
+    # Meter messages are ~100-300 bytes and a bed context a few kB. Keep it at or below
+    # the broker's message_size_limit (deploy/mosquitto/mosquitto.conf).
+    max_payload_bytes: Annotated[int, Field(ge=1024, le=16 * 1024 * 1024)] = 65536
+    # Received messages waiting for the worker. When full, the service stops taking
+    # from the broker (paho's thread waits), so the broker holds the rest.
+    inbound_queue: Annotated[int, Field(ge=100, le=1_000_000)] = 20_000
+    # /health says "degraded" past either: waiting messages, or seconds from a
+    # message's arrival to its journaling.
+    degraded_backlog: Annotated[int, Field(ge=1)] = 5_000
+    degraded_lag_s: Annotated[float, Field(gt=0)] = 5.0
+    # A clinical time (intake, vitals, labs, context episodes) further ahead of its
+    # receive time than this is refused as future_time.
+    clinical_ahead_s: Annotated[float, Field(ge=0, le=7 * 86400)] = CLINICAL_AHEAD_S
+    # Entries of meters on no bed: forgotten after this silence, and at most this many.
+    unbound_expiry_s: Annotated[float, Field(ge=60, le=30 * 86400)] = UNBOUND_EXPIRY_S
+    max_unbound_devices: Annotated[int, Field(ge=10, le=1_000_000)] = MAX_UNBOUND_DEVICES
+
+    @model_validator(mode="after")
+    def _backlog(self) -> LimitsConfig:
+        if self.degraded_backlog > self.inbound_queue:
+            raise ValueError("degraded_backlog must not exceed inbound_queue")
+        return self
+
+
+class IdentifiersConfig(_Strict):
+    # Bed ids, ward names and acknowledging users must match this. Never a patient's
+    # name or record number (docs/operations.md).
+    pattern: str = ID_PATTERN
+
+    @field_validator("pattern")
+    @classmethod
+    def _safe(cls, v: str) -> str:
+        try:
+            rx = re.compile(v)
+        except re.error as exc:
+            raise ValueError(f"not a regular expression: {exc}") from None
+        for bad in ("a/b", "+", "#", "", "a b"):
+            if rx.match(bad):
+                raise ValueError(f"must not admit {bad!r} (topic separators, wildcards, "
+                                 "spaces or nothing)")  # fmt: skip
+        return v
+
+
+class AckConfig(_Strict):
+    # true: acknowledgements only on {prefix}/ack/{user}, whose user the broker's ACL
+    # vouches for (deploy/mosquitto/acl). false: also the shared {prefix}/ack with the
+    # person in the payload, for a broker without authentication (the demo).
+    per_user_topic: bool = True
+    # Optional staff list: user -> the roles (of the escalation policy) they may
+    # acknowledge in. Empty: any user, in any role the policy names.
+    users: dict[Annotated[str, Field(min_length=1, max_length=64)], list[str]] = Field(
+        default_factory=dict
+    )
+
+
 class RecoveryConfig(_Strict):
     # Re-fed on restart beyond the longest rule window, so that alarm episodes that
     # began just before the window start are rebuilt with the same ids.
@@ -147,6 +218,9 @@ class ServiceConfig(_Strict):
     publish: PublishConfig = PublishConfig()
     recovery: RecoveryConfig = RecoveryConfig()
     notify: NotifyConfig = NotifyConfig()  # paging channels; none = pages stay on MQTT
+    limits: LimitsConfig = LimitsConfig()
+    identifiers: IdentifiersConfig = IdentifiersConfig()
+    ack: AckConfig = AckConfig()
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 

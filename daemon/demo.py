@@ -119,9 +119,13 @@ class Nurse:
         now = self.clock.now()
         for item in [d for d in self.due if d[0] <= now]:
             self.due.remove(item)
-            ack = {"alarm_id": item[1], "by": "nurse on duty (demo)", "role": "bedside-nurse"}
-            self.client.publish(f"{PREFIX}/ack", json.dumps(ack), qos=1)
+            # on the per-user topic: the user (here a demo account) is the acknowledger
+            ack = {"alarm_id": item[1], "role": "bedside-nurse"}
+            self.client.publish(f"{PREFIX}/ack/{DEMO_NURSE}", json.dumps(ack), qos=1)
             self.sent += 1
+
+
+DEMO_NURSE = "demo-nurse"  # invented user name of the simulated nurse
 
 
 def _ward_table(beds: dict[str, BedView], sim_now: float, start: float) -> Table:

@@ -59,6 +59,11 @@ class Histogram:
 GAUGE_HELP = {
     "journal_bytes": "size of the journal on disk: the database file plus its WAL",
     "queue_depth": "received messages waiting for the worker",
+    "backlog": "received messages not yet journaled (queued, or held by a full journal)",
+    "journal_lag_seconds": "arrival to journal of the oldest message of the last batch",
+    "journal_full": "1 while the journal cannot be written (disk or size cap full)",
+    "payloads_too_large": "payloads over limits.max_payload_bytes, withheld (since start)",
+    "inbound_full_waits": "times the inbound queue was full and the broker was made to wait",
     "outbox_depth": "messages to publish not yet confirmed by the broker",
     "connected": "1 while connected to the broker",
     "engine_errors": "engine failures caught (each one logged)",

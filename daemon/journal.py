@@ -44,6 +44,7 @@ from typing import Any, Self
 from pydantic import ValidationError
 
 from .engine.context import BedContext
+from .engine.strictjson import NotJson, validate
 from .errors import UserError
 from .logfile import BadLine, LogRecord
 
@@ -158,10 +159,12 @@ class BedFilter:
         if len(rest) != 2 or not rest[0] or rest[1] != "context":
             return
         try:
-            ctx = BedContext.model_validate(json.loads(payload))
-        except (ValidationError, ValueError, TypeError, RecursionError):
+            ctx = validate(BedContext, payload)  # as strictly as the engine reads it
+        except (ValidationError, NotJson):
             return  # the engine ignores it too
-        bed, wanted = rest[0], set(ctx.device_ids)
+        bed = rest[0]
+        # a meter another bed holds moves only when the context says so (`replaces`)
+        wanted = {d for d in ctx.device_ids if self._owner.get(d, bed) == bed or d in ctx.replaces}
         for dev, owner in list(self._owner.items()):
             if owner == bed and dev not in wanted:
                 del self._owner[dev]
@@ -173,7 +176,7 @@ class BedFilter:
         if topic.startswith(self._beds):
             self.see(topic, payload)
             return topic.startswith(self._own)
-        if topic == self._ack:
+        if topic == self._ack or topic.startswith(self._ack + "/"):  # shared or per user
             return self._my_ack(payload)
         mine = self._mine
         return bool(mine) and any(level in mine for level in topic.split("/"))
@@ -190,7 +193,7 @@ class BedFilter:
 class Journal:
     """The service's journal file (created with its schema when missing or empty)."""
 
-    def __init__(self, path: Path, *, retention_days: float = 30.0) -> None:
+    def __init__(self, path: Path, *, retention_days: float = 30.0, max_bytes: int = 0) -> None:
         if not retention_days > 0:
             raise UserError(f"journal retention must be positive, got {retention_days} days")
         self.path = path
@@ -221,6 +224,15 @@ class Journal:
             db.close()
             raise
         self._db = db
+        self.limit(max_bytes)
+
+    def limit(self, max_bytes: int) -> None:
+        """Cap the database file at about `max_bytes` (0: no cap but the disk's). Past it
+        an append fails with SQLITE_FULL, as on a full disk (see `is_full`); rows freed by
+        pruning are reused. A cap below the present size holds the file where it is."""
+        page = int(self._db.execute("PRAGMA page_size").fetchone()[0])
+        pages = max_bytes // page if max_bytes > 0 else 0xFFFFFFFE
+        self._db.execute(f"PRAGMA max_page_count = {max(1, pages)}")
 
     # --- writing ---------------------------------------------------------------
     def append_messages(self, rows: Sequence[tuple[float, str, bytes, int]]) -> list[int]:
@@ -250,7 +262,7 @@ class Journal:
             last = db.execute("SELECT last_insert_rowid()").fetchone()[0]
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
         # one writer inside BEGIN IMMEDIATE and AUTOINCREMENT: the ids are consecutive
         return list(range(last - len(rows) + 1, last + 1))
@@ -268,7 +280,7 @@ class Journal:
             )
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
 
     def prune(
@@ -309,7 +321,7 @@ class Journal:
             )
             db.execute("COMMIT")
         except BaseException:
-            db.execute("ROLLBACK")
+            _rollback(db)
             raise
         return cur.rowcount
 
@@ -413,6 +425,21 @@ class Journal:
 _EVENT_COLS = "id, time, kind, bed, alarm_id, body, delivered_at"
 
 
+def _rollback(db: sqlite3.Connection) -> None:
+    """Undo a failed transaction. SQLite has already rolled back after some errors (a
+    full disk: SQLITE_FULL), and a second ROLLBACK would hide the first error."""
+    if db.in_transaction:
+        db.execute("ROLLBACK")
+
+
+def is_full(exc: BaseException) -> bool:
+    """The journal's disk (or its size cap) is full: SQLite says SQLITE_FULL."""
+    return (
+        isinstance(exc, sqlite3.OperationalError)
+        and getattr(exc, "sqlite_errorcode", None) == sqlite3.SQLITE_FULL
+    )
+
+
 def _event(r: tuple[Any, ...]) -> StoredEvent:
     return StoredEvent(r[0], r[1], r[2], r[3], r[4], json.loads(r[5]), r[6])
 
@@ -467,7 +494,7 @@ def _init_schema(db: sqlite3.Connection, path: Path) -> None:
             db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
         db.execute("COMMIT")
     except BaseException:
-        db.execute("ROLLBACK")
+        _rollback(db)
         raise
 
 

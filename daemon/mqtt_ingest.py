@@ -21,8 +21,11 @@ from paho.mqtt.properties import Properties
 from paho.mqtt.reasoncodes import ReasonCode
 
 from .config import BrokerConfig
+from .engine.outcomes import Outcome, withheld
 
 SUBSCRIBE_QOS = 1  # at-least-once for every input; duplicates are the engine's business
+SLOT_WAIT_S = 0.5  # a full inbound queue: paho's thread checks this often for a stop
+TOO_LARGE = withheld(Outcome.TOO_LARGE).encode("utf-8")
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,7 +66,13 @@ Item = Inbound | Published | Connection
 class MqttLink:
     """Owns the paho client. Received messages go to `out`; confirmations and connection
     changes go to `control` (so that, under load, they do not wait behind a backlog of
-    readings) followed by a call of `wake`."""
+    readings) followed by a call of `wake`.
+
+    Bounds: a received message takes one of `slots` (the worker gives it back when it
+    takes the message); with none free, paho's thread waits, so the service stops
+    reading from the broker, which then holds the rest (QoS 1: unacknowledged, kept in
+    our session). A payload over `max_payload` is never kept: it becomes the
+    withheld marker for too_large, journaled and counted like any refused message."""
 
     def __init__(
         self,
@@ -75,9 +84,18 @@ class MqttLink:
         clock: Callable[[], float],
         will: tuple[str, bytes],
         log: Any,
+        *,
+        slots: threading.Semaphore | None = None,
+        stopping: threading.Event | None = None,
+        max_payload: int = 0,
     ) -> None:
         self.cfg = cfg
         self.subscriptions = subscriptions
+        self._slots = slots
+        self._stopping = stopping or threading.Event()
+        self._max_payload = max_payload
+        self.oversize = 0  # payloads withheld as too large
+        self.full_waits = 0  # times paho's thread waited for the worker
         self._out = out
         self._control = control
         self._wake = wake
@@ -203,8 +221,19 @@ class MqttLink:
         except UnicodeDecodeError:  # a broker should refuse these; drop, but say so
             self._log.warning("mqtt_bad_topic", mid=msg.mid)
             return
+        if self._max_payload and len(msg.payload) > self._max_payload:
+            self.oversize += 1
+            payload = TOO_LARGE
+        else:
+            payload = bytes(msg.payload)
+        slots = self._slots
+        if slots is not None and not slots.acquire(blocking=False):
+            self.full_waits += 1
+            while not slots.acquire(timeout=SLOT_WAIT_S):
+                if self._stopping.is_set():
+                    return  # not acknowledged: the broker sends it again next time
         self._out.put(
-            Inbound(self.conn, msg.mid, msg.qos, topic, bytes(msg.payload), self._clock(),
+            Inbound(self.conn, msg.mid, msg.qos, topic, payload, self._clock(),
                     time.perf_counter())
         )  # fmt: skip
 

@@ -71,7 +71,9 @@ class ProbeTally:
         if isinstance(out, Rejected):
             reason = str(out.reason)
             d.rejected[reason] += 1
-            d.last_rejections.append((reason, out.detail))
+            d.last_rejections.append(
+                (reason, f"{out.detail}: {out.shown}" if out.shown else out.detail)
+            )
             del d.last_rejections[:-EXAMPLES_KEPT]
             return
         assert isinstance(out, Reading)

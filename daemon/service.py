@@ -43,7 +43,7 @@ from .engine.outcomes import Outcome
 from .engine.timefmt import iso
 from .errors import UserError
 from .health import HealthServer, Metrics
-from .journal import Journal, StoredEvent
+from .journal import Journal, StoredEvent, is_full
 from .messages import (
     SCHEMA,
     ActiveAlarm,
@@ -222,12 +222,23 @@ class Service:
         self.policy = load_policy(cfg.rules)
         self.subscriptions = [p.subscription for p in profiles] + [
             f"{self.prefix}/beds/+/+",
-            f"{self.prefix}/ack",
+            f"{self.prefix}/ack/+",  # per user: the broker's ACL vouches for the user
         ]
-        self.engine = Engine(
-            profiles, self.rules, self.policy, topic_prefix=self.prefix,
-            advice_policy=load_advice(cfg.rules), timezone=zone_info(cfg.timezone),
-        )  # fmt: skip
+        if not cfg.ack.per_user_topic:  # a broker without logins: the payload names them
+            self.subscriptions.append(f"{self.prefix}/ack")
+        lim = cfg.limits
+        try:
+            self.engine = Engine(
+                profiles, self.rules, self.policy, topic_prefix=self.prefix,
+                advice_policy=load_advice(cfg.rules), timezone=zone_info(cfg.timezone),
+                id_pattern=cfg.identifiers.pattern, clinical_ahead_s=lim.clinical_ahead_s,
+                unbound_expiry_s=lim.unbound_expiry_s,
+                max_unbound_devices=lim.max_unbound_devices,
+                ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
+                ack_users=cfg.ack.users or None,
+            )  # fmt: skip
+        except ValueError as exc:  # e.g. ack.users names a role the policy does not
+            raise UserError(f"ack.users: {exc}") from None
         self.guard_s = longest_window_s(self.rules)
         self.window_s = self.guard_s + cfg.recovery.margin_s
         self.batch_max = (
@@ -237,6 +248,13 @@ class Service:
         )
         self.lock = threading.RLock()  # the engine's: worker and timer job
         self.queue: queue.SimpleQueue[Any] = queue.SimpleQueue()  # received messages
+        # one slot per received message not yet journaled (queued or held): a bound
+        self.slots = threading.Semaphore(lim.inbound_queue)
+        # the journal's disk (or cap) is full: what waits to be journaled, in order
+        self._held: list[Inbound] = []
+        self._held_effects: list[tuple[list[Effect], dict[int, float] | None]] = []
+        self._next_retry = -math.inf  # monotonic
+        self._journal_lag = 0.0  # seconds from arrival to journal, last batch
         self.control: queue.SimpleQueue[Any] = queue.SimpleQueue()  # confirmations, connection
         self.metrics = Metrics()
         self.stats = ServiceStats()
@@ -298,12 +316,15 @@ class Service:
         # journal of its own, closed before the worker's long-lived one is opened.
         with Journal(cfg.journal.path, retention_days=cfg.journal.retention_days) as j:
             self._recover(j)
-        self.journal = Journal(cfg.journal.path, retention_days=cfg.journal.retention_days)
+        self.journal = Journal(cfg.journal.path, retention_days=cfg.journal.retention_days,
+                               max_bytes=cfg.journal.max_bytes)  # fmt: skip
         will = offline_status(self.clock(), "connection lost", self.stats.started)
         self.link = MqttLink(
             cfg.broker, self.subscriptions, self.queue, self.control,
             lambda: self.queue.put(_WAKE), self.clock,
             (self._topic("status"), will.to_bytes()), self.log,
+            slots=self.slots, stopping=self._stopping,
+            max_payload=cfg.limits.max_payload_bytes,
         )  # fmt: skip
         self.outbox = Outbox(self.link.publish, cfg.publish.confirm_timeout_s)
         if self.notifier is not None:  # before anything new is journaled: downtime pages too
@@ -432,6 +453,8 @@ class Service:
                 if stop:
                     self._finish()
                     return
+                if (self._held or self._held_effects) and time.monotonic() >= self._next_retry:
+                    self._retry_journal()
                 if time.monotonic() >= self._next_housekeeping:
                     self._next_housekeeping = time.monotonic() + HOUSEKEEPING_EVERY_S
                     self._housekeeping()
@@ -449,6 +472,7 @@ class Service:
         try:
             first = self.queue.get(timeout=HOUSEKEEPING_S)
         except queue.Empty:
+            self._journal_lag = 0.0  # nothing waits
             return items, False
         if first is _STOP:
             return items, True
@@ -481,7 +505,9 @@ class Service:
         if confirmed:
             self._confirm(confirmed)
         inbound = [item for item in items if isinstance(item, Inbound)]
-        if inbound:
+        if self._held or self._held_effects:
+            self._held += inbound  # the journal is full: nothing is acknowledged
+        elif inbound:
             self._ingest(inbound)
         else:
             with self.lock:
@@ -503,7 +529,15 @@ class Service:
                 self._now = max(self._now, m.recv_time)  # time.time() can step back
                 times.append(self._now)
             rows = [(t, m.topic, m.payload, m.qos) for t, m in zip(times, batch, strict=True)]
-            self.journal.append_messages(rows)  # durable on return
+            try:
+                self.journal.append_messages(rows)  # durable on return
+            except Exception as exc:
+                if not is_full(exc):
+                    raise  # any other failure: stop, acknowledging nothing
+                self._journal_full(batch, exc)
+                return
+            self.slots.release(len(batch))
+            self._journal_lag = time.perf_counter() - min(m.arrived for m in batch)
             acked = stale = 0
             conn = self.link.conn
             up = self.link.connected.is_set()
@@ -585,7 +619,12 @@ class Service:
                     self.log.warning("alarm_delivered_late", alarm_id=msg.alarm_id,
                                      bed=bed_of(msg.alarm_id),
                                      after_s=round(now - msg.created, 1))  # fmt: skip
-        self.journal.mark_delivered(delivered, now)
+        try:
+            self.journal.mark_delivered(delivered, now)
+        except Exception as exc:  # a full disk: sent again after a restart, at worst
+            if not is_full(exc):
+                raise
+            self._hold_journal(exc)
 
     def _finish(self) -> None:
         """At stop: send what is waiting, wait briefly for confirmations, say offline."""
@@ -615,13 +654,65 @@ class Service:
             self.log.warning("stopping_with_unconfirmed", events=len(left),
                              note="sent again at the next start")  # fmt: skip
 
+    # --- a full journal: hold, say so, retry -----------------------------------------
+    def _journal_full(self, batch: list[Inbound], exc: Exception) -> None:
+        """Received messages that could not be journaled: kept in order, never
+        acknowledged (the broker still has them should we stop), retried every
+        journal.full_retry_s; new ones queue behind them until the slots run out."""
+        self._held = batch + self._held
+        self._hold_journal(exc)
+
+    def _hold_journal(self, exc: Exception) -> None:
+        self._next_retry = time.monotonic() + self.cfg.journal.full_retry_s
+        if "journal_full" not in self.stats.technical:
+            text = ("the journal cannot be written (disk or size cap full): nothing new is "
+                    "acknowledged or evaluated until there is room")  # fmt: skip
+            self.stats.technical["journal_full"] = _Technical("journal_full", text, self.clock())
+            self.log.error("journal_full", error=str(exc), path=str(self.cfg.journal.path),
+                           retry_s=self.cfg.journal.full_retry_s)  # fmt: skip
+
+    def _retry_journal(self) -> None:
+        """Effects first (they came first), then the held messages, a batch at a time."""
+        while self._held_effects:
+            effects, arrived = self._held_effects[0]
+            if not self._emit(effects, arrived, retry=True):
+                return
+            self._held_effects.pop(0)
+        while self._held:
+            batch = self._held[: self.batch_max]
+            del self._held[: self.batch_max]
+            self._ingest(batch)
+            if self._held_effects or (self._held and self._held[0] is batch[0]):
+                return  # still full
+        if "journal_full" in self.stats.technical:
+            del self.stats.technical["journal_full"]
+            self.log.info("journal_writable_again")
+
     # --- effects → journal → outbox ----------------------------------------------------
-    def _emit(self, effects: list[Effect], arrived: dict[int, float] | None = None) -> None:
+    def _emit(
+        self,
+        effects: list[Effect],
+        arrived: dict[int, float] | None = None,
+        retry: bool = False,
+    ) -> bool:
+        """Journal the effects, then publish them; False if the journal is full (they are
+        held, in order, and published once journaled)."""
         if not effects:
-            return
+            return True
         assert self.journal is not None and self.outbox is not None
+        if self._held_effects and not retry:
+            self._held_effects.append((effects, arrived))
+            return False
         rows = [journal_row(e) for e in effects]
-        ids = self.journal.append_events(rows)  # journaled before it is published
+        try:
+            ids = self.journal.append_events(rows)  # journaled before it is published
+        except Exception as exc:
+            if not is_full(exc):
+                raise
+            if not retry:
+                self._held_effects.append((effects, arrived))
+            self._hold_journal(exc)
+            return False
         if self.notifier is not None:
             self.notifier.wake()  # it pages from the journal
         now = self.clock()
@@ -648,8 +739,9 @@ class Service:
                         Outgoing(self._topic("rejected"), body, 0, False, [], None, now)
                     )
             elif isinstance(e, Notice):
-                self.log.info("bed_notice", bed=e.bed, ward=e.ward, code=e.code)
+                self.log.info("bed_notice", bed=e.bed, ward=e.ward, code=e.code, text=e.text)
                 self._bed(e.bed).dirty = True
+        return True
 
     def _alarm(self, e: AlarmEvent, event_id: int, now: float) -> None:
         assert self.outbox is not None
@@ -682,7 +774,12 @@ class Service:
         now = self.clock()
         body: dict[str, object] = {"alarm_id": msg.alarm_id, "topic": msg.topic, "reason": why,
                                    "raised": iso(msg.created), "time": iso(now)}  # fmt: skip
-        self.journal.append_events([(now, "publish_failed", None, msg.alarm_id, body)])
+        try:
+            self.journal.append_events([(now, "publish_failed", None, msg.alarm_id, body)])
+        except Exception as exc:
+            if not is_full(exc):
+                raise
+            self._hold_journal(exc)  # the log line below still says it
         with self.metrics.lock:
             self.metrics.publish_failures += 1
         self.log.error("alarm_not_delivered", alarm_id=msg.alarm_id, bed=bed_of(msg.alarm_id),
@@ -710,6 +807,7 @@ class Service:
                     del self.stats.technical[key]
                     self.log.info("technical_alarm_cleared", code=tech.code,
                                   alarm_id=tech.alarm_id, bed=bed_of(tech.alarm_id))  # fmt: skip
+        self._backlog_alarm()
         self._publish_states(force=False)
         self._publish_status()
         self.outbox.flush(self._connected)
@@ -718,6 +816,20 @@ class Service:
             self.journal.checkpoint()
         except Exception:  # the WAL just grows a little longer: try again next time
             self.log.error("journal_checkpoint_failed", exc_info=True)
+
+    def _backlog_alarm(self) -> None:
+        """Behind (a backlog or a journal lag past its limit): a technical condition of
+        the service, in its retained status, until it has caught up."""
+        why = self.degraded_because()
+        tech = self.stats.technical
+        if why and "inbound_backlog" not in tech:
+            text = "the service is behind its inbound messages: " + ", ".join(why)
+            tech["inbound_backlog"] = _Technical("inbound_backlog", text, self.clock())
+            self.log.warning("inbound_backlog", backlog=self.backlog(),
+                             journal_lag_s=round(self._journal_lag, 3))  # fmt: skip
+        elif not why and "inbound_backlog" in tech:
+            del tech["inbound_backlog"]
+            self.log.info("inbound_backlog_cleared")
 
     def _publish_states(self, force: bool) -> None:
         assert self.outbox is not None
@@ -896,24 +1008,48 @@ class Service:
     def connected(self) -> bool:
         return self._connected
 
+    def backlog(self) -> int:
+        """Received messages not yet journaled: queued, or held by a full journal."""
+        return self.queue.qsize() + len(self._held)
+
+    def degraded_because(self) -> list[str]:
+        lim = self.cfg.limits
+        why = []
+        if self.backlog() > lim.degraded_backlog:
+            why.append(f"backlog over {lim.degraded_backlog} messages")
+        if self._journal_lag > lim.degraded_lag_s:
+            why.append(f"journal lag over {lim.degraded_lag_s:g} s")
+        return why
+
     def health_report(self) -> tuple[bool, dict[str, Any]]:
+        """200 "ok"; 200 "degraded" (working, but behind: a backlog or a journal lag past
+        its limit); 503 "unhealthy" (worker dead, broker lost, or journal full)."""
         alive = self._worker is not None and self._worker.is_alive() and self.failed is None
-        ok = alive and self._connected
+        full = bool(self._held or self._held_effects)
+        ok = alive and self._connected and not full
+        degraded = self.degraded_because()
         outbox = self.outbox
         body: dict[str, Any] = {
-            "status": "ok" if ok else "unhealthy",
+            "status": ("degraded" if degraded else "ok") if ok else "unhealthy",
             "connected": self._connected,
             "worker_alive": alive,
             "worker_error": self.failed,
             "broker_error": self.link.last_error if self.link else None,
             "queue_depth": self.queue.qsize(),
+            "backlog": self.backlog(),
+            "journal_lag_s": round(self._journal_lag, 3),
+            "journal_full": full,
+            "degraded": degraded,
             "outbox": len(outbox) if outbox else 0,
             "delivery": self._delivery() if outbox is not None else "unknown",
             "technical_alarms": [
                 {"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
                 for t in list(self.stats.technical.values())  # the worker may change it
-            ] + [{"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
-                 for t in self._notify_technical()],
+            ]
+            + [
+                {"code": t.code, "alarm_id": t.alarm_id, "since": iso(t.since)}
+                for t in self._notify_technical()
+            ],
             "caution": CAUTION,
         }
         if self.notifier is not None:
@@ -927,8 +1063,14 @@ class Service:
         for p in (path, path.with_name(path.name + "-wal")):
             with contextlib.suppress(OSError):
                 size += p.stat().st_size
+        link = self.link
         gauges = {
             "queue_depth": float(self.queue.qsize()),
+            "backlog": float(self.backlog()),
+            "journal_lag_seconds": self._journal_lag,
+            "journal_full": 1.0 if (self._held or self._held_effects) else 0.0,
+            "payloads_too_large": float(link.oversize if link else 0),
+            "inbound_full_waits": float(link.full_waits if link else 0),
             "outbox_depth": float(len(outbox) if outbox else 0),
             "connected": 1.0 if self._connected else 0.0,
             "journal_bytes": float(size),

@@ -254,13 +254,18 @@ def check_scenario(
 ) -> None:
     sim = simulate(REFERENCE, DEVICE, START, scn.hours, scn.flow, faults(scn, noise_sd_ml), seed)
     ctx = context_record(T_START - 30.0, BED, WARD, [DEVICE], weight_kg=scn.weight_kg)
+    contexts = [ctx]
     if scn.relieved_min is not None:  # the relief marker that arms the POD rules (DESIGN §4)
-        at = datetime.fromtimestamp(T_START + scn.relieved_min * 60.0, UTC).isoformat()
+        relieved = T_START + scn.relieved_min * 60.0
+        marked = context_record(relieved, BED, WARD, [DEVICE], weight_kg=scn.weight_kg)
         # nothing retained drains in this flow: the whole 660 mL/h is diuresis
-        ctx[2]["episodes"] = [{"kind": "obstruction_relieved", "at": at,
-                               "residual_drain_min": 0}]  # fmt: skip
+        at = datetime.fromtimestamp(relieved, UTC).isoformat()
+        marked[2]["episodes"] = [
+            {"kind": "obstruction_relieved", "residual_drain_min": 0, "at": at}
+        ]
+        contexts.append(marked)
     log = tmp_path / f"{scn.name}-{seed}.jsonl"
-    records = [ctx, *sim.records]
+    records = [*contexts, *sim.records]
     write_log(log, records)
     truth = truth_crossings(sim, scn.weight_kg, records)
     for rid, c in truth.items():  # the scenario itself must be clear-cut

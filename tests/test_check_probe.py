@@ -59,7 +59,9 @@ def test_check_shows_subscriptions_journal_broker_and_health(tmp_path, capsys):
     out = capsys.readouterr().out
     for p in PROFILES.values():  # every filter, beside the profile it serves
         assert re.search(rf"^\s+{re.escape(p.subscription)}\s+profile {p.name}:", out, re.M), out
-    assert re.search(r"^\s+hourwatch/ack\s+alarm acknowledgements", out, re.M)
+    assert re.search(
+        r"^\s+hourwatch/ack/\+\s+alarm acknowledgements, one topic per user", out, re.M
+    )
     assert re.search(r"^\s+hourwatch/beds/\+/\+\s+bed context", out, re.M)
     # the example file's values
     assert "127.0.0.1:1883  MQTT 5" in out and "'hourwatch-icu-east'" in out

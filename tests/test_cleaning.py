@@ -14,7 +14,16 @@ import pytest
 from daemon.engine.effects import RejectedInput
 from daemon.engine.outcomes import Outcome
 from daemon.engine.series import ESTIMATED, MEASURED, UNKNOWN
-from tests.conftest import CUMULATIVE, FLAGGED, INTERVAL, PROFILES, T0, Meter, send_steady
+from tests.conftest import (
+    CUMULATIVE,
+    FLAGGED,
+    INTERVAL,
+    PROFILES,
+    T0,
+    Meter,
+    context_payload,
+    send_steady,
+)
 
 ALL = sorted(PROFILES)
 FLOW_ML_H = 60.0  # invented steady flow
@@ -458,7 +467,10 @@ def test_meter_moved_to_another_bed_starts_a_fresh_baseline(name: str) -> None:
     interval = name in INTERVAL
     send_steady(m, T0, 5, step, level=300)
     first_bed = m.total()
-    m.bind("b02", at=T0 + 5 * p)
+    # the new bed's context says it takes the meter over (else the move is refused)
+    ctx = context_payload([m.device]) | {"replaces": [m.device]}
+    eff = m.engine.step("hourwatch/beds/b02/context", ctx, T0 + 5 * p)
+    assert [getattr(e, "code", None) for e in eff] == ["device_moved"]
     # on the new bed the bag already holds 300+ mL of the previous patient's urine
     for i in range(5, 10):
         m.send(T0 + i * p, value(name, i, level=300))
@@ -629,3 +641,172 @@ def test_every_message_is_counted_exactly_once(name: str) -> None:
     outcomes = q["outcomes"]
     assert isinstance(outcomes, dict)
     assert q["received"] == sum(outcomes.values()) + q["held"] == 14
+
+
+# --- artefacts that look like bag changes or surges (issue 14) -------------------------
+# An invented steady flow of 150 mL/h: the rate of the fault-injection run that found
+# these defects (invented for the test, not a clinical value).
+GLITCH_FLOW_ML_H = 150.0
+
+
+def _glitch_stream(
+    name: str, m: Meter, glitches: dict[int, float], n: int, level: float = 400.0
+) -> list[tuple[float, float]]:
+    """n readings at GLITCH_FLOW_ML_H from `level`; reading i is replaced by the value
+    glitches[i] (the meter's true content is unchanged). Returns the true (t, content)."""
+    p, step = period(name), per_reading(name, GLITCH_FLOW_ML_H)
+    truth = []
+    for i in range(n):
+        t, v = T0 + i * p, level + i * step
+        m.send(t, glitches.get(i, v))
+        truth.append((t, v))
+    return truth
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_a_single_zero_reading_then_back_at_the_level_is_an_artefact(name: str) -> None:
+    m = Meter(PROFILES[name])
+    truth = _glitch_stream(name, m, {10: 0.0}, 30)
+    out = m.outcomes()
+    assert out.get("artefact_dropped") == 1
+    assert "bag_change" not in out and "bag_change_inferred" not in out
+    assert "spike_confirmed" not in out
+    assert m.total() == pytest.approx(
+        truth[-1][1] - truth[0][1], abs=2 * grams_rounding(name) + 1e-6
+    )
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_two_zero_readings_then_back_at_the_level_are_artefacts(name: str) -> None:
+    m = Meter(PROFILES[name])
+    truth = _glitch_stream(name, m, {10: 0.0, 11: 0.0}, 30)
+    out = m.outcomes()
+    assert out.get("artefact_dropped") == 2, out
+    assert "bag_change" not in out and "spike_confirmed" not in out
+    assert m.total() == pytest.approx(
+        truth[-1][1] - truth[0][1], abs=2 * grams_rounding(name) + 1e-6
+    )
+    q = m.engine.quality()[m.device]
+    assert q["received"] == sum(out.values()) + q["held"] == 30
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_a_two_reading_surge_that_falls_back_to_the_level_is_an_artefact(name: str) -> None:
+    """Two readings 300 mL too high, then the meter reads the true content again: no
+    urine was made by the surge, and nothing is counted for it."""
+    m = Meter(PROFILES[name])
+    step = per_reading(name, GLITCH_FLOW_ML_H)
+    surge = 300.0  # invented, beyond the maximum plausible flow in one period
+    assert surge > PROFILES[name].limits.max_flow_ml_h * period(name) / 3600
+    truth = _glitch_stream(name, m, {10: 400 + 10 * step + surge, 11: 400 + 11 * step + surge}, 30)
+    out = m.outcomes()
+    assert out.get("artefact_dropped") == 2, out
+    assert "spike_confirmed" not in out and "bag_change_inferred" not in out
+    assert m.total() == pytest.approx(
+        truth[-1][1] - truth[0][1], abs=2 * grams_rounding(name) + 1e-6
+    )
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_zero_glitches_an_hour_apart_leave_hourly_volumes_at_the_truth(name: str) -> None:
+    """The fault-injection case: a glitch to 0 mL in each of two hours at a true
+    150 mL/h. Every completed clock hour is compared with a numpy sum of the truth."""
+    p = period(name)
+    per_hour = round(3600 / p)
+    glitches = {per_hour + 7: 0.0, 2 * per_hour + 11: 0.0}
+    m = Meter(PROFILES[name])
+    n = 4 * per_hour + 1
+    _glitch_stream(name, m, glitches, n)
+    minutes = np.full(4 * 60, GLITCH_FLOW_ML_H / 60)  # the true volume, minute by minute
+    truth = minutes.reshape(4, 60).sum(axis=1)
+    hours = [h for h in m.series.completed_hours() if T0 <= h.hour_start_min * 60 < T0 + 4 * 3600]
+    assert len(hours) == 4
+    np.testing.assert_allclose([h.volume_ml for h in hours], truth, atol=1.0)
+    assert m.outcomes().get("artefact_dropped") == 2
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_an_emptying_is_recognised_one_reading_after_the_fall(name: str) -> None:
+    """A real bag change without a flag: the fall to near zero waits for one reading,
+    which continues from near zero, and is then a bag change at the fall's time."""
+    p, step = period(name), per_reading(name)
+    m = Meter(PROFILES[name])
+    t, _ = send_steady(m, T0, 10, step, level=400)[-1]
+    assert m.send(t + p, 1.0) == []
+    assert m.engine.quality()[m.device]["held"] == 1  # waits one reading period at most
+    assert m.send(t + 2 * p, 1.0 + step) == []
+    assert m.outcomes().get("bag_change") == 1
+    assert m.engine.quality()[m.device]["held"] == 0
+    assert m.series.latest_time == t + 2 * p
+    for i in range(3, 12):  # and the new bag is never taken back
+        m.send(t + i * p, 1.0 + (i - 1) * step)
+    assert m.outcomes().get("bag_change") == 1 and "artefact_dropped" not in m.outcomes()
+
+
+@pytest.mark.parametrize("name", FLAGGED)
+def test_a_flagged_bag_change_is_believed_at_once(name: str) -> None:
+    p, step = period(name), per_reading(name)
+    m = Meter(PROFILES[name])
+    t, _ = send_steady(m, T0, 10, step, level=400)[-1]
+    assert m.send(t + p, 0.5, bag_flag=True) == []
+    assert m.outcomes().get("bag_change") == 1
+    assert m.engine.quality()[m.device]["held"] == 0
+    assert m.series.latest_time == t + p
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_one_wild_reading_at_the_old_level_does_not_undo_a_real_emptying(name: str) -> None:
+    p, step = period(name), per_reading(name)
+    m = Meter(PROFILES[name])
+    t, v = send_steady(m, T0, 10, step, level=400)[-1]
+    # emptied half a period after t: the new bag holds what was made since
+    m.send(t + p, step / 2)
+    m.send(t + 2 * p, step * 1.5)
+    m.send(t + 3 * p, v + 3 * step)  # one reading back at the old bag's level
+    for i in range(4, 10):
+        m.send(t + i * p, step * (i - 0.5))
+    out = m.outcomes()
+    assert out.get("bag_change") == 1 and out.get("artefact_dropped") == 1, out
+    # the old bag up to t, the emptying's estimate, the new bag from its first reading
+    assert m.total() == pytest.approx(
+        true_volume(name, T0, t + 9 * p), abs=2 * grams_rounding(name) + 0.2
+    )
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_a_reading_older_than_a_held_one_is_judged_first(name: str) -> None:
+    """The first empty-bag reading arrives before the last full-bag one (reordered in
+    the network): the full-bag reading is used, and the emptying is still recognised."""
+    p, step = period(name), per_reading(name)
+    m = Meter(PROFILES[name])
+    t, v = send_steady(m, T0, 10, step, level=400)[-1]
+    # emptied half a period after t + p: the new bag holds what was made since
+    m.send(t + 2 * p, step / 2, recv=t + 2 * p + 1)  # held: a fall to near zero
+    assert m.send(t + p, v + step, recv=t + 2 * p + 2) == []  # the older one, late
+    m.send(t + 3 * p, step * 1.5)
+    m.send(t + 4 * p, step * 2.5)
+    out = m.outcomes()
+    assert out.get("bag_change") == 1 and "artefact_dropped" not in out, out
+    assert m.series.latest_time == t + 4 * p
+    assert m.total() == pytest.approx(
+        true_volume(name, T0, t + 4 * p), abs=2 * grams_rounding(name) + 0.2
+    )
+
+
+def test_review_shows_readings_taken_back_as_artefacts() -> None:
+    """The review tools file each reading's final outcome: readings first counted (a
+    bag change by two zero readings) and taken back later show as artefacts."""
+    from daemon.engine.engine import Engine
+    from daemon.review.recorder import OUTCOMES, Recorder
+
+    name = "reference-cumulative"
+    rec = Recorder(keep_traces_for="b01")
+    m = Meter(PROFILES[name])
+    m.engine = Engine(PROFILES.values(), observe=rec.observe)
+    m.bind("b01")
+    _glitch_stream(name, m, {10: 0.0, 11: 0.0}, 20)
+    codes = [str(OUTCOMES[c]) for c in rec.readings["b01"].codes]
+    assert codes[10:12] == ["artefact_dropped", "artefact_dropped"]
+    assert "bag_change" not in codes
+    assert [str(o) for _, o in rec.traces[10:12]] == ["artefact_dropped"] * 2
+    assert codes.count("accepted") == 18

@@ -73,7 +73,8 @@ def test_raising_pod_hourly_to_250_drops_the_borderline_alarm_only(
     # pages per bed-day per rule: the alarm that went took its pages with it
     assert 0 < pod["burden_b"]["pages"] < pod["burden_a"]["pages"]
     assert pod["burden_a"]["pages_per_bed_day"] == pytest.approx(
-        pod["burden_a"]["pages"] / c["bed_days_a"], rel=0.01  # bed-days shown to 3 decimals
+        pod["burden_a"]["pages"] / c["bed_days_a"],
+        rel=0.01,  # bed-days shown to 3 decimals
     )
     # the replacement rule only runs while pod-* is open, so it follows
     rep = next(r for r in c["rules"] if r["rule"] == "replacement-behind")

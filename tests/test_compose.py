@@ -6,9 +6,11 @@ publish only on its own topic (this part against a REAL mosquitto binary).
 
 from __future__ import annotations
 
+import contextlib
 import shlex
 import shutil
 import subprocess
+import threading
 import time
 import tomllib
 from pathlib import Path
@@ -197,7 +199,7 @@ def test_the_acl_covers_every_shipped_device_profile() -> None:
         assert ("read", p.subscription) in users["hourwatch"], p.name
         assert ("write", p.subscription) in users["simulator"], p.name
     svc = users["hourwatch"]
-    assert ("read", "hourwatch/beds/#") in svc and ("read", "hourwatch/ack") in svc
+    assert ("read", "hourwatch/beds/#") in svc and ("read", "hourwatch/ack/+") in svc
     assert ("write", "hourwatch/alarms/#") in svc
 
 
@@ -245,3 +247,126 @@ def test_the_acl_on_a_real_broker(tmp_path: Path) -> None:
     assert heard == ["meters/rc-0101/volume", "hourwatch/beds/bed-01/context"]
     assert refused is not None and refused.is_failure
     assert wrong is not None and wrong.is_failure
+
+
+# --- durability and size limits of the shipped broker settings (issue 14) --------------
+
+
+def _client(b: Any, user: str | None = None, pw: str | None = None) -> mqtt.Client:
+    """A connected MQTT 5 client (or one the broker refused: not connected)."""
+    c = mqtt.Client(CallbackAPIVersion.VERSION2, protocol=mqtt.MQTTv5)
+    if user:
+        c.username_pw_set(user, pw)
+    done = threading.Event()
+    c.on_connect = lambda *a: done.set()
+    c.connect(b.host, b.port)
+    c.loop_start()
+    done.wait(5)
+    return c
+
+
+def _shipped(*keys: str) -> str:
+    """The shipped mosquitto.conf lines for these keys, for a local test broker."""
+    conf = _conf()
+    return "".join(f"{k} {v}\n" for k in keys for v in conf.get(k, []))
+
+
+def test_the_broker_saves_its_queue_often_and_limits_payload_size() -> None:
+    conf = _conf()
+    assert conf["persistence"] == ["true"]
+    assert conf["autosave_on_changes"] == ["false"]  # a time, not a count of changes
+    (interval,) = conf["autosave_interval"]
+    assert 0 < int(interval) <= 60  # Mosquitto's default, 1800 s, lost a crash's queue
+    (limit,) = conf["message_size_limit"]
+    from daemon.config import LimitsConfig
+
+    assert 1024 <= int(limit) == LimitsConfig().max_payload_bytes
+
+
+def test_a_broker_crash_keeps_what_it_queued_for_a_stopped_service(tmp_path: Path) -> None:
+    """600 readings are queued for the service while it is stopped; the broker is killed
+    with SIGKILL after its autosave interval and started again: the service gets all."""
+    import json as _json
+    import signal as _signal
+
+    from daemon.journal import Journal
+    from tests.broker import publish_all, publisher, running_service
+    from tests.test_service import context, readings
+
+    interval = int(_conf()["autosave_interval"][0])
+    jpath = tmp_path / "j.db"
+    extra = "allow_anonymous true\n" + _shipped("autosave_interval", "autosave_on_changes")
+    with running_broker(extra) as b:
+        with running_service(b, jpath):
+            pass  # its persistent session and subscriptions now exist at the broker
+        pub = publisher(b)
+        feed = readings("rc-1", time.time() - 10 * 3600, 10.0)
+        assert len(feed) == 600
+        publish_all(pub, [("hourwatch/beds/b01/context", context(["rc-1"])), *feed])
+        pub.disconnect()
+        pub.loop_stop()
+        time.sleep(interval + 2)  # one autosave has happened since
+        assert b.proc is not None
+        b.proc.send_signal(_signal.SIGKILL)  # a crash: no save at shutdown
+        b.proc.wait(5)
+        b.proc = None
+        b.start()
+        with running_service(b, jpath) as svc:
+            deadline = time.monotonic() + 20
+            while svc.metrics.journaled < 601 and time.monotonic() < deadline:
+                time.sleep(0.05)
+    with Journal(jpath) as j:
+        seqs = {_json.loads(m.payload)["seq"] for m in j.messages_between(None, None)
+                if m.topic.startswith("meters/")}  # fmt: skip
+    assert seqs == {p["seq"] for _, p in feed}
+
+
+def test_the_broker_refuses_payloads_over_its_limit() -> None:
+    limit = int(_conf()["message_size_limit"][0])
+    extra = "allow_anonymous true\n" + _shipped("message_size_limit")
+    with running_broker(extra) as b:
+        got = Collector(b, "meters/#")
+        for size in (limit + 1, 200, limit):
+            c = _client(b)
+            info = c.publish("meters/rc-1/volume", b"x" * size, qos=1)
+            # an oversized one is refused (mosquitto 2.0 may also drop the connection)
+            with contextlib.suppress(RuntimeError):
+                info.wait_for_publish(5)
+            c.disconnect()
+            c.loop_stop()
+        time.sleep(0.3)
+        got.stop()
+        log = b.log()
+    assert [len(g[2]) for g in got.got] == [200, limit], log[-500:]
+
+
+@pytest.mark.skipif(shutil.which("mosquitto_passwd") is None, reason="no mosquitto_passwd")
+def test_only_a_person_acknowledges_and_only_under_their_own_name(tmp_path: Path) -> None:
+    """The shipped ACL plus one person's block, as deploy/mosquitto/README.md says to add
+    it: the person may write only their own ack topic; meters, the ward gateway and the
+    simulator cannot acknowledge; the service hears the person's acknowledgement."""
+    users = [("hourwatch", "svc-pw"), ("rc-0101", "meter-pw"), ("ward-gateway", "gw-pw"),
+             ("nurse-ana", "ana-pw"), ("simulator", "sim-pw")]  # fmt: skip
+    passwd = tmp_path / "passwd"
+    for i, (user, pw) in enumerate(users):
+        flags = ["-c"] if i == 0 else []
+        subprocess.run(["mosquitto_passwd", *flags, "-b", str(passwd), user, pw], check=True)
+    passwd.chmod(0o600)
+    acl = tmp_path / "acl"
+    person = (
+        "\nuser nurse-ana\ntopic write hourwatch/ack/nurse-ana\ntopic read hourwatch/alarms/#\n"
+    )
+    acl.write_text((ROOT / "deploy/mosquitto/acl").read_text() + person)
+    extra = f"allow_anonymous false\npassword_file {passwd}\nacl_file {acl}\n"
+    with running_broker(extra) as b:
+        service = Collector(b, "hourwatch/ack/+", username="hourwatch", password="svc-pw")
+        for user, pw in users:
+            for topic in ("hourwatch/ack/nurse-ana", f"hourwatch/ack/{user}", "hourwatch/ack"):
+                c = _client(b, user, pw)
+                c.publish(topic, user.encode(), qos=1).wait_for_publish(5)
+                c.disconnect()
+                c.loop_stop()
+        time.sleep(0.3)
+        service.stop()
+    heard = {(g[1], bytes(g[2]).decode()) for g in service.got}
+    assert heard == {("hourwatch/ack/nurse-ana", "nurse-ana")}

@@ -346,3 +346,34 @@ def test_tare_is_subtracted_before_the_density_conversion() -> None:
 def test_specific_gravity_outside_what_urine_can_be_is_refused_by_the_schema() -> None:
     with pytest.raises(ValueError, match="specific_gravity"):
         with_sg(GRAV, 1.2)
+
+
+# --- strict JSON numbers (issue 14) --------------------------------------------------
+# A JSON payload says what is a number: a string that looks like one is a mistake in the
+# sender (or a hostile one), never read as a number. Text payloads are text by nature.
+
+
+@pytest.mark.parametrize(
+    ("profile", "device", "payload", "reason"),
+    [
+        (REF, "rc-0101", ref_payload(volume_ml="12"), Outcome.BAD_NUMBER),
+        (REF, "rc-0101", ref_payload(volume_ml="0"), Outcome.BAD_NUMBER),
+        (REF, "rc-0101", ref_payload(volume_ml=" 412.5 "), Outcome.BAD_NUMBER),
+        (REF, "rc-0101", ref_payload(seq="1042"), Outcome.BAD_NUMBER),
+        (IVL, "iv-07", ivl_payload(volume="12.5"), Outcome.BAD_NUMBER),
+        (IVL, "iv-07", ivl_payload(n="42"), Outcome.BAD_NUMBER),
+        (NEST, "nt-3", nest_payload(cum="0.412"), Outcome.BAD_NUMBER),
+        (NEST, "nt-3", nest_payload(ts_ms="1773453600000"), Outcome.BAD_TIME),
+        (REF, "101", ref_payload(device_id=101), Outcome.DEVICE_ID_MISMATCH),
+    ],
+)
+def test_a_string_where_json_needs_a_number_is_rejected(
+    profile: DeviceProfile, device: str, payload: Any, reason: Outcome
+) -> None:
+    r = rejected(profile, device, payload)
+    assert r.reason is reason, r
+
+
+def test_text_payloads_still_read_their_numbers() -> None:
+    r = ok(GRAV, "gs-4", "1042;2026-03-14T02:00:30Z;512.4;OK")
+    assert r.seq == 1042 and r.raw_value == pytest.approx(512.4)

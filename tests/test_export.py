@@ -200,3 +200,52 @@ def test_export_as_a_user_runs_it(night_journal: Path) -> None:
     times = [json.loads(line)["time"] for line in out.splitlines()]
     assert times and times == sorted(times)
     assert all("2026-03-14T18:00:00" <= t < "2026-03-14T18:10:00" for t in times)
+
+
+# --- refused content is redacted (issue 14) ------------------------------------------
+SENSITIVE = "sensitive-marker-7f3a"  # stands for what a site must never send
+
+
+def refused_rows(t: float) -> list[tuple[float, str, bytes, int]]:
+    """Messages refused for their content, each carrying the marker somewhere."""
+    ctx = {"ward": "4-East", "device_ids": ["gs-0201"], SENSITIVE: SENSITIVE}
+    return [
+        (t, "hourwatch/beds/bed-02/context", json.dumps(ctx).encode(), 1),
+        (t + 1, f"hourwatch/beds/{SENSITIVE} 1/context", b'{"ward": "w", "device_ids": []}', 1),
+        (t + 2, "hourwatch/beds/bed-02/labs",
+         json.dumps({"time": "2026-03-14T20:00:00Z", "note": SENSITIVE}).encode(), 1),
+        (t + 3, "meters/rc-0101/volume", json.dumps({"volume_ml": SENSITIVE}).encode(), 1),
+        (t + 4, "hourwatch/ack/nurse-1", json.dumps({"alarm_id": 1, "why": SENSITIVE}).encode(),
+         1),
+    ]  # fmt: skip
+
+
+def test_refused_content_is_redacted_and_replays_the_same(capsys, tmp_path: Path) -> None:
+    path = tmp_path / "refused.db"
+    rows = example_rows()
+    mid = rows[len(rows) // 2][0]
+    with Journal(path) as j:
+        for k in range(0, len(rows), 16):
+            j.append_messages(rows[k : k + 16])
+        j.append_messages(refused_rows(mid))
+        j.append_messages(odd_rows(mid + 10))
+    # the journal keeps what was received, as received
+    with Journal(path) as j:
+        assert sum(SENSITIVE.encode() in m.payload or SENSITIVE in m.topic
+                   for m in j.messages_between(None, None)) == 5  # fmt: skip
+    exported = tmp_path / "all.jsonl"
+    night = ["--from", "2026-03-14T00:00:00Z", "--to", "2026-03-16T00:00:00Z"]
+    rc, _, err = run(capsys, "export", str(path), *night, "--out", str(exported))
+    assert rc == 0 and "refused one(s) redacted" in err
+    text = exported.read_text(encoding="utf-8")
+    assert SENSITIVE not in text
+    withheld = [json.loads(line) for line in text.splitlines() if "withheld:" in line]
+    reasons = {rec["payload"].split(":", 1)[1] for rec in withheld}
+    assert {"bad_ack", "bad_context", "bad_clinical_input", "bad_identifier",
+            "missing_field"} <= reasons  # fmt: skip
+    assert "hourwatch/beds/{refused}/context" in {rec["topic"] for rec in withheld}
+    # a replay of the export refuses them for the same reasons: same output as the journal
+    for flags in (["--json"], ["--json", "--hourly"]):
+        _, from_journal, _ = run(capsys, "replay", str(path), *flags)
+        _, from_export, _ = run(capsys, "replay", str(exported), *flags)
+        assert from_journal == from_export

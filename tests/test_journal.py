@@ -39,8 +39,11 @@ def jpath(tmp_path: Path) -> Path:
     return tmp_path / "j.db"
 
 
-def _ctx(devices: list[str]) -> bytes:
-    return json.dumps({"ward": "icu-east", "device_ids": devices}).encode()
+def _ctx(devices: list[str], replaces: list[str] | None = None) -> bytes:
+    body: dict[str, object] = {"ward": "icu-east", "device_ids": devices}
+    if replaces:
+        body["replaces"] = replaces
+    return json.dumps(body).encode()
 
 
 # --- storing and reading ---------------------------------------------------------------
@@ -380,10 +383,12 @@ def test_bed_filter_follows_bindings_in_receive_order(jpath: Path) -> None:
         (T0 + 14, "hourwatch/ack", b'{"alarm_id": "b010/pod-hourly/x"}', 1),  # 5: not b01
         (T0 + 15, "hourwatch/beds/b02/context", b"not json", 1),  # 6: ignored, as live
         (T0 + 16, "meters/m-1/volume", b"{}", 1),  # 7: still b01's
-        (T0 + 20, "hourwatch/beds/b02/context", _ctx(["m-1"]), 1),  # 8: b02 takes m-1
-        (T0 + 30, "meters/m-1/volume", b"{}", 1),  # 9: b02's
-        (T0 + 40, "hourwatch/beds/b02/context", _ctx([]), 1),  # 10: b02 lets it go
-        (T0 + 50, "meters/m-1/volume", b"{}", 1),  # 11: nobody's
+        (T0 + 18, "hourwatch/beds/b02/context", _ctx(["m-1"]), 1),  # 8: refused: b01 holds it
+        (T0 + 19, "meters/m-1/volume", b"{}", 1),  # 9: still b01's
+        (T0 + 20, "hourwatch/beds/b02/context", _ctx(["m-1"], ["m-1"]), 1),  # 10: b02 takes m-1
+        (T0 + 30, "meters/m-1/volume", b"{}", 1),  # 11: b02's
+        (T0 + 40, "hourwatch/beds/b02/context", _ctx([]), 1),  # 12: b02 lets it go
+        (T0 + 50, "meters/m-1/volume", b"{}", 1),  # 13: nobody's
     ]
     with Journal(jpath) as j:
         ids = j.append_messages(rows)
@@ -391,12 +396,12 @@ def test_bed_filter_follows_bindings_in_receive_order(jpath: Path) -> None:
         def kept(bed: str, t0: float | None = None) -> list[int]:
             return [ids.index(m.id) for m in j.messages_between(t0, None, BedFilter(bed))]
 
-        assert kept("b01") == [0, 1, 3, 4, 7]
-        assert kept("b02") == [6, 8, 9, 10]
+        assert kept("b01") == [0, 1, 3, 4, 7, 9]
+        assert kept("b02") == [6, 8, 10, 11, 12]
         # a range starting after the binding still knows it (contexts before t0 are read)
-        assert kept("b01", T0 + 5) == [1, 3, 4, 7]
-        assert kept("b02", T0 + 25) == [9, 10]
-    assert [i for i, _ in journal_records(jpath, bed="b01")] == [ids[k] for k in (0, 1, 3, 4, 7)]
+        assert kept("b01", T0 + 5) == [1, 3, 4, 7, 9]
+        assert kept("b02", T0 + 25) == [11, 12]
+    assert [i for i, _ in journal_records(jpath, bed="b01")] == [ids[k] for k in (0, 1, 3, 4, 7, 9)]
 
 
 def test_bed_filter_uses_the_topic_prefix(jpath: Path) -> None:
@@ -595,3 +600,26 @@ def test_is_sqlite(tmp_path: Path, jpath: Path) -> None:
     # may leave an empty -wal and -shm, as SQLite's read-only connections do)
     names = sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith("j.db"))
     assert names == ["empty.jsonl", "other.db"]
+
+
+# --- a full disk ---------------------------------------------------------------------------
+
+
+def test_a_full_journal_says_so_and_takes_rows_again_once_there_is_room(jpath: Path) -> None:
+    """The size cap stands for a full disk: an append fails with SQLITE_FULL (not with
+    a second error from undoing it), keeps nothing of the failed batch, and appends
+    succeed again once the cap is lifted or pruning frees pages."""
+    from daemon.journal import is_full
+
+    with Journal(jpath, max_bytes=256 * 1024) as j:
+        n = 0
+        with pytest.raises(sqlite3.OperationalError) as exc:
+            while True:
+                j.append_messages(_batch(n))
+                n += 1
+        assert is_full(exc.value), exc.value
+        stored = len(list(j.messages_between(None, None)))
+        assert stored == n * 16  # the failed batch left nothing behind
+        j.limit(0)
+        j.append_messages(_batch(n))
+        assert len(list(j.messages_between(None, None))) == (n + 1) * 16

@@ -49,13 +49,15 @@ def _base_messages() -> list[Message]:
                     bag_change_every_s=3 * 3600.0, spike_times_s=[4000.0]),
         seed=5,
     )  # fmt: skip
-    # the obstruction relieved at 01:00 (its first hour drains the retained content)
-    ctx = context_record(T0 - 20.0, BED, "icu-west", [DEVICE], weight_kg=75.0,
-                         relieved_at=T0 + 3600.0)  # fmt: skip
-    ctx[2]["replacement"] = {"fraction_low": 0.5, "fraction_high": 0.75, "fluid": "0.45% NaCl",
-                             "ordered_by": "icu-physician-4 (invented)",
-                             "ordered_at": iso_z(T0 + 3600.0)}  # fmt: skip
-    msgs: list[Message] = [ctx]
+    # the obstruction relieved at 01:00 (its first hour drains the retained content),
+    # written into the context then, with a replacement order
+    ctx = context_record(T0 - 20.0, BED, "icu-west", [DEVICE], weight_kg=75.0)
+    relief = context_record(T0 + 3600.0 + 60.0, BED, "icu-west", [DEVICE], weight_kg=75.0,
+                            relieved_at=T0 + 3600.0)  # fmt: skip
+    relief[2]["replacement"] = {"fraction_low": 0.5, "fraction_high": 0.75,
+                                "fluid": "0.45% NaCl", "ordered_by": "icu-physician-4 (invented)",
+                                "ordered_at": iso_z(T0 + 3600.0)}  # fmt: skip
+    msgs: list[Message] = [ctx, relief]
     msgs += sim.records
     bed = f"hourwatch/beds/{BED}"
     msgs += [

@@ -93,7 +93,8 @@ def test_smtp_starttls_refuses_a_certificate_from_another_ca(tmp_path):
     other = make_certificates(tmp_path / "other")
     with mail_catcher(tls=tls) as m:
         (answer,) = SmtpSender(smtp(m.port, starttls=True, ca_file=str(other.ca)), None).send(
-            [page()])
+            [page()]
+        )
         assert not m.mails
     assert not answer.ok and answer.text.startswith("TLS"), answer
 

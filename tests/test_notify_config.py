@@ -123,21 +123,24 @@ def test_auth_needs_starttls(tmp_path):
 
 
 def test_ack_links_need_a_key_and_the_http_endpoint(tmp_path):
-    base = CHANNELS + ROUTES + '\n[notify]\n'
+    base = CHANNELS + ROUTES + "\n[notify]\n"
     no_key = base.replace("[notify]\n", "") + ""
     text = '[notify]\nack_base_url = "https://hourwatch.icu-east.example"\n' + no_key
     assert "notify.ack_base_url: needs ack_secret_env or ack_secret_file" in error(
-        write(tmp_path, text))
+        write(tmp_path, text)
+    )
     text = ('[notify]\nack_base_url = "https://hourwatch.icu-east.example"\n'
             'ack_secret_env = "HW_TEST_ACK_KEY"\n' + no_key)  # fmt: skip
     assert "notify.ack_secret_env: environment variable HW_TEST_ACK_KEY" in error(
-        write(tmp_path, text))
+        write(tmp_path, text)
+    )
     env = ENV | {"HW_TEST_ACK_KEY": "short"}
     assert "at least 16 bytes" in error(write(tmp_path, text), env=env)
     env = ENV | {"HW_TEST_ACK_KEY": "invented-ack-key-0123456789"}
     off = '[health]\nlisten = ""\n' + text
     assert "notify.ack_base_url: the links are served on health.listen" in error(
-        write(tmp_path, off), env=env)
+        write(tmp_path, off), env=env
+    )
     assert load_config(write(tmp_path, text), env=env).notify.ack_base_url
 
 
@@ -150,7 +153,7 @@ def test_check_command_prints_the_paging_section_or_one_line(tmp_path, capsys, m
     assert "route   bedside-nurse    -> pager-mail: nurse-east@pager.example (ward icu-east only)" \
         in out  # fmt: skip
     assert "no route for" not in out  # the three roles of the shipped policy are routed
-    one_role = write(tmp_path, CHANNELS + ROUTES.split("[[notify.routes]]\nrole = \"charge")[0])
+    one_role = write(tmp_path, CHANNELS + ROUTES.split('[[notify.routes]]\nrole = "charge')[0])
     assert main(["check", "--config", str(one_role)]) == 0
     assert "no route for charge-nurse, icu-physician: their pages stay on MQTT" in \
         capsys.readouterr().out  # fmt: skip

@@ -130,7 +130,9 @@ def get(url: str) -> Any:
 
 
 def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
-    broker, tmp_path, servers  # noqa: F811
+    broker,  # noqa: F811
+    tmp_path,
+    servers,
 ):
     jpath = tmp_path / "j.db"
     health = free_port()
@@ -158,6 +160,7 @@ def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
         t_b02 = time.monotonic()
         servers.mail.wait(2, timeout=10)
         wait_until(lambda: len(servers.hook.received) >= 2, 10, "the b02 webhook page")
+
         def technical(w: Watcher) -> list[dict[str, Any]]:
             return [s for s in w.json("hourwatch/status") if s.get("technical_alarms")]
 
@@ -167,7 +170,9 @@ def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
         tech = status[-1]["technical_alarms"][0]
         assert tech["code"] == "notify_channel_failing" and "alert-mgr" in tech["text"]
         mails = servers.mail.wait(3, timeout=10)  # the technical alarm, paged by mail
-        assert "ALARM medium: technical:" in mails[2]["Subject"] and "alert-mgr" in mails[2]["Subject"]
+        assert (
+            "ALARM medium: technical:" in mails[2]["Subject"] and "alert-mgr" in mails[2]["Subject"]
+        )
         body = get(f"http://127.0.0.1:{health}/health")
         assert body["notify"]["channels"]["alert-mgr"]["state"] == "failing"
         assert body["notify"]["channels"]["pager-mail"]["state"] == "ok"
@@ -250,7 +255,7 @@ def test_acknowledgement_link_get_shows_post_acknowledges_once(broker, tmp_path,
         later = acklinks.AckLinks(ACK_KEY.encode(), n.store, svc.acknowledge_from_link,
                                   lambda: time.time() + 3660)  # fmt: skip
         hook_url = servers.hook.received[0].json()["ack_url"]
-        reply = later.handle("POST", hook_url[len(base):], b"")
+        reply = later.handle("POST", hook_url[len(base) :], b"")
         assert reply is not None and reply.status == 410
         pub.disconnect()
     w.close()
@@ -383,7 +388,11 @@ def test_kill_9_with_a_page_in_flight_then_restart_sends_it_once(broker, tmp_pat
         assert set(seen.values()) == {1}, seen
     subjects = [m["Subject"] for m in servers.mail.mails]
     assert subjects[0] == alarm["pager"]
-    assert "ALARM medium: technical:" in subjects[1] and "RESOLVED" in subjects[2] and len(subjects) == 3
+    assert (
+        "ALARM medium: technical:" in subjects[1]
+        and "RESOLVED" in subjects[2]
+        and len(subjects) == 3
+    )
 
 
 def status_report(alarm_id: str, status: str, control: str, person: str = "",
@@ -427,7 +436,9 @@ def mllp_send(port: int, message: bytes) -> str:
 
 
 def test_hl7_status_report_from_the_alert_manager_acknowledges_when_configured(
-    broker, tmp_path, servers  # noqa: F811
+    broker,  # noqa: F811
+    tmp_path,
+    servers,
 ):
     status_port = free_port()
     cfg = notify(servers)

@@ -199,7 +199,9 @@ def test_a_failing_channel_raises_a_technical_alarm_paged_over_the_others(tmp_pa
         n.wake()
         wait_until(lambda: n.technical(), 10, "the technical alarm")
         mails = servers.mail.wait(2)  # the alarm's page, then the technical alarm's
-        assert "ALARM medium: technical:" in mails[1]["Subject"] and "alert-mgr" in mails[1]["Subject"]
+        assert (
+            "ALARM medium: technical:" in mails[1]["Subject"] and "alert-mgr" in mails[1]["Subject"]
+        )
         assert mails[1]["Subject"].endswith("Decision support: verify per local protocol.")
         wait_until(lambda: len(servers.hook.received) >= 2, 5, "technical alarm by webhook")
         tech = servers.hook.received[1].json()
@@ -265,6 +267,7 @@ def test_an_acknowledged_alarm_cancels_its_pages_still_waiting(tmp_path, servers
         n.wake()
         store = n.store
         assert store is not None
+
         def cancelled() -> list:
             return [d for d in store.deliveries()
                     if d.channel == "alert-mgr" and d.status == "cancelled"]  # fmt: skip

@@ -142,17 +142,22 @@ def test_ack_over_mqtt_stops_escalation_and_unknown_id_is_rejected(broker, tmp_p
 
         both = w.wait_for(two, 5, "two pod-hourly alarms")
         by_bed = {a["bed"]: a["alarm_id"] for a in both}
-        ack = {"alarm_id": by_bed["b01"], "by": "nurse-7", "role": "bedside-nurse"}
-        publish_all(pub, [("hourwatch/ack", ack)])
+        # the per-user topic: the broker's ACL lets a client publish only under its own
+        # user name (deploy/mosquitto/acl), so the user is the acknowledger
+        assert all(a["acknowledge"]["topic"] == "hourwatch/ack/{user}" for a in both)
+        ack = {"alarm_id": by_bed["b01"], "role": "bedside-nurse"}
+        publish_all(pub, [("hourwatch/ack/nurse-7", ack)])
         acked = w.wait_for(lambda w: alarms(w, "pod-hourly", "acknowledged"), 5, "the ack event")
         assert [(x["alarm_id"], x["by"], x["role"]) for x in acked] == [
             (by_bed["b01"], "nurse-7", "bedside-nurse")
         ]
-        unknown = {"alarm_id": "b09/pod-hourly/20200101T000000Z", "by": "nurse-7",
-                   "role": "bedside-nurse"}  # fmt: skip
-        publish_all(pub, [("hourwatch/ack", unknown)])
+        unknown = {"alarm_id": "b09/pod-hourly/20200101T000000Z", "role": "bedside-nurse"}
+        publish_all(pub, [("hourwatch/ack/nurse-7", unknown)])
         rej = w.wait_for(lambda w: w.json("hourwatch/rejected"), 5, "a rejection")
-        assert rej[-1]["reason"] == "unknown_alarm" and rej[-1]["topic"] == "hourwatch/ack"
+        assert rej[-1]["reason"] == "unknown_alarm" and rej[-1]["topic"] == "hourwatch/ack/nurse-7"
+        # the shared topic is not even subscribed: an acknowledgement naming anyone in its
+        # payload never reaches the engine
+        assert "hourwatch/ack" not in svc.subscriptions
         # device id and topic only, never patient fields
         assert set(rej[-1]) == {"schema", "time", "topic", "device_id", "reason", "detail"}
         clock.advance(MEDIUM_TIER1_S + 100)

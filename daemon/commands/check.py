@@ -89,8 +89,10 @@ def run(args: argparse.Namespace) -> int:
         p = profiles.get(topic)
         if p is not None:
             what = f"profile {p.name}: {p.volume.semantics}, every {p.timing.period_s} s"
+        elif topic == f"{prefix}/ack/+":
+            what = "alarm acknowledgements, one topic per user (broker ACL)"
         elif topic == f"{prefix}/ack":
-            what = "alarm acknowledgements"
+            what = "alarm acknowledgements naming the person (no broker logins)"
         elif topic == f"{prefix}/beds/+/+":
             what = "bed context and clinical inputs"
         else:

@@ -142,7 +142,9 @@ class AlarmEvent:
             "caution": ALARM_CAUTION,
             "acknowledge": {
                 "topic": self.ack_topic,
-                "payload": {"alarm_id": self.alarm_id, "by": "<your name>", "role": "<your role>"},
+                # on a per-user topic the broker's user is the acknowledger
+                "payload": {"alarm_id": self.alarm_id, "role": "<your role>"}
+                | ({} if "{user}" in self.ack_topic else {"by": "<your name>"}),
                 # the alarm returns after this if its condition is still present
                 "valid_s": self.ack_valid_s,
             },

@@ -71,12 +71,14 @@ class BedState:
         self.input_due.clear()
         self.quiet_floor = -1
 
-    def add_intake(self, t: float, ml: float) -> None:
+    def add_intake(self, t: float, ml: float, now: float) -> None:
+        """Fluid given at t, received at `now`. History is pruned by the receive time,
+        never by a value's own time (a mistyped date must not push the rest out)."""
         i = bisect.bisect_right(self.intake_times, t)
         self.intake_times.insert(i, t)
         self.intake_ml.insert(i, ml)
-        if self.intake_times[0] < t - KEEP_S:
-            k = bisect.bisect_left(self.intake_times, t - KEEP_S)
+        if self.intake_times[0] < now - KEEP_S:
+            k = bisect.bisect_left(self.intake_times, now - KEEP_S)
             del self.intake_times[:k], self.intake_ml[:k]
 
     def intake_between(self, t0: float, t1: float) -> float:
@@ -97,10 +99,11 @@ class BedState:
                 return v if now - v.time <= max_age_s else None
         return None
 
-    def add_lab(self, analyte: str, t: float, value: float) -> None:
+    def add_lab(self, analyte: str, t: float, value: float, now: float) -> None:
+        """A result taken at t, received at `now`; pruned by the receive time."""
         series = self.labs.setdefault(analyte, [])
         bisect.insort(series, (t, value))
-        while series and series[0][0] < t - KEEP_S:
+        while series and series[0][0] < now - KEEP_S:
             series.pop(0)
 
     def latest_lab(self, analyte: str, now: float) -> tuple[float, float] | None:

@@ -20,6 +20,11 @@ from .series import ESTIMATED, MEASURED, MinuteSeries
 RATE_LOOKBACK_S = 1800.0  # flow before a bag change is judged over the last 30 min
 JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval is jitter
 
+# Kinds of held reading: a rise beyond the maximum plausible flow, a large fall, a fall
+# to near zero (an emptying if the next reading continues from it), and a reading back
+# on the level before a recent jump or fall (that jump or fall was an artefact).
+SPIKE, FALL, EMPTY, RETURN = "spike", "fall", "empty", "return"
+
 
 @dataclass(slots=True)
 class _Point:
@@ -28,6 +33,22 @@ class _Point:
     fit: float = 0.0
     applied: float = 0.0  # increment currently spread over (previous point, t]
     marked: bool = False  # its interval's minutes are marked measured
+
+    def copy(self) -> _Point:
+        return _Point(self.t, self.raw, self.fit, self.applied, self.marked)
+
+
+@dataclass(slots=True)
+class _Provisional:
+    """A jump or fall taken on one reading's word, kept undoable while the next few
+    readings come in: if they go back to the level before it, it never happened."""
+
+    t_before: float  # the last reading before it, and its fitted level
+    level_before: float
+    snapshot: tuple[object, ...]  # the cleaner's bag state before it
+    spreads: list[tuple[float, float, float, int]]  # every spread since, to take back
+    outcomes: list[tuple[float, Outcome]]  # readings counted since: (time, outcome)
+    left: int  # readings still to come before it is final
 
 
 def isotonic_fit(values: list[float], floor: float) -> list[float]:
@@ -77,7 +98,12 @@ class CumulativeCleaner:
         self.floor_level = 0.0
         self.tail: list[_Point] = []
         self.history: deque[tuple[float, float]] = deque(maxlen=128)  # final (t, level)
-        self.held: tuple[float, Reading, str] | None = None  # (t, reading, "spike"|"fall")
+        self.held: tuple[float, Reading, str] | None = None  # (t, reading, kind)
+        self.provisional: _Provisional | None = None
+        # readings counted earlier and now found to be artefacts: (time, old outcome);
+        # the engine takes them with `take_revised()` and corrects its counts
+        self.revised: list[tuple[float, Outcome]] = []
+        self._provisional_n = max(3, p.smoothing.points)
         # the device's first reading, while no bag change has happened since: a
         # reading delayed past it can still become the baseline
         self.first: tuple[float, float] | None = None
@@ -93,6 +119,10 @@ class CumulativeCleaner:
     def pending(self) -> int:
         return 1 if self.held else 0
 
+    def take_revised(self) -> list[tuple[float, Outcome]]:
+        out, self.revised = self.revised, []
+        return out
+
     def feed(self, t: float, r: Reading) -> list[Outcome]:
         if self.floor_t is None:
             self._start_bag(t, r.volume_ml)
@@ -101,12 +131,33 @@ class CumulativeCleaner:
         last_t = self.last_t
         assert last_t is not None
         if t < last_t:
+            self.provisional = None  # the tail changes under it: keep what is known
             return [self._insert(t, r)]
+        held = self.held
+        if held is not None and t < held[0]:
+            return self._before_held(t, r)
         out: list[Outcome] = []
-        if self.held is not None:
+        if held is not None:
             out.append(self._settle_held(t, r))
         out.append(self._next(t, r))
+        self._count(t, out[-1])
         return out
+
+    def _before_held(self, t: float, r: Reading) -> list[Outcome]:
+        """A reading older than the held one (reordered in transit): it is judged
+        first, as if it had come first, and the held one after it. The held one's
+        outcome, when final, comes first in the list (it settles an earlier message)."""
+        assert self.held is not None
+        th, h, _ = self.held
+        self.held = None
+        mine = self._next(t, r)
+        if self.held is not None:  # this one is held in its turn: the newer one settles it
+            mine = self._settle_held(th, h)
+        else:
+            self._count(t, mine)
+        theirs = self._next(th, h)
+        self._count(th, theirs)
+        return [mine] if theirs is Outcome.SPIKE_HELD else [theirs, mine]
 
     # --- in-order path -------------------------------------------------------
     def _level(self) -> tuple[float, float]:
@@ -116,50 +167,114 @@ class CumulativeCleaner:
         return self.floor_t, self.floor_level
 
     def _next(self, t: float, r: Reading) -> Outcome:
-        if r.bag_flag:
+        if r.bag_flag:  # the meter says so: believed at once, and final
+            self.provisional = None
             self._bag_change(t, r.volume_ml)
             return Outcome.BAG_CHANGE
         last_t, level = self._level()
         v = r.volume_ml
         fall = level - v
         if fall > self._noise:
+            kind = FALL
             if self._fall_detect and v <= self._near_zero and fall >= self._min_fall:
-                self._bag_change(t, v)
-                return Outcome.BAG_CHANGE
-            self.held = (t, r, "fall")
-            return Outcome.SPIKE_HELD
-        if self._implausible(last_t, level, t, v):
-            self.held = (t, r, "spike")
-            return Outcome.SPIKE_HELD
-        return self._append(t, v, last_t, level)
+                kind = EMPTY  # an emptying if the next reading continues from here
+        elif self._implausible(last_t, level, t, v):
+            kind = SPIKE
+        else:
+            return self._append(t, v, last_t, level)
+        if self._back_before(t, v):
+            kind = RETURN
+        self.held = (t, r, kind)
+        return Outcome.SPIKE_HELD
 
     def _implausible(self, t0: float, v0: float, t1: float, v1: float) -> bool:
         dt = max(t1 - t0, self._min_dt)
         return (v1 - v0 - self._noise) > self._max_flow_s * dt
 
+    def _continues(self, t0: float, v0: float, t1: float, v1: float) -> bool:
+        """v1 at t1 follows v0 at t0 within the noise below and the flow limit above."""
+        return v1 >= v0 - self._noise and not self._implausible(t0, v0, t1, v1)
+
+    def _back_before(self, t: float, v: float) -> bool:
+        """Is v at t back on the level before a jump or fall still provisional?"""
+        pv = self.provisional
+        return pv is not None and self._continues(pv.t_before, pv.level_before, t, v)
+
     def _settle_held(self, t: float, r: Reading) -> Outcome:
-        """The reading after a held one decides it: same new level confirms, else artefact."""
+        """The reading after a held one decides it: the same new level confirms it,
+        anything else makes it an artefact."""
         assert self.held is not None
         th, h, kind = self.held
         self.held = None
-        confirms = (
-            not r.bag_flag
-            and r.volume_ml >= h.volume_ml - self._noise
-            and not self._implausible(th, h.volume_ml, t, r.volume_ml)
-        )
-        if kind == "fall":
-            _, level = self._level()
-            confirms = confirms and r.volume_ml < level - self._noise
-            if confirms:
-                # near zero: an emptying; higher: part of the bag was taken (a
-                # sample, a partial drain), so only the baseline moves
-                self._bag_change(th, h.volume_ml, emptied=h.volume_ml <= self._near_zero)
-                return Outcome.BAG_CHANGE_INFERRED
-            return Outcome.ARTEFACT_DROPPED
-        if confirms:
+        confirms = not r.bag_flag and self._continues(th, h.volume_ml, t, r.volume_ml)
+        if kind == RETURN:
+            if not confirms:
+                return Outcome.ARTEFACT_DROPPED
+            self._revert()  # the jump or fall before it never happened
             self._append(th, h.volume_ml, *self._level())
-            return Outcome.SPIKE_CONFIRMED
-        return Outcome.ARTEFACT_DROPPED
+            return Outcome.ACCEPTED
+        before = self._level()
+        snapshot = self._snapshot()
+        if kind in (FALL, EMPTY):
+            confirms = confirms and r.volume_ml < before[1] - self._noise
+            if not confirms:
+                return Outcome.ARTEFACT_DROPPED
+            self._provisional(before, snapshot)
+            # near zero: an emptying; higher: part of the bag was taken (a sample, a
+            # partial drain), so only the baseline moves
+            self._bag_change(th, h.volume_ml, emptied=h.volume_ml <= self._near_zero)
+            out = Outcome.BAG_CHANGE if kind == EMPTY else Outcome.BAG_CHANGE_INFERRED
+        elif confirms:
+            self._provisional(before, snapshot)
+            self._append(th, h.volume_ml, *before)
+            out = Outcome.SPIKE_CONFIRMED
+        else:
+            return Outcome.ARTEFACT_DROPPED
+        assert self.provisional is not None
+        self.provisional.outcomes.append((th, out))
+        return out
+
+    # --- provisional jumps and falls -------------------------------------------
+    def _snapshot(self) -> tuple[object, ...]:
+        return (self.floor_t, self.floor_level, [p.copy() for p in self.tail],
+                list(self.history), self.first, self.last_change)  # fmt: skip
+
+    def _provisional(self, before: tuple[float, float], snapshot: tuple[object, ...]) -> None:
+        self.provisional = _Provisional(before[0], before[1], snapshot, [], [],
+                                        self._provisional_n)  # fmt: skip
+
+    def _count(self, t: float, outcome: Outcome) -> None:
+        """A reading settled while a jump or fall is provisional: remember it, and let
+        the jump or fall become final after enough readings."""
+        pv = self.provisional
+        if pv is None or outcome is Outcome.SPIKE_HELD:
+            return
+        if outcome is not Outcome.ARTEFACT_DROPPED:
+            pv.outcomes.append((t, outcome))
+        pv.left -= 1
+        if pv.left <= 0 and self.held is None:
+            self.provisional = None
+
+    def _revert(self) -> None:
+        """Take back a provisional jump or fall and every reading counted since."""
+        pv = self.provisional
+        assert pv is not None
+        self.provisional = None
+        for t0, t1, volume, state in reversed(pv.spreads):
+            self.series.spread(t0, t1, -volume, state)
+        floor_t, floor_level, tail, history, first, last_change = pv.snapshot
+        self.floor_t, self.floor_level = floor_t, floor_level  # type: ignore[assignment]
+        self.tail = tail  # type: ignore[assignment]
+        self.history.clear()
+        self.history.extend(history)  # type: ignore[arg-type]
+        self.first, self.last_change = first, last_change  # type: ignore[assignment]
+        self.revised.extend(pv.outcomes)
+
+    def _put(self, t0: float, t1: float, volume: float, state: int) -> None:
+        """Every spread of this cleaner: undoable while a jump or fall is provisional."""
+        self.series.spread(t0, t1, volume, state)
+        if self.provisional is not None:
+            self.provisional.spreads.append((t0, t1, volume, state))
 
     def _append(self, t: float, v: float, prev_t: float, level: float) -> Outcome:
         """A reading after the newest, at or above it less the noise allowance;
@@ -167,7 +282,7 @@ class CumulativeCleaner:
         if v >= level:  # common case: nothing earlier changes (_spread, inlined)
             self.tail.append(_Point(t, v, v, v - level, True))
             state = MEASURED if t - prev_t <= self._max_gap else ESTIMATED
-            self.series.spread(prev_t, t, v - level, state)
+            self._put(prev_t, t, v - level, state)
             outcome = Outcome.ACCEPTED
         else:
             self.tail.append(_Point(t, v))
@@ -181,7 +296,7 @@ class CumulativeCleaner:
     def _spread(self, t0: float, t1: float, volume: float) -> None:
         # zero volume still marks the minutes measured: no flow is a measurement
         state = MEASURED if t1 - t0 <= self._max_gap else ESTIMATED
-        self.series.spread(t0, t1, volume, state)
+        self._put(t0, t1, volume, state)
 
     def _refit(self) -> None:
         fits = isotonic_fit([p.raw for p in self.tail], self.floor_level)
@@ -247,11 +362,11 @@ class CumulativeCleaner:
         if v < level_a - self._noise:
             return Outcome.ARTEFACT_DROPPED
         measured = max(0.0, v - level_a)
-        self.series.spread(t_a, t_c, -unseen, ESTIMATED)  # take the old estimate back
+        self._put(t_a, t_c, -unseen, ESTIMATED)  # take the old estimate back
         self._spread(t_a, t, measured)
         rate = self._flow_between(t_a, level_a, t, v)
         rest = new_level if rate is None else max(new_level, rate * (t_c - t))
-        self.series.spread(t, t_c, rest, ESTIMATED)
+        self._put(t, t_c, rest, ESTIMATED)
         self.last_change = (t, v, t_c, rest, new_level)
         return Outcome.REORDERED
 
@@ -282,7 +397,7 @@ class CumulativeCleaner:
         rate = self._flow_before()
         guess = 0.0 if rate is None else rate * (t - t_a)
         unseen = max(new_level, guess) if emptied else guess
-        self.series.spread(t_a, t, unseen, ESTIMATED)
+        self._put(t_a, t, unseen, ESTIMATED)
         self._start_bag(t, new_level)
         self.first = None
         self.last_change = (t_a, level_a, t, unseen, new_level)

@@ -75,9 +75,11 @@ ANALYTES = (
 
 
 class AckMessage(_Message):
-    """`{prefix}/ack`: a person acknowledges one alarm."""
+    """`{prefix}/ack/{user}`: a person acknowledges one alarm. `by` is the topic's user
+    (the broker's ACL lets a client publish only under its own name); on the shared
+    `{prefix}/ack` of a broker without authentication, the payload must name it."""
 
     alarm_id: Annotated[str, Field(min_length=1, max_length=200)]
-    by: Annotated[str, Field(min_length=1, max_length=64)]
+    by: Annotated[str, Field(min_length=1, max_length=64)] | None = None
     role: Annotated[str, Field(min_length=1, max_length=64)]
     time: AwareDatetime | None = None

@@ -10,6 +10,7 @@ from .advice import ReplacementOrder
 from .rules import canonical_rule_id
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
+ProfileName = Annotated[str, Field(min_length=1, max_length=64)]
 WeightBasis = Literal["actual", "ideal", "adjusted"]
 EpisodeKind = Literal["catheter_inserted", "obstruction_relieved", "catheter_changed"]
 
@@ -62,6 +63,12 @@ class BedContext(BaseModel):
     replacement: ReplacementOrder | None = None
     tbw_fraction: Annotated[float, Field(ge=0.3, le=0.7)] = 0.6  # total body water / weight
     episodes: Annotated[list[Episode], Field(max_length=32)] = Field(default_factory=list)
+    # a meter's family (device profile name), fixed from the binding on (optional)
+    device_profiles: Annotated[dict[DeviceId, ProfileName], Field(max_length=8)] = Field(
+        default_factory=dict
+    )
+    # meters this bed takes over from another bed's binding (moved with a notice)
+    replaces: Annotated[list[DeviceId], Field(max_length=8)] = Field(default_factory=list)
 
     @field_validator("disabled_rules")
     @classmethod

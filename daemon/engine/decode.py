@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .numbers import num
-from .outcomes import Outcome
+from .outcomes import DECODE_REJECTIONS, Outcome, withheld_reason
 from .profiles import UNIT_ALIASES, DeviceProfile, Encoding, Semantics, TimeFormat
 from .timefmt import TimeError, parse_epoch, parse_iso
 
@@ -35,8 +35,11 @@ class Reading:
 @dataclass(slots=True)
 class Rejected:
     reason: Outcome
-    detail: str
+    detail: str  # what was wrong, in words of our own: never the payload's content
     device_id: str | None = None
+    # the offending value as sent, for the commissioning probe only (a hostile payload
+    # may carry anything): never journaled, logged or published
+    shown: str = ""
 
 
 def _json_getter(path: str | int) -> Callable[[Any], Any]:
@@ -63,25 +66,31 @@ def _column_getter(ref: str | int) -> Callable[[Any], Any]:
 
 
 def _number(value: Any) -> float | None:
+    """A JSON number as a finite float. Strings are not numbers in JSON, however much
+    they look like one, and neither are true and false."""
     kind = type(value)
-    if kind is float or kind is int:  # the usual case (bool is a subclass, not int itself)
+    if kind is float or kind is int or (isinstance(value, int | float) and kind is not bool):
         try:
             f = float(value)
         except OverflowError:  # a JSON integer too large for a float
             return None
         return f if math.isfinite(f) else None
-    if isinstance(value, bool):
-        return None
-    if isinstance(value, str) and "_" in value:
+    return None
+
+
+def _text_number(value: Any) -> float | None:
+    """A number written as text (a delimited payload's column)."""
+    if not isinstance(value, str) or "_" in value:
         return None  # float() takes "1_000"; no meter means that
-    if isinstance(value, int | float | str):
-        try:  # a JSON integer can be too large for a float
-            f = float(value.strip() if isinstance(value, str) else value)
-        except (ValueError, OverflowError):
-            return None
-    else:
+    try:
+        f = float(value.strip())
+    except (ValueError, OverflowError):
         return None
     return f if math.isfinite(f) else None
+
+
+def _shown(value: Any) -> str:
+    return repr(value)[:64]
 
 
 def _truthy(value: Any) -> bool:
@@ -113,6 +122,7 @@ class Decoder:
         self._get_status = make(f.status) if f.status is not None else None
         self._get_flag = make(f.bag_change_flag) if f.bag_change_flag is not None else None
         self._json = profile.payload.encoding is Encoding.JSON
+        self._num = _number if self._json else _text_number
         self._sep = profile.payload.separator or ","
         self._time_format = profile.time.format
         self._status_ok = frozenset(s.lower() for s in profile.status.ok)
@@ -126,6 +136,9 @@ class Decoder:
         self._max = profile.limits.max_ml
 
     def _parse(self, payload: Payload) -> Any | Rejected:
+        marked = withheld_reason(payload, DECODE_REJECTIONS)
+        if marked is not None:
+            return Rejected(marked, "payload withheld")
         if self._json:
             if isinstance(payload, dict):
                 return payload
@@ -162,11 +175,12 @@ class Decoder:
             named = self._get_device(obj)
             if named is _MISSING:
                 return Rejected(Outcome.MISSING_FIELD, "device id field missing", topic_device)
-            if str(named) != topic_device:
+            if not isinstance(named, str) or named.strip() != topic_device:
                 return Rejected(
                     Outcome.DEVICE_ID_MISMATCH,
-                    f"payload names {str(named)[:64]!r} on topic of {topic_device!r}",
+                    "payload names another device than its topic",
                     topic_device,
+                    _shown(named),
                 )
 
         status_bag = False
@@ -178,7 +192,10 @@ class Decoder:
             if code in self._status_bag:
                 status_bag = True
             elif code not in self._status_ok:
-                return Rejected(Outcome.DEVICE_FAULT, f"status {code[:32]!r}", device_id)
+                return Rejected(
+                    Outcome.DEVICE_FAULT, "status code is not a measuring one", device_id,
+                    _shown(status),
+                )  # fmt: skip
 
         raw_time = self._get_time(obj)
         if raw_time is _MISSING:
@@ -186,23 +203,27 @@ class Decoder:
         try:
             device_time = self._time(raw_time, obj)
         except TimeError as exc:
-            return Rejected(Outcome.BAD_TIME, str(exc)[:120], device_id)
+            return Rejected(Outcome.BAD_TIME, exc.reason, device_id, str(exc)[:120])
 
         raw_volume = self._get_volume(obj)
         if raw_volume is _MISSING:
             return Rejected(Outcome.MISSING_FIELD, "volume field missing", device_id)
-        value = _number(raw_volume)
+        value = self._num(raw_volume)
         if value is None:
-            return Rejected(Outcome.BAD_NUMBER, "volume is not a finite number", device_id)
+            return Rejected(
+                Outcome.BAD_NUMBER, "volume is not a finite number", device_id, _shown(raw_volume)
+            )
 
         unit = self._default_unit
         if self._get_unit is not None:
             raw_unit = self._get_unit(obj)
             if raw_unit is _MISSING:
                 return Rejected(Outcome.MISSING_FIELD, "unit field missing", device_id)
-            canon = UNIT_ALIASES.get(str(raw_unit).strip())
+            canon = UNIT_ALIASES.get(raw_unit.strip()) if isinstance(raw_unit, str) else None
             if canon is None or (canon == "g") != (self._semantics is Semantics.BAG_WEIGHT):
-                return Rejected(Outcome.BAD_UNIT, f"unit {str(raw_unit)[:16]!r}", device_id)
+                return Rejected(
+                    Outcome.BAD_UNIT, "unit not known for this meter", device_id, _shown(raw_unit)
+                )
             unit = canon  # type: ignore[assignment]
         volume_ml = self.to_ml(value, unit)
         if not (self._min <= volume_ml <= self._max):
@@ -214,9 +235,11 @@ class Decoder:
         if self._get_seq is not None:
             raw_seq = self._get_seq(obj)
             if raw_seq is not _MISSING:
-                n = _number(raw_seq)
+                n = self._num(raw_seq)
                 if n is None or n != int(n):
-                    return Rejected(Outcome.BAD_NUMBER, "seq is not an integer", device_id)
+                    return Rejected(
+                        Outcome.BAD_NUMBER, "seq is not an integer", device_id, _shown(raw_seq)
+                    )
                 seq = int(n)
 
         flag = status_bag
@@ -238,12 +261,18 @@ class Decoder:
         fmt = self._time_format
         if fmt is TimeFormat.ISO8601:
             if not isinstance(raw, str):
-                raise TimeError("time is not a string")
+                raise TimeError(f"time is not a string: {raw!r}", "time is not a string")
             offset = None
             if self._get_offset is not None:
                 off = self._get_offset(obj)
                 if off is _MISSING:
                     raise TimeError("UTC offset field missing")
-                offset = str(off)
+                if not isinstance(off, str):
+                    raise TimeError(f"UTC offset is not a string: {off!r}", "bad UTC offset")
+                offset = off
             return parse_iso(raw, offset)
+        if self._json and (isinstance(raw, bool) or not isinstance(raw, int | float)):
+            raise TimeError(
+                f"epoch time is not a JSON number: {raw!r}", "epoch time is not a number"
+            )
         return parse_epoch(raw, 1.0 if fmt is TimeFormat.EPOCH_S else 1000.0)

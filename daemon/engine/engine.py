@@ -8,12 +8,12 @@ from __future__ import annotations
 
 import bisect
 import heapq
-import json
+import re
 from collections import Counter
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, tzinfo
-from typing import Any, NamedTuple
+from typing import NamedTuple, TypeVar
 
 from pydantic import BaseModel, ValidationError
 
@@ -36,17 +36,31 @@ from .context import BedContext
 from .decode import Decoder, Payload, Reading, Rejected
 from .effects import AdviceIssued, Effect, RejectedInput
 from .escalation import EscalationPolicy
-from .evaluator import Evaluator, criterion_holds
+from .evaluator import Evaluator, Notice, criterion_holds
 from .lifecycle import AlarmBook
-from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outcome
+from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outcome, withheld_reason
 from .profiles import DeviceProfile, Semantics
 from .rules import Hypovolaemia, ReplacementRatio, RuleDef
 from .series import MinuteSeries
+from .strictjson import NotJson, first_error, validate
 from .timefmt import LocalClock, as_epoch
 from .windows import measure
 
+M = TypeVar("M", bound=BaseModel)
+
 DEDUP_HORIZON_S = 86400.0
+DEDUP_MAX = 16_384  # duplicate keys kept per device at most, whatever the device times
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
+# Bed ids, ward names and acknowledging users: letters, digits, '-', '_' and '.', up to
+# 64 characters. No spaces, no MQTT separators or wildcards; a site that wants another
+# pattern configures it. Never a patient's name or record number (docs/operations.md).
+ID_PATTERN = r"^[A-Za-z0-9._-]{1,64}$"
+REFUSED_LEVEL = "{refused}"  # stands in a topic for a level that is not an identifier
+CLINICAL_AHEAD_S = 3600.0  # a clinical time may be this far ahead of its receive time
+UNBOUND_EXPIRY_S = 86400.0  # an unbound meter's entry is forgotten after a day of silence
+MAX_UNBOUND_DEVICES = 10_000  # and never more than this many unbound entries are kept
+MAX_BEDS = 2_000
+MAX_REJECTION_KEYS = 1_000  # beds named in the context-rejection counts
 
 
 class ReadingTrace(NamedTuple):
@@ -65,6 +79,9 @@ class ReadingTrace(NamedTuple):
     volume_ml: float | None
     seq: int | None
     outcomes: tuple[Outcome, ...]
+    # earlier readings of this device now found to be artefacts (a jump or fall they
+    # followed was taken back): (effective time, the outcome they were counted with)
+    revised: tuple[tuple[float, Outcome], ...] = ()
 
 
 @dataclass(slots=True)
@@ -84,6 +101,8 @@ class _Device:
     by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
     by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
     dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
+    # its family is fixed: it spoke on a bed, or a bed context named the family
+    owned: bool = False
     # of its family, kept here: every message or evaluation reads them
     period_s: int = 0
     max_ml_per_min: float = 0.0
@@ -104,21 +123,29 @@ class _Device:
         self.capacity_ml = self.decoder.profile.bag_capacity_ml
 
 
-def _json_obj(payload: Payload) -> Any:
-    return json.loads(payload) if isinstance(payload, bytes | str) else payload
-
-
-def _first_error(exc: ValidationError) -> str:
-    err = exc.errors()[0]
-    where = ".".join(str(x) for x in err["loc"]) or "payload"
-    return f"{where}: {err['msg']}"[:200]
-
-
-_CLINICAL: dict[str, type[BaseModel]] = {
+_CLINICAL: dict[str, type[IntakeMessage | VitalsMessage | LabsMessage]] = {
     "intake": IntakeMessage,
     "vitals": VitalsMessage,
     "labs": LabsMessage,
 }
+_BED_WITHHELD = frozenset({Outcome.BAD_CONTEXT, Outcome.TOO_LARGE})
+_CLINICAL_WITHHELD = frozenset({Outcome.BAD_CLINICAL_INPUT, Outcome.TOO_LARGE})
+_ACK_WITHHELD = frozenset({Outcome.BAD_ACK, Outcome.TOO_LARGE})
+Refusal = tuple[Outcome, str]  # (reason, detail)
+
+
+def _parse(model: type[M], payload: Payload, reason: Outcome, marked: frozenset[Outcome],
+           ) -> M | Refusal:  # fmt: skip
+    """A message model from a payload, strictly (see strictjson), or why not."""
+    withheld = withheld_reason(payload, marked)
+    if withheld is not None:
+        return withheld, "payload withheld"
+    try:
+        return validate(model, payload)
+    except ValidationError as exc:
+        return reason, first_error(exc)
+    except NotJson:
+        return reason, "payload is not JSON"
 
 
 # A skipped reading leaves the bed's wake-up where the last evaluation put it; one
@@ -146,8 +173,16 @@ class Engine:
         topic_prefix: str = "hourwatch",
         ack_validity_s: int = 3600,
         observe: Callable[[ReadingTrace], None] | None = None,
+        *,
         advice_policy: AdvicePolicy = DEFAULT_POLICY,
         timezone: tzinfo = UTC,
+        id_pattern: str = ID_PATTERN,
+        clinical_ahead_s: float = CLINICAL_AHEAD_S,
+        unbound_expiry_s: float = UNBOUND_EXPIRY_S,
+        max_unbound_devices: int = MAX_UNBOUND_DEVICES,
+        max_beds: int = MAX_BEDS,
+        ack_topic: str | None = None,
+        ack_users: Mapping[str, Iterable[str]] | None = None,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -155,9 +190,27 @@ class Engine:
         if len(set(names)) != len(names):
             raise ValueError("device profile names must be unique")
         self._routes = [(p.topic_regex(), Decoder(p)) for p in self.profiles]
+        self._decoders = {d.profile.name: d for _, d in self._routes}
         self.prefix = topic_prefix.rstrip("/")
         self._bed_topic = self.prefix + "/beds/"
         self._ack_topic = self.prefix + "/ack"
+        self._ack_users = self._ack_topic + "/"  # {prefix}/ack/{user}: who, from the broker
+        # where alarm messages say to acknowledge (the service: the per-user topic)
+        self._ack_advertised = ack_topic or self._ack_topic
+        try:
+            self._id = re.compile(id_pattern)
+        except re.error as exc:
+            raise ValueError(f"identifier pattern: {exc}") from None
+        self._clinical_ahead_s = clinical_ahead_s
+        self._unbound_expiry_s = unbound_expiry_s
+        self._max_unbound = max_unbound_devices
+        self._max_beds = max_beds
+        self._unbound: dict[str, float] = {}  # unbound device -> last message, oldest first
+        self.devices_forgotten = 0  # unbound entries expired or pushed out
+        self.received_forgotten = 0  # the messages those entries had counted
+        # non-meter messages that were used: context, clinical, ack (each counted once;
+        # the refused ones are in unrouted, context_rejections and input_rejections)
+        self.applied: Counter[str] = Counter()
         self._slowest_period = max((p.timing.period_s for p in self.profiles), default=60)
         self._max_ml_per_min = max((_max_ml_per_min(p) for p in self.profiles), default=0.0)
         self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
@@ -168,7 +221,21 @@ class Engine:
         self.context_rejections: Counter[str] = Counter()
         self.input_rejections: Counter[str] = Counter()
         self.rules = [r for r in rules if r.enabled]
-        self.book = AlarmBook(policy or _bedside_only(), ack_validity_s)
+        policy = policy or _bedside_only()
+        self.book = AlarmBook(policy, ack_validity_s)
+        # only the roles the escalation policy names may acknowledge (DESIGN section 5)
+        self._ack_roles = frozenset(
+            role
+            for prio in (policy.high, policy.medium, policy.low, policy.info)
+            for tier in prio.tiers
+            for role in tier.roles
+        )
+        # optionally, who may acknowledge and in which roles (the site's staff list)
+        self._staff = None if ack_users is None else {u: frozenset(r) for u, r in ack_users.items()}
+        if self._staff is not None:
+            strays = {r for roles in self._staff.values() for r in roles} - self._ack_roles
+            if strays:
+                raise ValueError(f"roles not in the escalation policy: {', '.join(sorted(strays))}")
         self.advice_policy = advice_policy
         # what people read says local clock time (pages, summaries); data stays UTC
         self.clock = LocalClock(timezone)
@@ -198,7 +265,9 @@ class Engine:
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
-            return self._ack(topic, payload, t_now)
+            return self._ack(topic, None, payload, t_now)
+        if topic.startswith(self._ack_users):
+            return self._ack(topic, topic[len(self._ack_users) :], payload, t_now)
         route = self._route_cache.get(topic)
         if route is None:
             route = self._route(topic)
@@ -220,21 +289,58 @@ class Engine:
         return route
 
     def _device(self, device_id: str, decoder: Decoder, now: float) -> _Device:
-        dev = self.devices.get(device_id)
-        if dev is None or dev.decoder is not decoder:
-            dev = _Device(device_id, decoder, DeviceQuality(decoder.profile.name))
-            self.devices[device_id] = dev
-            bed = self._bound.get(device_id)
-            if bed is not None:
-                self._attach(dev, bed, self.beds[bed].bound_at)
+        """A new entry for a device (first heard of, or its family not fixed yet: then
+        what it counted so far stays counted)."""
+        quality = DeviceQuality(decoder.profile.name)
+        old = self.devices.get(device_id)
+        if old is not None:
+            self._drop_held(old)
+            quality.received, quality.counts = old.quality.received, old.quality.counts
+        dev = _Device(device_id, decoder, quality)
+        self.devices[device_id] = dev
+        bed = self._bound.get(device_id)
+        if bed is not None:
+            self._attach(dev, bed, self.beds[bed].bound_at)
+        else:
+            self._unbound.pop(device_id, None)
+            self._seen_unbound(device_id, now)
         return dev
+
+    def _seen_unbound(self, device_id: str, now: float) -> None:
+        """Keep unbound entries in order of their last message; forget the ones silent
+        for too long, and the oldest when there are too many (a flood of invented ids
+        must not grow the engine)."""
+        table = self._unbound
+        table.pop(device_id, None)
+        table[device_id] = now
+        horizon = now - self._unbound_expiry_s
+        while table:
+            oldest, seen = next(iter(table.items()))
+            if seen >= horizon and len(table) <= self._max_unbound:
+                break
+            del table[oldest]
+            self.received_forgotten += self.devices.pop(oldest).quality.received
+            self.devices_forgotten += 1
+
+    def _wrong_profile(self, topic: str, dev: _Device, now: float) -> list[Effect]:
+        """A message for a device on another family's topic: not the device's, whatever
+        it holds; counted apart, and the device's own state is left as it is."""
+        self.unrouted[Outcome.WRONG_PROFILE] += 1
+        detail = f"device belongs to the {dev.decoder.profile.name} family"
+        return [RejectedInput(now, topic, dev.device_id, Outcome.WRONG_PROFILE, detail)]
 
     def _meter_message(
         self, topic: str, device_id: str, decoder: Decoder, payload: Payload, now: float
     ) -> list[Effect]:
         dev = self.devices.get(device_id)
         if dev is None or dev.decoder is not decoder:
+            if dev is not None and dev.owned:
+                return self._wrong_profile(topic, dev, now)
             dev = self._device(device_id, decoder, now)
+        elif dev.bed is None:
+            self._seen_unbound(device_id, now)
+        if dev.bed is not None:
+            dev.owned = True  # the family that first spoke on a bed keeps the id
         dev.quality.received += 1
         if dev.last_seen is None and dev.bed is not None:
             # its first word on the bed: its own period replaces the slowest family's
@@ -257,6 +363,7 @@ class Engine:
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
+        revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
         if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
             dev.last_usable = now
             if dev.sent_since:
@@ -264,17 +371,25 @@ class Engine:
             dev.bag_ml = result.volume_ml
         else:
             dev.sent_since[outcomes[-1]] += 1
-        if dev.bed is not None and not _PLAIN.issuperset(outcomes):
+        if dev.bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
             self.beds[dev.bed].forget_quiet()
         if self.observe is not None:
             self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
-                                      result.volume_ml, result.seq, tuple(outcomes)))  # fmt: skip
+                                      result.volume_ml, result.seq, tuple(outcomes),
+                                      tuple(revised)))  # fmt: skip
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
         counts = dev.quality.counts
+        for _, was in revised:  # counted before; an artefact after all
+            counts[was] -= 1
+            if not counts[was]:
+                del counts[was]
+            counts[Outcome.ARTEFACT_DROPPED] += 1
+            effects.append(RejectedInput(now, topic, device_id, Outcome.ARTEFACT_DROPPED,
+                                         _DETAIL_REVERTED))  # fmt: skip
         for o in outcomes:
             if o is Outcome.SPIKE_HELD:
                 continue  # pending: counted when the next reading settles it
@@ -312,8 +427,10 @@ class Engine:
         if outcomes[-1] not in _REFUSED and (dev.latest_t is None or t > dev.latest_t):
             dev.latest_t = t
         bed = self.beds[dev.bed] if dev.bed else None
-        if bed is not None and outcomes[-1] not in _NOT_IN_SERIES:
-            bed.series.note_reading(t)
+        newest = dev.cleaner.last_t
+        if bed is not None and newest is not None:
+            # the newest reading in the series: this one, or a held one it let in
+            bed.series.note_reading(newest)
         if adjusted is not None and outcomes[-1] is Outcome.ACCEPTED:
             outcomes[-1] = adjusted
         return outcomes
@@ -330,28 +447,119 @@ class Engine:
         if len(dev.dedup_times) > 4096:  # prune lazily, by device time
             cutoff = dev.dedup_times[-1] - DEDUP_HORIZON_S
             k = bisect.bisect_left(dev.dedup_times, cutoff)
+            # device times far apart (a wild clock) must not keep every key: the oldest
+            # go first past DEDUP_MAX
+            k = max(k, len(dev.dedup_times) - DEDUP_MAX)
+            if k:
+                cutoff = dev.dedup_times[k]
             for old in dev.dedup_times[:k]:
                 dev.by_time.pop(old, None)
             del dev.dedup_times[:k]
             dev.by_seq = {s: tt for s, tt in dev.by_seq.items() if tt >= cutoff}
 
+    # --- identifiers -----------------------------------------------------------
+    def is_identifier(self, text: str) -> bool:
+        return self._id.match(text) is not None
+
+    def echo_topic(self, topic: str) -> str:
+        """The topic as effects and logs may repeat it: a bed or user level that is not
+        an identifier (it could be anything, a patient's name included) is replaced."""
+        for root in (self._bed_topic, self._ack_users):
+            if topic.startswith(root):
+                levels = topic[len(root) :].split("/")
+                safe = [lv if self.is_identifier(lv) else REFUSED_LEVEL for lv in levels]
+                return root + "/".join(safe)
+        return topic
+
+    def _refused(self, topic: str, reason: str, detail: str, now: float,
+                 device_id: str | None = None) -> RejectedInput:  # fmt: skip
+        return RejectedInput(now, self.echo_topic(topic), device_id, reason, detail[:200])
+
+    # --- content checks (no state: also what an export redacts) ------------------
+    def _bed_topic_levels(self, topic: str) -> tuple[str, str, Refusal | None]:
+        """(bed id, what, None), or why the topic is refused."""
+        rest = topic[len(self._bed_topic) :].split("/")
+        if len(rest) != 2 or (rest[1] != "context" and rest[1] not in _CLINICAL):
+            return "", "", (Outcome.UNKNOWN_TOPIC, "unknown bed topic")
+        if not self.is_identifier(rest[0]):
+            why = "bed id is not an identifier (see the id pattern)"
+            return "", "", (Outcome.BAD_IDENTIFIER, why)
+        return rest[0], rest[1], None
+
+    def _check_context(self, payload: Payload) -> BedContext | Refusal:
+        ctx = _parse(BedContext, payload, Outcome.BAD_CONTEXT, _BED_WITHHELD)
+        if not isinstance(ctx, BedContext):
+            return ctx
+        bad = Outcome.BAD_CONTEXT
+        if not self.is_identifier(ctx.ward):
+            return bad, "ward: not an identifier (see the id pattern)"
+        listed = set(ctx.device_ids)
+        for dev_id, name in ctx.device_profiles.items():
+            if dev_id not in listed:
+                return bad, f"device_profiles: {dev_id[:64]!r} is not in device_ids"
+            if name not in self._decoders:
+                return bad, f"device_profiles: no device profile {name[:64]!r}"
+        for dev_id in ctx.replaces:
+            if dev_id not in listed:
+                return bad, f"replaces: {dev_id[:64]!r} is not in device_ids"
+        return ctx
+
+    def screen(self, topic: str, payload: Payload) -> Refusal | None:
+        """Why the engine refuses this message for its content alone (its topic and
+        payload, whatever the state), or None. `hourwatch export` redacts these."""
+        try:
+            if topic.startswith(self._bed_topic):
+                _, what, refused = self._bed_topic_levels(topic)
+                if refused is not None:
+                    return refused
+                if what == "context":
+                    ctx = self._check_context(payload)
+                    return None if isinstance(ctx, BedContext) else ctx
+                msg = _parse(_CLINICAL[what], payload, Outcome.BAD_CLINICAL_INPUT,
+                             _CLINICAL_WITHHELD)  # fmt: skip
+                return msg if isinstance(msg, tuple) else None
+            if topic == self._ack_topic or topic.startswith(self._ack_users):
+                user = None if topic == self._ack_topic else topic[len(self._ack_users) :]
+                ack = self._check_ack(user, payload)
+                return ack if isinstance(ack, tuple) else None
+            route = self._route_cache.get(topic)
+            if route is None:
+                route = self._route(topic)
+            if not route:
+                return Outcome.UNKNOWN_TOPIC, "no profile matches"
+            result = route[0].decode(route[1], payload)
+            return (result.reason, result.detail) if isinstance(result, Rejected) else None
+        except Exception:  # a screen must never be the thing that fails
+            return Outcome.BAD_PAYLOAD, "could not be read"
+
     # --- bed context ---------------------------------------------------------
     def _bed_message(self, topic: str, payload: Payload, now: float) -> list[Effect]:
-        rest = topic[len(self._bed_topic) :].split("/")
-        if len(rest) != 2 or not rest[0] or (rest[1] != "context" and rest[1] not in _CLINICAL):
-            self.unrouted[Outcome.UNKNOWN_TOPIC] += 1
-            return [RejectedInput(now, topic, None, Outcome.UNKNOWN_TOPIC, "unknown bed topic")]
-        bed_id, what = rest
+        bed_id, what, refused = self._bed_topic_levels(topic)
+        if refused is not None:
+            self.unrouted[refused[0]] += 1
+            return [self._refused(topic, *refused, now)]
         if what != "context":
             return self._clinical(topic, bed_id, what, payload, now)
-        try:
-            ctx = BedContext.model_validate(_json_obj(payload))
-        except ValidationError as exc:
-            return self._bad_context(topic, bed_id, now, _first_error(exc))
-        except (ValueError, TypeError, RecursionError):
-            return self._bad_context(topic, bed_id, now, "payload is not JSON")
-        self._bind(bed_id, ctx, now)
-        return self._evaluate(self.beds[bed_id], now)
+        ctx = self._check_context(payload)
+        if not isinstance(ctx, BedContext):
+            return self._bad_context(topic, bed_id, now, *ctx)
+        ahead = self._ahead(max((e.at.timestamp() for e in ctx.episodes), default=None), now)
+        if ahead is not None:
+            return self._bad_context(topic, bed_id, now, Outcome.FUTURE_TIME, ahead)
+        if bed_id not in self.beds and len(self.beds) >= self._max_beds:
+            detail = f"too many beds: this engine keeps at most {self._max_beds}"
+            return self._bad_context(topic, bed_id, now, Outcome.BAD_CONTEXT, detail)
+        effects, moved_from = self._bind(topic, bed_id, ctx, now)
+        self.applied["context"] += 1
+        for other in sorted(moved_from):  # they lost a meter: their rules may change
+            effects += self._evaluate(self.beds[other], now)
+        return effects + self._evaluate(self.beds[bed_id], now)
+
+    def _ahead(self, t: float | None, now: float) -> str | None:
+        """Why a clinical time is refused: too far ahead of the receive time."""
+        if t and t > now + self._clinical_ahead_s:
+            return f"time is {(t - now) / 3600:.1f} h ahead of the receive time"
+        return None
 
     def _clinical(
         self, topic: str, bed_id: str, what: str, payload: Payload, now: float
@@ -360,57 +568,103 @@ class Engine:
         if bed is None:
             self.input_rejections[Outcome.UNKNOWN_BED] += 1
             return [RejectedInput(now, topic, None, Outcome.UNKNOWN_BED, "no context for this bed")]
-        try:
-            msg = _CLINICAL[what].model_validate(_json_obj(payload))
-        except ValidationError as exc:
-            detail = _first_error(exc)
-        except (ValueError, TypeError, RecursionError):
-            detail = "payload is not JSON"
+        msg = _parse(_CLINICAL[what], payload, Outcome.BAD_CLINICAL_INPUT, _CLINICAL_WITHHELD)
+        if isinstance(msg, tuple):
+            reason, detail = msg
         else:
-            self._record_clinical(bed, msg)
-            return self._evaluate(bed, now)
-        self.input_rejections[Outcome.BAD_CLINICAL_INPUT] += 1
-        return [RejectedInput(now, topic, None, Outcome.BAD_CLINICAL_INPUT, detail)]
+            ahead = self._ahead(msg.time.timestamp(), now)
+            if ahead is None:
+                self._record_clinical(bed, msg, now)
+                self.applied[what] += 1
+                return self._evaluate(bed, now)
+            reason, detail = Outcome.FUTURE_TIME, ahead
+        self.input_rejections[reason] += 1
+        return [RejectedInput(now, topic, None, reason, detail)]
 
     @staticmethod
-    def _record_clinical(bed: BedState, msg: BaseModel) -> None:
+    def _record_clinical(
+        bed: BedState, msg: IntakeMessage | VitalsMessage | LabsMessage, now: float
+    ) -> None:
         if isinstance(msg, IntakeMessage):
-            bed.add_intake(msg.time.timestamp(), msg.volume_ml)
+            bed.add_intake(msg.time.timestamp(), msg.volume_ml, now)
         elif isinstance(msg, VitalsMessage):
             bed.add_vitals(Vitals(msg.time.timestamp(), msg.heart_rate_bpm, msg.systolic_mmhg,
                                   msg.diastolic_mmhg, msg.mean_mmhg))  # fmt: skip
-        elif isinstance(msg, LabsMessage):
+        else:
             t = msg.time.timestamp()
             for analyte, value in msg.model_dump(exclude={"time", "schema_version"}).items():
                 if value is not None:
-                    bed.add_lab(analyte, t, float(value))
+                    bed.add_lab(analyte, t, float(value), now)
 
     # --- acknowledgements ------------------------------------------------------
-    def _ack(self, topic: str, payload: Payload, now: float) -> list[Effect]:
-        try:
-            ack = AckMessage.model_validate(_json_obj(payload))
-        except ValidationError as exc:
-            detail = _first_error(exc)
-        except (ValueError, TypeError, RecursionError):
-            detail = "payload is not JSON"
+    def _check_ack(self, user: str | None, payload: Payload) -> AckMessage | Refusal:
+        """Who acknowledges: on `{prefix}/ack/{user}` the broker's user (the ACL lets a
+        client publish only under its own name); on `{prefix}/ack` the payload's `by`,
+        for brokers without authentication and for older logs."""
+        if user is not None and not self.is_identifier(user):
+            return Outcome.BAD_ACK, "user level is not an identifier (see the id pattern)"
+        ack = _parse(AckMessage, payload, Outcome.BAD_ACK, _ACK_WITHHELD)
+        if isinstance(ack, tuple):
+            return ack
+        if user is None:
+            if ack.by is None:
+                return Outcome.BAD_ACK, "by: needed on the shared acknowledgement topic"
+            return ack
+        if ack.by is not None and ack.by != user:
+            return Outcome.BAD_ACK, "by: names another person than the topic's user"
+        return ack.model_copy(update={"by": user})
+
+    def _ack(self, topic: str, user: str | None, payload: Payload, now: float) -> list[Effect]:
+        ack = self._check_ack(user, payload)
+        if isinstance(ack, tuple):
+            reason, detail = ack
+        elif ack.role not in self._ack_roles:
+            reason, detail = Outcome.UNKNOWN_ROLE, "role not named by the escalation policy"
+        elif self._staff is not None and ack.role not in self._staff.get(ack.by or "", ()):
+            reason, detail = Outcome.UNKNOWN_ROLE, "not a role this user may acknowledge in"
         else:
+            assert ack.by is not None
             result = self.book.acknowledge(now, ack.alarm_id, ack.by, ack.role)
             if isinstance(result, str):
                 self.input_rejections[result] += 1
-                return [RejectedInput(now, topic, None, result, f"alarm {ack.alarm_id[:80]!r}")]
+                return [self._refused(topic, result, f"alarm {ack.alarm_id[:80]!r}", now)]
+            self.applied["ack"] += 1
             effects: list[Effect] = list(result)
             bed = self.beds.get(result[0].bed) if result else None
             if bed is not None:  # an acknowledged technical alarm stops suppressing
                 effects += self._evaluate(bed, now)
             return effects
-        self.input_rejections[Outcome.BAD_ACK] += 1
-        return [RejectedInput(now, topic, None, Outcome.BAD_ACK, detail)]
+        self.input_rejections[reason] += 1
+        return [self._refused(topic, reason, detail, now)]
 
-    def _bad_context(self, topic: str, bed: str, now: float, detail: str) -> list[Effect]:
-        self.context_rejections[bed] += 1
-        return [RejectedInput(now, topic, None, Outcome.BAD_CONTEXT, detail[:200])]
+    def _bad_context(
+        self, topic: str, bed: str, now: float, reason: Outcome, detail: str
+    ) -> list[Effect]:
+        if bed in self.context_rejections or len(self.context_rejections) < MAX_REJECTION_KEYS:
+            self.context_rejections[bed] += 1
+        else:
+            self.context_rejections["(other beds)"] += 1
+        return [RejectedInput(now, topic, None, reason, detail[:200])]
 
-    def _bind(self, bed_id: str, ctx: BedContext, now: float) -> None:
+    def _bind(
+        self, topic: str, bed_id: str, ctx: BedContext, now: float
+    ) -> tuple[list[Effect], set[str]]:
+        """Bind the context's meters to the bed. A meter another bed holds moves only
+        when the context names it in `replaces` (noted on the bed); otherwise it stays
+        where it is, the refusal is reported, and the rest of the context applies."""
+        effects: list[Effect] = []
+        moved_from: set[str] = set()
+        refused = [
+            d for d in ctx.device_ids
+            if self._bound.get(d, bed_id) != bed_id and d not in ctx.replaces
+        ]  # fmt: skip
+        for dev_id in refused:
+            detail = (f"meter {dev_id[:64]} is bound to bed {self._bound[dev_id]}; a context "
+                      "takes it over only when its 'replaces' names it")  # fmt: skip
+            effects.append(RejectedInput(now, topic, dev_id, Outcome.DEVICE_ON_OTHER_BED, detail))
+        if refused:
+            kept = [d for d in ctx.device_ids if d not in refused]
+            ctx = ctx.model_copy(update={"device_ids": kept})
         bed = self.beds.get(bed_id)
         if bed is None:
             bed = self.beds[bed_id] = BedState(bed_id, ctx, MinuteSeries(), bound_at=now)
@@ -421,18 +675,53 @@ class Engine:
             if b == bed_id and dev_id not in wanted:
                 del self._bound[dev_id]
                 if dev_id in self.devices:
-                    self._detach(self.devices[dev_id])
+                    self._detach(self.devices[dev_id], now)
         for dev_id in ctx.device_ids:
-            if self._bound.get(dev_id) == bed_id:
+            named = self._decoders.get(ctx.device_profiles.get(dev_id, ""))
+            old = self._bound.get(dev_id)
+            if old == bed_id:
+                if named is not None:
+                    self._own(dev_id, named, bed_id, now)
                 continue
+            if old is not None:  # taken over, as the context says: the old bed lets go
+                held = self.beds[old]
+                rest = [d for d in held.context.device_ids if d != dev_id]
+                held.context = held.context.model_copy(update={"device_ids": rest})
+                moved_from.add(old)
+                effects.append(Notice(now, bed_id, ctx.ward, "device_moved",
+                                      f"meter {dev_id} moved here from bed {old}"))  # fmt: skip
             self._bound[dev_id] = bed_id
+            if named is not None:
+                self._own(dev_id, named, bed_id, now)
+                continue
             dev = self.devices.get(dev_id)
             if dev is not None:
+                self._unbound.pop(dev_id, None)
                 self._attach(dev, bed_id, now)
+        return effects, moved_from
+
+    def _own(self, dev_id: str, decoder: Decoder, bed_id: str, now: float) -> None:
+        """The context names the meter's family: its entry is of that family from now."""
+        dev = self.devices.get(dev_id)
+        if dev is None or dev.decoder is not decoder:
+            self._unbound.pop(dev_id, None)
+            dev = self._device(dev_id, decoder, now)
+        elif dev.bed != bed_id:
+            self._unbound.pop(dev_id, None)
+            self._attach(dev, bed_id, now)
+        dev.owned = True
+
+    @staticmethod
+    def _drop_held(dev: _Device) -> None:
+        """A reading held for confirmation whose cleaner goes away (the meter leaves its
+        bed, or its family is named anew) is never confirmed: it is an artefact."""
+        if dev.cleaner is not None and dev.cleaner.pending():
+            dev.quality.counts[Outcome.ARTEFACT_DROPPED] += dev.cleaner.pending()
 
     def _attach(self, dev: _Device, bed_id: str, now: float) -> None:
         # A meter moved to another bed starts afresh: what is in its bag is not
         # this patient's.
+        self._drop_held(dev)
         series = self.beds[bed_id].series
         prof = dev.decoder.profile
         dev.bed = bed_id
@@ -446,10 +735,12 @@ class Engine:
         )
         dev.latest_t = None
 
-    def _detach(self, dev: _Device) -> None:
+    def _detach(self, dev: _Device, now: float) -> None:
+        self._drop_held(dev)
         dev.bed = None
         dev.cleaner = None
         dev.latest_t = None
+        self._seen_unbound(dev.device_id, now)  # unbound now: forgotten in time
 
     # --- time ----------------------------------------------------------------
     def _devices_of(self, bed: BedState) -> tuple[DeviceSeen, ...]:
@@ -589,7 +880,7 @@ class Engine:
                     and bool(self._holding(e.bed, e.time))
                 )  # fmt: skip
                 e = replace(
-                    e, ack_topic=self._ack_topic,
+                    e, ack_topic=self._ack_advertised,
                     ack_valid_s=self._ack_valid.get(e.rule, self.book.ack_validity_s),
                     clock=self.clock(e.time),
                     advice=adv.to_json() if adv is not None and current else None,
@@ -641,6 +932,19 @@ class Engine:
         return effects
 
     # --- queries -------------------------------------------------------------
+    def messages_counted(self) -> int:
+        """Every message stepped, each counted exactly once by its outcome: meter
+        messages per device (also those of forgotten devices), the rest by what became
+        of them."""
+        return (
+            sum(d.quality.received for d in self.devices.values())
+            + self.received_forgotten
+            + sum(self.unrouted.values())
+            + sum(self.context_rejections.values())
+            + sum(self.input_rejections.values())
+            + sum(self.applied.values())
+        )
+
     def quality(self) -> dict[str, dict[str, object]]:
         out: dict[str, dict[str, object]] = {}
         for dev_id, dev in sorted(self.devices.items()):
@@ -699,6 +1003,7 @@ _SILENT = frozenset(
         Outcome.DUPLICATE,
     }
 )
+_DETAIL_REVERTED = "a reading after a jump or fall, taken back: the meter went back to its level"
 _DETAIL = {
     Outcome.LATE: "older than the reorder tolerance",
     Outcome.TOO_OLD: "older than the store-and-forward limit",

@@ -37,11 +37,17 @@ class Outcome(StrEnum):
     BAD_NUMBER = "bad_number"
     BAD_UNIT = "bad_unit"
     DEVICE_ID_MISMATCH = "device_id_mismatch"
+    TOO_LARGE = "too_large"  # payload over the service's size limit, never read
     UNBOUND = "unbound"
+    WRONG_PROFILE = "wrong_profile"  # a device id on another meter family's topic
     UNKNOWN_TOPIC = "unknown_topic"
+    BAD_IDENTIFIER = "bad_identifier"  # a bed id (or user) outside the identifier pattern
     BAD_CONTEXT = "bad_context"
+    DEVICE_ON_OTHER_BED = "device_on_other_bed"  # a context claims a meter another bed holds
     BAD_CLINICAL_INPUT = "bad_clinical_input"
+    FUTURE_TIME = "future_time"  # a clinical time too far ahead of the receive time
     BAD_ACK = "bad_ack"
+    UNKNOWN_ROLE = "unknown_role"  # an acknowledgement by a role the policy does not name
     UNKNOWN_BED = "unknown_bed"
 
 
@@ -71,6 +77,7 @@ DECODE_REJECTIONS = frozenset(
         Outcome.DEVICE_ID_MISMATCH,
         Outcome.OUT_OF_RANGE,
         Outcome.DEVICE_FAULT,
+        Outcome.TOO_LARGE,
     }
 )
 
@@ -94,3 +101,36 @@ class DeviceQuality:
             "received": self.received,
             "outcomes": {str(k): v for k, v in sorted(self.counts.items())},
         }
+
+
+# A payload that was withheld (too large, or refused content redacted in an export) is
+# replaced by this marker and the reason code, so a replay refuses it for the same reason.
+# U+FFFE is a Unicode noncharacter: no meter or clinical system sends it.
+WITHHELD = "\ufffewithheld:"
+
+
+def withheld(reason: Outcome) -> str:
+    return WITHHELD + str(reason)
+
+
+def withheld_reason(payload: object, allowed: frozenset[Outcome]) -> Outcome | None:
+    """The reason in a withheld-payload marker (one of `allowed`, else `bad_payload`);
+    None when the payload is not a marker."""
+    if isinstance(payload, bytes):
+        if not payload.startswith(_WITHHELD_BYTES):
+            return None
+        code = payload[len(_WITHHELD_BYTES) :].decode("utf-8", "replace")
+    elif isinstance(payload, str):
+        if not payload.startswith(WITHHELD):
+            return None
+        code = payload[len(WITHHELD) :]
+    else:
+        return None
+    try:
+        reason = Outcome(code.strip())
+    except ValueError:
+        return Outcome.BAD_PAYLOAD
+    return reason if reason in allowed else Outcome.BAD_PAYLOAD
+
+
+_WITHHELD_BYTES = WITHHELD.encode("utf-8")

@@ -9,7 +9,12 @@ _OFFSET = re.compile(r"^([+-])(\d{2}):?(\d{2})$")
 
 
 class TimeError(ValueError):
-    """A time value that cannot be read unambiguously."""
+    """A time value that cannot be read unambiguously. `str()` quotes the value (for the
+    person who typed it); `reason` says what was wrong without quoting it (for logs)."""
+
+    def __init__(self, message: str, reason: str | None = None) -> None:
+        super().__init__(message)
+        self.reason = reason or message
 
 
 def parse_offset(text: str) -> timezone:
@@ -19,11 +24,11 @@ def parse_offset(text: str) -> timezone:
         return UTC
     m = _OFFSET.match(s)
     if not m:
-        raise TimeError(f"bad UTC offset {text!r}")
+        raise TimeError(f"bad UTC offset {text!r}", "bad UTC offset")
     sign, hh, mm = m.groups()
     delta = timedelta(hours=int(hh), minutes=int(mm))
     if delta > timedelta(hours=14):
-        raise TimeError(f"UTC offset out of range {text!r}")
+        raise TimeError(f"UTC offset out of range {text!r}", "UTC offset out of range")
     return timezone(-delta if sign == "-" else delta)
 
 
@@ -33,25 +38,28 @@ def parse_iso(text: str, offset: str | None = None) -> float:
     try:
         dt = datetime.fromisoformat(text.strip())
     except (ValueError, AttributeError) as exc:
-        raise TimeError(f"not an ISO-8601 time: {text!r}") from exc
+        raise TimeError(f"not an ISO-8601 time: {text!r}", "not an ISO-8601 time") from exc
     if dt.tzinfo is None:
         if offset is None:
-            raise TimeError(f"time without UTC offset: {text!r}")
+            raise TimeError(f"time without UTC offset: {text!r}", "time without UTC offset")
         dt = dt.replace(tzinfo=parse_offset(offset))
     elif offset is not None:
-        raise TimeError(f"time carries an offset and an offset field: {text!r}")
+        raise TimeError(
+            f"time carries an offset and an offset field: {text!r}",
+            "time carries an offset and an offset field",
+        )
     return dt.timestamp()
 
 
 def parse_epoch(value: object, scale: float) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float | str):
-        raise TimeError(f"not an epoch number: {value!r}")
+        raise TimeError(f"not an epoch number: {value!r}", "not an epoch number")
     try:
         seconds = float(value) / scale
     except (ValueError, OverflowError) as exc:
-        raise TimeError(f"not an epoch number: {value!r}") from exc
+        raise TimeError(f"not an epoch number: {value!r}", "not an epoch number") from exc
     if not (0.0 < seconds < 32503680000.0):  # year 1970..3000
-        raise TimeError(f"epoch out of range: {value!r}")
+        raise TimeError(f"epoch out of range: {value!r}", "epoch out of range (1970-3000)")
     return seconds
 
 

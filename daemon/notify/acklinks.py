@@ -113,14 +113,14 @@ def _when(t: float) -> str:
 def _page(title: str, *parts: str) -> str:
     body = "\n".join(parts)
     return (
-        "<!doctype html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-        "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">"
+        '<!doctype html>\n<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>{html.escape(title)}</title>"
         "<style>body{font-family:sans-serif;max-width:36em;margin:1.5em auto;padding:0 1em;"
         "line-height:1.4}button{font-size:1.1em;padding:.6em 1.2em}"
         "input{font-size:1em;padding:.3em}.caution{font-size:.9em;margin-top:2em}</style>"
         f"</head><body><h1>{html.escape(title)}</h1>\n{body}\n"
-        f"<p class=\"caution\">{html.escape(ALARM_CAUTION)}</p></body></html>\n"
+        f'<p class="caution">{html.escape(ALARM_CAUTION)}</p></body></html>\n'
     )
 
 
@@ -192,9 +192,15 @@ class AckLinks:
         if not outcome.ok:
             return Reply(409, _page("Not acknowledged", _what(c),
                                     f"<p>{html.escape(outcome.text)}</p>"))  # fmt: skip
-        return Reply(200, _page("Acknowledged", _what(c),
-                                f"<p>Acknowledged by {html.escape(by)} as "
-                                f"<strong>{html.escape(c.role)}</strong> at {_when(now)}.</p>"))
+        return Reply(
+            200,
+            _page(
+                "Acknowledged",
+                _what(c),
+                f"<p>Acknowledged by {html.escape(by)} as "
+                f"<strong>{html.escape(c.role)}</strong> at {_when(now)}.</p>",
+            ),
+        )
 
 
 def _by(form: bytes) -> str | None:

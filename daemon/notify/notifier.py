@@ -285,9 +285,13 @@ class Notifier:
                 since = st.failing_since if st.failing_since is not None else None
                 if st.in_flight_since is not None and st.failures:
                     since = min(since or now, st.in_flight_since)
-                due = st.alarm_id is None and since is not None and (
-                    st.failures >= self.cfg.fail_after_attempts
-                    or now - since >= self.cfg.fail_after_s
+                due = (
+                    st.alarm_id is None
+                    and since is not None
+                    and (
+                        st.failures >= self.cfg.fail_after_attempts
+                        or now - since >= self.cfg.fail_after_s
+                    )
                 )
             if due:
                 self._raise(st, now)
@@ -327,8 +331,9 @@ class Notifier:
         roles = sorted({r.role for r in self.cfg.routes if r.channel == st.name}
                        | set(self.cfg.technical_roles))  # fmt: skip
         summary = f"paging channel {st.name} ({st.kind}) delivering again"
-        self.store_event(now, alarm_id,
-                         self._alarm_body(st, alarm_id, now, "resolved", reason, roles, summary))
+        self.store_event(
+            now, alarm_id, self._alarm_body(st, alarm_id, now, "resolved", reason, roles, summary)
+        )
         self._log("info", "notify_channel_recovered", channel=st.name, alarm_id=alarm_id,
                   reason=reason)  # fmt: skip
 
@@ -352,8 +357,13 @@ class Notifier:
         st = ChannelState(name, kind)
         roles = [str(r) for r in (ev.body.get("notify") or [])]
         assert ev.alarm_id is not None
-        self.store_event(now, ev.alarm_id, self._alarm_body(
-            st, ev.alarm_id, now, state, reason, roles, f"paging channel {name} removed"))
+        self.store_event(
+            now,
+            ev.alarm_id,
+            self._alarm_body(
+                st, ev.alarm_id, now, state, reason, roles, f"paging channel {name} removed"
+            ),
+        )
 
     def store_event(self, now: float, alarm_id: str, body: dict[str, object]) -> None:
         assert self.store is not None
@@ -471,7 +481,8 @@ class Notifier:
         if ev.kind == "alarm":
             try:
                 alarm: dict[str, Any] = AlarmMessage.model_validate(b).model_dump(
-                    by_alias=True, mode="json")
+                    by_alias=True, mode="json"
+                )
             except ValidationError:  # as the service publishes it: the engine's own JSON
                 alarm = {"schema": SCHEMA} | b
             ptype = "alarm"

@@ -104,7 +104,8 @@ class Hl7Channel(_Strict):
     # `ack_statuses` acknowledges the alarm as the role its page went to (docs/operations.md)
     status_listen: Listen | None = None  # "host:port"
     ack_statuses: list[Annotated[str, Field(min_length=1, max_length=40)]] = Field(
-        default_factory=lambda: ["accepted"])
+        default_factory=lambda: ["accepted"]
+    )
 
 
 Channel = Annotated[SmtpChannel | WebhookChannel | Hl7Channel, Field(discriminator="kind")]

@@ -26,6 +26,7 @@ from ..engine.evaluator import Notice
 from ..engine.outcomes import Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
+from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
 from ..logfile import BadLine, LogRecord
 from ..replay import ReplayResult, drive
@@ -127,6 +128,26 @@ class Recorder:
             self.traces.append((tr, last))
         if last is Outcome.SPIKE_HELD:
             self._held[tr.device_id] = (log, len(log.codes) - 1, j)
+        if tr.revised:
+            self._revise(log, bed, tr)
+
+    def _revise(self, log: BedReadings, bed: str, tr: ReadingTrace) -> None:
+        """Readings counted earlier, found to be artefacts now (rare): found by their
+        effective time among this bed's latest readings."""
+        artefact = CODE[Outcome.ARTEFACT_DROPPED]
+        for t, was in tr.revised:
+            code = CODE[was]
+            for i in range(len(log.times) - 1, max(-1, len(log.times) - 4096), -1):
+                if log.times[i] == t and log.codes[i] == code:
+                    log.codes[i] = artefact
+                    break
+            if bed != self.trace_bed:
+                continue
+            for j in range(len(self.traces) - 1, -1, -1):
+                old, outcome = self.traces[j]
+                if old.device_id == tr.device_id and effective_time(old) == t and outcome is was:
+                    self.traces[j] = (old, Outcome.ARTEFACT_DROPPED)
+                    break
 
     # --- the replay's effects ------------------------------------------------
     def on_effects(self, effects: list[Effect]) -> None:
@@ -166,13 +187,8 @@ class Recorder:
 
     def _note_intake(self, bed: str, rec: LogRecord) -> None:
         try:
-            payload = rec.payload
-            msg = (
-                IntakeMessage.model_validate_json(payload)
-                if isinstance(payload, str)
-                else IntakeMessage.model_validate(payload)
-            )
-        except ValidationError:
+            msg = validate(IntakeMessage, rec.payload)  # as strictly as the engine reads it
+        except (ValidationError, NotJson):
             return  # the engine rejects and counts it
         self.intake.setdefault(bed, []).append(
             Intake(msg.time.timestamp(), msg.volume_ml, msg.fluid)

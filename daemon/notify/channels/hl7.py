@@ -285,8 +285,9 @@ class StatusListener:
         self._log = log
         self.server = Server((host, port), Handler)
         self.address: tuple[str, int] = self.server.server_address[:2]  # type: ignore[assignment]
-        self._thread = threading.Thread(target=self.server.serve_forever,
-                                        name=f"hourwatch-hl7-status-{cfg.name}", daemon=True)
+        self._thread = threading.Thread(
+            target=self.server.serve_forever, name=f"hourwatch-hl7-status-{cfg.name}", daemon=True
+        )
 
     def answer(self, block: bytes) -> str:
         text = block.decode("utf-8", errors="replace").replace("\n", "\r").strip("\r")
