@@ -7,6 +7,7 @@ All beds, meters and volumes here are invented.
 from __future__ import annotations
 
 import re
+from datetime import UTC, datetime
 
 import pytest
 from hypothesis import assume, given, settings
@@ -77,7 +78,7 @@ def test_a_tenth_above_200_is_above_and_the_page_says_so() -> None:
     bed.minutes([200.1 / 60] * 180)
     ev = bed.ward.first("pod-hourly")
     assert ev is not None
-    shown = re.search(r"last 2 hours ([\d.]+), ([\d.]+) mL", ev.summary)
+    shown = re.search(r"last 2 h: ([\d.]+), ([\d.]+) mL", ev.summary)
     assert shown is not None, ev.summary
     assert all(float(x) > 200 for x in shown.groups()), ev.summary
 
@@ -88,3 +89,42 @@ def test_comparisons_are_made_to_the_tenth() -> None:
     assert above(200.05, 200.0) and not above(200.04, 200.0)
     assert below(9.94, 10.0) and not below(9.96, 10.0)
     assert above(200.0, 200.0, strictly=False)
+
+
+def test_pages_show_local_clock_time_in_the_configured_zone() -> None:
+    """Pages say HH:MM in the ward's zone (Europe/Berlin is UTC+1 on 2026-03-14), never a
+    raw ISO stamp; data stays UTC."""
+    from zoneinfo import ZoneInfo
+
+    from daemon.engine.engine import Engine
+    from tests.ruletools import POLICY, PROFILES, RULES
+
+    w = Ward()
+    w.engine = Engine(PROFILES.values(), RULES, POLICY, timezone=ZoneInfo("Europe/Berlin"))
+    bed = Bed(w)
+    bed.bind()
+    bed.start()
+    bed.hours([300.0] * 3)
+    ev = w.first("pod-hourly")
+    assert ev is not None
+    utc = datetime.fromtimestamp(ev.time, UTC)
+    local = f"{(utc.hour + 1) % 24:02d}:{utc.minute:02d}"
+    assert ev.pager().startswith(f"{local} b01 ALARM medium: ")
+    assert "T0" not in ev.pager() and "Z " not in ev.pager()
+    assert ev.to_json()["time"].endswith("Z")
+
+
+def test_reminders_carry_no_advice() -> None:
+    bed = started()
+    bed.labs(T0 + 30, serum_na_mmol_l=140.0)  # in range (Adrogue & Madias, NEJM 2000)
+    bed.hours([300.0] * 8)  # a diuresis long enough for the 4-h labs reminder
+    reminders = bed.ward.alarms("labs-due")
+    assert reminders and all(e.advice is None for e in reminders)
+    assert all("mL/h" not in e.pager() for e in reminders)
+
+
+def test_a_bad_time_zone_is_one_line() -> None:
+    from daemon.config import ServiceConfig
+
+    with pytest.raises(ValueError, match="unknown time zone 'Mars/Olympus'"):
+        ServiceConfig.model_validate({"timezone": "Mars/Olympus"})

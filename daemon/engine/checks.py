@@ -154,8 +154,7 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
     def explain() -> tuple[str, dict[str, Any]]:
         vols = ", ".join(_vol(w.volume_ml, c.threshold_ml_h) for w in wins)
         return (
-            f"last {len(wins)} hours {vols} mL "
-            f"(alarm when each is {'>' if gt else '>='} {c.threshold_ml_h:g} mL)",
+            f"last {len(wins)} h: {vols} mL ({'>' if gt else '>='} {c.threshold_ml_h:g} each)",
             {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
              "comparator": c.comparator},
         )  # fmt: skip
@@ -195,8 +194,8 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
     return Finding(
         cond,
         lambda: (
-            f"{_vol(w.volume_ml, c.threshold_ml)} mL in the last {num(length / 60, 1)} h "
-            f"(alarm above {_ml(c.threshold_ml)})",
+            f"{_vol(w.volume_ml, c.threshold_ml)} mL in {num(length / 60, 1)} h "
+            f"(> {c.threshold_ml:g})",
             {"window": w.to_json(), "threshold_ml": c.threshold_ml},
         ),
         quiet_until=None if cond else _quiet_below(v, w.volume_ml, c.threshold_ml),
@@ -252,9 +251,9 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
             if not w.covered:
                 return f"window only {pct(w.coverage)} measured", ev
             return (
-                f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over the last {c.window_h} h "
-                f"({num(w.known_min / 60, 1)} h with data, {_ml(w.volume_ml)} at {kg:g} kg; "
-                f"alarm below {c.threshold_ml_kg_h:g})",
+                f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over {c.window_h} h "
+                f"(< {c.threshold_ml_kg_h:g}; {_ml(w.volume_ml)}, {kg:g} kg, "
+                f"{num(w.known_min / 60, 1)} h with data)",
                 ev,
             )
 
@@ -308,8 +307,8 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
         if not w.covered:
             return f"window only {pct(w.coverage)} measured", ev
         return (
-            f"{_vol(scaled, c.threshold_ml)} mL in the last {c.window_h} h "
-            f"({num(w.known_min / 60, 1)} h with data; alarm below {_ml(c.threshold_ml)})",
+            f"{_vol(scaled, c.threshold_ml)} mL in {c.window_h} h (< {c.threshold_ml:g}; "
+            f"{num(w.known_min / 60, 1)} h with data)",
             ev,
         )
 
@@ -448,8 +447,8 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
             return "output too small to judge replacement", ev
         word = "below" if c.direction == "below" else "above"
         return (
-            f"documented intake {_ml(intake)} is {pct(share)} of output {_ml(w.volume_ml)} "
-            f"over {c.window_h} h (alarm {word} {pct(c.ratio)})",
+            f"intake {_ml(intake)} = {pct(share)} of output {_ml(w.volume_ml)} in "
+            f"{c.window_h} h ({'<' if word == 'below' else '>'} {pct(c.ratio)})",
             ev | {"intake_share": half_up(share, 3)},
         )
 
@@ -505,8 +504,8 @@ def hypovolaemia(c: r.Hypovolaemia, v: BedView) -> Finding:
     return Finding(
         bool(signs) or balance_low,
         _say(
-            f"assess volume status, resuscitation per the treating clinician: "
-            f"{_ml(hour.volume_ml)} in the last hour with {what}",
+            f"assess volume status (resuscitation per clinician): {_ml(hour.volume_ml)} "
+            f"last hour; {what}",
             ev | {"signs": signs, "balance_low": balance_low, "what": what},
         ),
         priority=c.priority_with_sign if signs else None,
