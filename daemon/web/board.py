@@ -58,7 +58,7 @@ from .views import (
     ward_summary,
 )
 
-STATIC = ("board.css", "board.js")
+STATIC = ("board.css", "board.js", "icon.svg")
 LEVELS = {w: LEVEL[p] for p, w in PRIORITY_WORDS.items()}
 ENDED = frozenset({State.RESOLVED.value, State.INACTIVE.value})
 SHOWN = frozenset({State.ACTIVE.value, State.ESCALATED.value, State.ACKNOWLEDGED.value})
@@ -204,7 +204,8 @@ class Board:
         body = self.static.get(name)
         if body is None:
             return Response("not found\n", 404, media_type="text/plain")
-        kind = "text/css" if name.endswith(".css") else "text/javascript"
+        kind = {"css": "text/css", "js": "text/javascript", "svg": "image/svg+xml"}[
+            name.rsplit(".", 1)[-1]]
         return Response(body, media_type=f"{kind}; charset=utf-8",
                         headers={"Cache-Control": "no-cache"})  # fmt: skip
 
@@ -279,7 +280,7 @@ class Board:
             bags = data.marks.bag_changes(bed_id, t0)
         events = data.bed_events(bed_id, now - DAY_S)
         c = card(snap, now, w)
-        history: dict[str, list[tuple[str, str, str]]] = {}
+        history: dict[str, list[tuple[str, str, str, str, int]]] = {}
         spans: dict[str, dict[str, Any]] = {}
         advice: list[tuple[str, str, str]] = []
         for e in events:
@@ -297,8 +298,14 @@ class Board:
             if isinstance(notify, list) and notify:
                 paged = f"; paged {', '.join(map(str, notify))}"
             word = STATE_WORDS[State(state)] if state in State._value2member_map_ else state
-            history.setdefault(e.alarm_id, []).append(
-                (w.when(e.time), word, f"{b.get('reason', '')}{who}{paged}"))
+            rows = history.setdefault(e.alarm_id, [])
+            reason = str(b.get("reason", ""))
+            if reason == "renotify" and rows and rows[-1][3] == "renotify":
+                first, _, _, _, n = rows[-1]
+                rows[-1] = (first, word, f"renotify x {n + 1} until {w.clock(e.time)}{paged}",
+                            "renotify", n + 1)
+            else:
+                rows.append((w.when(e.time), word, f"{reason}{who}{paged}", reason, 1))
             sp = spans.setdefault(e.alarm_id, {"title": b.get("title") or b.get("rule"),
                                                "start": None, "end": None})  # fmt: skip
             sp["priority"] = str(b.get("priority", "low"))
@@ -335,7 +342,7 @@ class Board:
                 source=rule.source if rule else "", rationale=rule.rationale if rule else "",
                 check=rule_check_words(rule) if rule else "", facts=facts,
                 evidence=[] if facts else evidence_pairs(dict(a.evidence)),
-                history=history.get(a.alarm_id, []),
+                history=_last(history.get(a.alarm_id, [])),
                 explain=(f"hourwatch explain {data.journal} {a.alarm_id}"
                          if data.journal else ""),
             ))  # fmt: skip
@@ -464,6 +471,17 @@ class Board:
         if f.get("role") in s.roles:
             s.role = f["role"]
         return RedirectResponse(safe_next(f.get("next")), 303)
+
+
+HISTORY_ROWS = 12
+
+
+def _last(rows: list[tuple[str, str, str, str, int]]) -> list[tuple[str, str, str]]:
+    """The last HISTORY_ROWS rows (runs of re-notification folded into one)."""
+    out = [(t, s, what) for t, s, what, _, _ in rows[-HISTORY_ROWS:]]
+    if len(rows) > HISTORY_ROWS:
+        out.insert(0, ("", "", f"... {len(rows) - HISTORY_ROWS} earlier rows"))
+    return out
 
 
 def thresholds(rules: list[r.RuleDef], weight_kg: float | None,

@@ -87,7 +87,7 @@ class WardFrame:
     time: str  # service time of the snapshot, for people
 
 
-@dataclass
+@dataclass(eq=False)  # one per open board: compared (and hashed) by identity
 class Watcher:
     ward: str
     queue: asyncio.Queue[str | None] = field(default_factory=lambda: asyncio.Queue(QUEUE_MAX))
@@ -145,9 +145,11 @@ class Broadcaster:
         while not self.closing:
             waits = [asyncio.ensure_future(self.changes.wait(self.heartbeat_s)),
                      asyncio.ensure_future(self._kick.wait())]  # fmt: skip
-            await asyncio.wait(waits, return_when=asyncio.FIRST_COMPLETED)
-            for f in waits:
-                f.cancel()
+            try:
+                await asyncio.wait(waits, return_when=asyncio.FIRST_COMPLETED)
+            finally:
+                for f in waits:
+                    f.cancel()
             self._kick.clear()
             gap = self.min_gap_s - (time.perf_counter() - last)
             if gap > 0:

@@ -214,7 +214,9 @@ def alarm_line(a: AlarmView, now: float, w: Words) -> AlarmLine:
         title=a.title or a.rule, priority=PRIORITY_WORDS[a.priority], level=LEVEL[a.priority],
         state=str(a.state), state_word=STATE_WORDS[a.state], age=age(now - since),
         since=w.clock(since), summary=a.summary, ackable=a.state in ACKABLE, ack_text=ack,
-        suppressed_text=f"held back by {a.suppressed_by}" if a.suppressed_by else "",
+        suppressed_text=(f"held back while {a.suppressed_by.split('/')[1]} is open"
+                         if a.suppressed_by and a.suppressed_by.count("/") >= 2
+                         else f"held back by {a.suppressed_by}" if a.suppressed_by else ""),
         technical=a.kind is Kind.TECHNICAL,
     )  # fmt: skip
 
@@ -470,18 +472,24 @@ class AlarmDetail:
     explain: str  # the command that replays its evidence reading by reading
 
 
+def _words(v: object, depth: int = 0) -> str:
+    """A piece of evidence as plain words: numbers through numbers.num, no brackets."""
+    if isinstance(v, bool) or v is None:
+        return {True: "yes", False: "no", None: "-"}[v]
+    if isinstance(v, float):
+        return num(v, 2).rstrip("0").rstrip(".") if math.isfinite(v) else str(v)
+    if isinstance(v, dict):
+        if depth > 2:
+            return "..."
+        return ", ".join(f"{str(k).replace('_', ' ')} {_words(x, depth + 1)}"
+                         for k, x in v.items())  # fmt: skip
+    if isinstance(v, list):
+        return "; ".join(_words(x, depth + 1) for x in v[:8]) + ("; ..." if len(v) > 8 else "")
+    return str(v)
+
+
 def evidence_pairs(ev: dict[str, Any]) -> list[tuple[str, str]]:
-    out = []
-    for k, v in ev.items():
-        if isinstance(v, float):
-            text = num(v, 2)
-        elif isinstance(v, dict | list):
-            text = ", ".join(f"{a}: {b}" for a, b in v.items()) if isinstance(v, dict) else (
-                "; ".join(str(x) for x in v[:6]))  # fmt: skip
-        else:
-            text = str(v)
-        out.append((k.replace("_", " "), text[:300]))
-    return out
+    return [(k.replace("_", " "), _words(v)[:400]) for k, v in ev.items()]
 
 
 def rule_check_words(rule: r.RuleDef) -> str:

@@ -10,7 +10,7 @@
   const board = document.getElementById("board");
   const csrf = (document.querySelector('meta[name="csrf"]') || {}).content || "";
   let lastHeard = Date.now();
-  let problem = "";                 // what the banner says, "" when all is well
+  let problem = null;               // what the banner says, "" when all is well
 
   function fillTokens(root) {
     root.querySelectorAll('form input[name="csrf"]').forEach(function (i) {
