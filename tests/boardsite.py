@@ -49,7 +49,8 @@ class LogSite:
         self.advice: dict[str, dict[str, Any]] = {}
         self._ids = itertools.count(1)
         self.now = 0.0
-        self.acks: list[tuple[str, str, str]] = []  # (topic, payload, outcome) fed to the engine
+        self.acks: list[tuple[str, str, str]] = []  # (topic, alarm id, outcome) fed to the engine
+        self.health: tuple[bool, dict[str, Any]] = (True, {"status": "ok"})
         if log is not None:
             records = list(open_source(log))
             drive(self.engine, records, self.keep)
@@ -105,10 +106,11 @@ class LogSite:
 
     def site(self, users_file: Path | None = None, health: tuple[bool, dict[str, Any]] | None
              = None, **settings: Any) -> Site:  # fmt: skip
-        state = health or (True, {"status": "ok"})
+        if health is not None:
+            self.health = health
         data = self.data(users_file, **settings)
-        data.service_state = lambda: state
-        return Site(lambda: state, lambda: "# no metrics here\n", board=data)
+        data.service_state = lambda: self.health
+        return Site(lambda: self.health, lambda: "# no metrics here\n", board=data)
 
 
 def users_file(tmp: Path, users: dict[str, list[str]]) -> Path:
