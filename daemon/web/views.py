@@ -177,7 +177,8 @@ def age(seconds: float) -> str:
 
 
 def per_kg(volume_ml: float, weight_kg: float | None, hours: float = 1.0) -> str:
-    return "-" if not weight_kg else f"{num(volume_ml / weight_kg / hours, 2)} mL/kg/h"
+    """mL/kg/h as a number (the unit is in the column's heading)."""
+    return "-" if not weight_kg else num(volume_ml / weight_kg / hours, 2)
 
 
 def alarm_href(alarm_id: str) -> str:
@@ -279,7 +280,7 @@ def window_row(label: str, win: Window | None, kg: float | None) -> OutputRow:
         return OutputRow(label, "-", "-", "-", "no reading yet")
     hours = win.length_min / 60
     note = "" if win.covered else f"under {pct(COVERED_FRACTION)} measured"
-    return OutputRow(label, ml(win.volume_ml), per_kg(win.volume_ml, kg, hours),
+    return OutputRow(label, num(win.volume_ml), per_kg(win.volume_ml, kg, hours),
                      pct(win.coverage), note)  # fmt: skip
 
 
@@ -317,13 +318,14 @@ def card(s: BedSnapshot, now: float, w: Words) -> Card:
     kg = s.weight_kg
     rows = []
     if s.last_hour is None:
-        rows.append(OutputRow("Last clock hour", "-", "-", "-", "none completed yet"))
+        rows.append(OutputRow("Last hour", "-", "-", "-", "no clock hour completed yet"))
     else:
         start, vol, meas = s.last_hour
         note = "" if meas >= COVERED_FRACTION else f"under {pct(COVERED_FRACTION)} measured"
-        rows.append(OutputRow(f"Clock hour {w.clock(start)}–{w.clock(start + 3600)}", ml(vol),
+        rows.append(OutputRow(f"Hour {w.local(start).strftime('%H')}–"
+                              f"{w.local(start + 3600).strftime('%H')}", num(vol),
                               per_kg(vol, kg), pct(meas), note))  # fmt: skip
-    rows.append(window_row("Rolling 60 min", s.rolling, kg))
+    rows.append(window_row("Last 60 min", s.rolling, kg))
     rows.append(window_row("Last 24 h", s.day, kg))
     top = max(s.alarms, key=lambda a: URGENCY[a.priority], default=None)
     advice = s.advice
@@ -413,7 +415,7 @@ def hour_rows(bed: BedState, w: Words, hours: int = 24) -> list[HourRow]:
                    for a, b in residual if max(a, lo) < min(b, hi))  # fmt: skip
         if held > 0:
             note.append(f"includes {ml(held)} residual drained")
-        out.append(HourRow(f"{w.clock(t)}–{w.clock(t + 3600)}", ml(h.volume_ml),
+        out.append(HourRow(f"{w.clock(t)}–{w.clock(t + 3600)}", num(h.volume_ml),
                            per_kg(h.volume_ml, kg), pct(h.measured_fraction), "; ".join(note)))
     return out
 
