@@ -85,7 +85,8 @@ def test_the_ward_page_shows_every_bed_with_numbers_computed_independently(ward,
     end = datetime.fromtimestamp(hour * 3600 + 3600, UTC).strftime("%H")
     assert rows["Last 60 min"] == (num(float(np.sum(vol))),
                                    num(float(np.sum(vol)) / BED02_KG, 2))  # fmt: skip
-    assert rows["Last 24 h"] == (num(float(np.sum(day))), num(float(np.sum(day)) / BED02_KG / 24, 2))
+    assert rows["Last 24 h"] == (num(float(np.sum(day))),
+                                 num(float(np.sum(day)) / BED02_KG / 24, 2))  # fmt: skip
     assert rows[f"Hour {start}–{end}"] == (num(float(np.sum(clock_hour))),
                                            num(float(np.sum(clock_hour)) / BED02_KG, 2))
     assert CAUTION in page.text or ALARM_CAUTION in page.text
