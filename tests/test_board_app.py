@@ -284,3 +284,16 @@ def test_unknown_wards_and_pages(ward, tmp_path):
     assert c.get("/ward/5-West").status_code == 404
     assert c.get("/nothing-here").status_code == 404
     assert c.get("/static/../app.py").status_code == 404
+
+
+def test_every_advice_the_engine_issues_fits_its_message_model(ward):
+    """The advice the board shows is the engine's own (AdviceIssued.to_json), published
+    through AdviceMessage: its kind, order and pager words included (a mismatch made every
+    advice an engine error)."""
+    from daemon.messages import AdviceMessage
+
+    advice = [e for e in ward.events if e.kind == "advice"]
+    assert {e.body["kind"] for e in advice} >= {"rate", "ended"}
+    for e in advice:
+        msg = AdviceMessage.model_validate(e.body)
+        assert msg.kind == e.body["kind"] and msg.pager == e.body["pager"]
