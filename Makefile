@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: install test demo bench lint typecheck clean mosquitto
+.PHONY: install test demo bench lint typecheck clean mosquitto chromium screenshots
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -26,7 +26,18 @@ mosquitto:
 	  fi; \
 	fi
 
-test: install mosquitto
+# The board's browser tests drive Debian's Chromium through Playwright (Playwright's own
+# browser download cannot work on a closed network); install it when missing and root.
+chromium:
+	@if [ ! -x /usr/bin/chromium ]; then \
+	  if [ "$$(id -u)" = "0" ] && command -v apt-get >/dev/null 2>&1; then \
+	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium; \
+	  else \
+	    echo "note: /usr/bin/chromium not found and not root; browser tests will be skipped"; \
+	  fi; \
+	fi
+
+test: install mosquitto chromium
 	$(BIN)/python -m pytest
 
 lint: install
@@ -43,8 +54,12 @@ demo: install mosquitto
 	fi
 	$(BIN)/hourwatch demo
 
-bench: install
+bench: install mosquitto chromium
 	$(BIN)/python -m benchmarks.run
+
+# The board pictures in docs/ (the invented example ward, in Debian's Chromium).
+screenshots: install chromium
+	$(BIN)/python -m tests.screenshots docs
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache .mypy_cache .ruff_cache

@@ -11,6 +11,7 @@ import sys
 from collections.abc import Sequence
 
 from benchmarks import (
+    bench_board,
     bench_fuzz,
     bench_intake,
     bench_journal,
@@ -35,6 +36,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_service.main([]) or rc
     print()
     rc = bench_fuzz.main([]) or rc
+    print()
+    rc = bench_board.main([]) or rc
     return rc
 
 

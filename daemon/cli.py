@@ -19,13 +19,14 @@ from .commands import (
     replay,
     run,
     simulate,
+    user,
 )
 from .errors import UserError
 
 # Each command module adds its own parser; add new commands to this list.
 COMMANDS = [
     replay, check_profiles, export, run, check, probe, simulate, demo, explain, annotate,
-    notify_test,
+    notify_test, user,
 ]  # fmt: skip
 
 

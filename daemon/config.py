@@ -131,6 +131,36 @@ class HealthConfig(_Strict):
         return v
 
 
+class BoardConfig(_Strict):
+    """The ward board (daemon/web): off unless `listen` is set."""
+
+    # "HOST:PORT" (or just "PORT": 127.0.0.1); "" = no board. The board is one HTTP
+    # application with /health and /metrics, served on this address and health.listen.
+    listen: str = ""
+    # users who may log in and acknowledge (`hourwatch user add`); relative to the file
+    users_file: Path = Path("hourwatch-users.json")
+    # false: anyone on the network may look (a station screen); true: looking needs a login
+    require_login: bool = False
+    # a login lasts this long without use (one shift)
+    session_hours: Annotated[float, Field(gt=0, le=24)] = 12.0
+    # true when people reach the board over HTTPS (a reverse proxy): cookies go only there
+    secure_cookies: bool = False
+    # failed logins allowed per user name, and per client address, in login_window_s
+    login_failures_per_user: Annotated[int, Field(ge=1, le=100)] = 5
+    login_failures_per_address: Annotated[int, Field(ge=1, le=1000)] = 20
+    login_window_s: Annotated[float, Field(ge=10, le=86400)] = 900.0
+
+    @field_validator("listen")
+    @classmethod
+    def _address(cls, v: str) -> str:
+        v = v.strip()
+        if v.isdigit() or (v.startswith(":") and v[1:].isdigit()):
+            v = "127.0.0.1:" + v.lstrip(":")  # loopback unless a host is named
+        if v:
+            split_address(v, allow_zero=True)
+        return v
+
+
 class PublishConfig(_Strict):
     # An alarm not confirmed (PUBACK) this long after it was raised is a technical
     # alarm of the service itself.
@@ -215,6 +245,7 @@ class ServiceConfig(_Strict):
     broker: BrokerConfig = BrokerConfig()
     journal: JournalConfig = JournalConfig()
     health: HealthConfig = HealthConfig()
+    board: BoardConfig = BoardConfig()  # the ward board; off unless board.listen is set
     publish: PublishConfig = PublishConfig()
     recovery: RecoveryConfig = RecoveryConfig()
     notify: NotifyConfig = NotifyConfig()  # paging channels; none = pages stay on MQTT
@@ -266,6 +297,7 @@ def _resolve(base: Path, data: dict[str, Any]) -> None:
 
     fix(data, ("profiles", "rules"))
     fix(data.get("journal"), ("path",))
+    fix(data.get("board"), ("users_file",))
     broker = data.get("broker")
     fix(broker, ("password_file",))
     if isinstance(broker, dict):
@@ -335,7 +367,7 @@ def load_config(
         from .rule_files import load_policy
 
         check_notify(cfg.notify, policy_roles(load_policy(cfg.rules)), where, env)
-        if cfg.notify.ack_base_url and not cfg.health.listen:
+        if cfg.notify.ack_base_url and not (cfg.health.listen or cfg.board.listen):
             raise UserError(f"{where}: notify.ack_base_url: the links are served on "
-                            "health.listen, which is off")  # fmt: skip
+                            "health.listen and board.listen, which are both off")  # fmt: skip
     return cfg

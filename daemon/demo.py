@@ -32,7 +32,14 @@ from simulator.runner import Built, build, wire_bytes
 from simulator.scenario import load_scenario
 
 from .caution import CAUTION
-from .config import BrokerConfig, HealthConfig, JournalConfig, PublishConfig, ServiceConfig
+from .config import (
+    BoardConfig,
+    BrokerConfig,
+    HealthConfig,
+    JournalConfig,
+    PublishConfig,
+    ServiceConfig,
+)
 from .engine.alarms import STATE_WORDS, State
 from .engine.numbers import ml, num
 from .engine.timefmt import iso
@@ -42,6 +49,8 @@ from .service import Service, configure_logging
 
 SCENARIO = Path(__file__).resolve().parent.parent / "simulator" / "scenarios" / "ward-demo.toml"
 PREFIX = "hourwatch"
+BOARD = ("127.0.0.1", 8090)  # the board's address, when free (else any free port)
+DEMO_CHARGE = "demo-charge"  # invented board user: may acknowledge as either nurse role
 
 
 class DemoClock:
@@ -202,9 +211,32 @@ def _rate(advice: dict[str, Any]) -> str:
     return f"{words} ({advice.get('time', '')[11:16]})"
 
 
+def _board_address() -> str:
+    """127.0.0.1:8090 when free, else a free port (the URL is printed either way)."""
+    from .web.server import bind
+
+    try:
+        bind(*BOARD).close()
+    except OSError:
+        return f"{BOARD[0]}:0"
+    return f"{BOARD[0]}:{BOARD[1]}"
+
+
+def _demo_user(work: Path) -> tuple[Path, str]:
+    """A users file with one invented user and a fresh random password."""
+    import secrets
+
+    from .web.users import add_user
+
+    path, password = work / "board-users.json", secrets.token_urlsafe(9)
+    add_user(path, DEMO_CHARGE, ["charge-nurse", "bedside-nurse"], password,
+             {"charge-nurse", "bedside-nurse"}, replace=True)  # fmt: skip
+    return path, password
+
+
 def run_demo(
     sim_hours: float, speed: float, seed: int = 7, scenario: Path | None = None,
-    out: TextIO | None = None, keep_dir: Path | None = None,
+    out: TextIO | None = None, keep_dir: Path | None = None, board: bool = True,
 ) -> int:  # fmt: skip
     console = Console(file=out, highlight=False)
     work = keep_dir or Path(tempfile.mkdtemp(prefix="hourwatch-demo-"))
@@ -220,11 +252,14 @@ def run_demo(
     clock = DemoClock(sim_start, rate=speed * 60.0)
     built = build(ward, profiles, seed=seed, hours=sim_hours, start=sim_start, prefix=PREFIX)
     journal = work / "journal.db"
+    users, password = _demo_user(work) if board else (work / "board-users.json", "")
     cfg = ServiceConfig(
         broker=BrokerConfig(host=broker.host, port=broker.port, protocol=broker.protocol,
                             client_id="hourwatch-demo"),
         journal=JournalConfig(path=journal),
         health=HealthConfig(listen=""),
+        # the ward board, with its one application (/health and /metrics too)
+        board=BoardConfig(listen=_board_address() if board else "", users_file=users),
         # simulated seconds: a minute of waiting for PUBACK is a blink of wall time here
         publish=PublishConfig(confirm_timeout_s=3600.0, state_interval_s=120.0),
         log_level="warning",
@@ -247,6 +282,12 @@ def run_demo(
     watch.on_message = lambda _c, _u, msg: _on_message(msg, beds, tally, nurse, lines)
     try:
         service.start()
+        if service.health is not None and "board" in service.health.addresses:
+            host, port = service.health.addresses["board"]
+            console.print(f"[bold]ward board[/bold]: http://{host}:{port}/ward/{ward.ward}",
+                          soft_wrap=True)  # one line: a URL to copy
+            console.print(f"  live while the demo runs; to acknowledge, log in as {DEMO_CHARGE} "
+                          f"with password {password}", soft_wrap=True)  # fmt: skip
         for c in (feed, watch):
             c.connect(broker.host, broker.port, keepalive=30)
             c.loop_start()

@@ -1,17 +1,27 @@
-"""Counters in Prometheus text format, and a tiny HTTP endpoint for /health and /metrics.
+"""The service's counters, and their Prometheus exposition through prometheus_client.
 
-stdlib only (http.server in a thread): an operator's probe needs nothing installed.
+The counters are plain numbers under one lock (written by the worker and the MQTT
+thread); at each scrape they become metric families and prometheus_client writes the
+text format. The HTTP side (/health, /metrics) is daemon/web.
 """
 
 from __future__ import annotations
 
 import bisect
-import json
 import threading
 from collections import Counter
-from collections.abc import Callable, Iterable, Sequence
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from typing import Any
+from collections.abc import Iterable, Iterator, Mapping
+
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
+from prometheus_client.metrics_core import (
+    CounterMetricFamily,
+    GaugeMetricFamily,
+    HistogramMetricFamily,
+    Metric,
+)
+
+CONTENT_TYPE = CONTENT_TYPE_PLAIN_0_0_4  # what generate_latest writes
 
 # seconds, from a message's arrival at the client to its effects being journaled
 LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
@@ -42,17 +52,15 @@ class Histogram:
                 return self.buckets[i] if i < len(self.buckets) else float("inf")
         return float("inf")
 
-    def lines(self, name: str) -> list[str]:
-        """Prometheus exposition lines: cumulative buckets, sum and count."""
-        out: list[str] = []
+    def family(self, name: str, help_: str) -> HistogramMetricFamily:
+        """The histogram as one metric family: cumulative buckets, sum and count."""
+        buckets: list[tuple[str, float]] = []
         cum = 0
         for bound, n in zip(self.buckets, self.counts, strict=False):
             cum += n
-            out.append(f'{name}_bucket{{le="{bound:g}"}} {cum}')
-        out.append(f'{name}_bucket{{le="+Inf"}} {self.count}')
-        out.append(f"{name}_sum {self.total:g}")
-        out.append(f"{name}_count {self.count}")
-        return out
+            buckets.append((str(float(bound)), cum))  # as prometheus_client writes le
+        buckets.append(("+Inf", self.count))
+        return HistogramMetricFamily(name, help_, buckets=buckets, sum_value=self.total)
 
 
 # Help texts of the gauges and labelled counters the service samples at each scrape.
@@ -95,143 +103,88 @@ class Metrics:
         self.recovery_s = 0.0
         self.recovered_messages = 0
 
-    def render(self, gauges: dict[str, float], labelled: Iterable[tuple[str, str, float]]) -> str:
-        """Prometheus text exposition; `gauges` and `labelled` are sampled by the caller."""
-        out: list[str] = []
+    def families(
+        self,
+        gauges: Mapping[str, float],
+        labelled: Iterable[tuple[str, Mapping[str, str], float]],
+    ) -> list[Metric]:
+        """The counters as metric families; `gauges` and `labelled` (name, labels, value)
+        are sampled by the caller."""
+        out: list[Metric] = []
 
-        def metric(name: str, kind: str, help_: str, value: float | None = None) -> None:
-            out.append(f"# HELP hourwatch_{name} {help_}")
-            out.append(f"# TYPE hourwatch_{name} {kind}")
-            if value is not None:
-                out.append(f"hourwatch_{name} {value:g}")
+        def counter(name: str, help_: str, value: float) -> None:
+            out.append(CounterMetricFamily(f"hourwatch_{name}", help_, value=value))
+
+        def gauge(name: str, help_: str, value: float) -> None:
+            out.append(GaugeMetricFamily(f"hourwatch_{name}", help_, value=value))
 
         with self.lock:
-            metric("messages_received_total", "counter", "MQTT messages received",
-                   self.received)  # fmt: skip
-            metric("messages_journaled_total", "counter", "messages written durably",
-                   self.journaled)  # fmt: skip
-            metric("messages_acked_total", "counter", "messages acknowledged to the broker",
-                   self.acked)  # fmt: skip
-            metric("stale_acks_dropped_total", "counter",
-                   "acks dropped because the message came on an earlier connection",
-                   self.stale_acks)  # fmt: skip
-            metric("rejected_total", "counter", "inputs not used, by reason")
+            counter("messages_received_total", "MQTT messages received", self.received)
+            counter("messages_journaled_total", "messages written durably", self.journaled)
+            counter("messages_acked_total", "messages acknowledged to the broker", self.acked)
+            counter("stale_acks_dropped_total",
+                    "acks dropped because the message came on an earlier connection",
+                    self.stale_acks)  # fmt: skip
+            rejected = CounterMetricFamily("hourwatch_rejected_total", "inputs not used, by reason",
+                                           labels=["reason"])  # fmt: skip
             for reason, n in sorted(self.rejected.items()):
-                out.append(f'hourwatch_rejected_total{{reason="{_esc(reason)}"}} {n}')
-            metric("alarm_events_total", "counter", "alarm lifecycle events, by rule and state")
+                rejected.add_metric([reason], n)
+            out.append(rejected)
+            alarms = CounterMetricFamily("hourwatch_alarm_events_total",
+                                         "alarm lifecycle events, by rule and state",
+                                         labels=["rule", "state"])  # fmt: skip
             for (rule, state), n in sorted(self.alarms.items()):
-                out.append(
-                    f'hourwatch_alarm_events_total{{rule="{_esc(rule)}",state="{_esc(state)}"}} {n}'
-                )
-            metric("alarms_published_total", "counter", "alarm events confirmed by the broker",
-                   self.alarms_published)  # fmt: skip
-            metric("publish_failures_total", "counter",
-                   "alarm events not confirmed in time", self.publish_failures)  # fmt: skip
-            metric("connects_total", "counter", "successful broker connections", self.connects)
-            metric("disconnects_total", "counter", "broker connections lost", self.disconnects)
-            metric("recovery_seconds", "gauge", "time the last restart recovery took",
-                   self.recovery_s)  # fmt: skip
-            metric("recovery_messages", "gauge", "journal messages re-fed at the last start",
-                   self.recovered_messages)  # fmt: skip
-            metric("ingest_latency_seconds", "histogram",
-                   "arrival to journaled, acknowledged and evaluated")  # fmt: skip
-            out += self.latency.lines("hourwatch_ingest_latency_seconds")
-            metric("alarm_latency_seconds", "histogram",
-                   "end to end: arrival of the reading that raised an alarm event to the "
-                   "broker's confirmation (PUBACK) of that event")  # fmt: skip
-            out += self.alarm_latency.lines("hourwatch_alarm_latency_seconds")
+                alarms.add_metric([rule, state], n)
+            out.append(alarms)
+            counter("alarms_published_total", "alarm events confirmed by the broker",
+                    self.alarms_published)  # fmt: skip
+            counter("publish_failures_total", "alarm events not confirmed in time",
+                    self.publish_failures)  # fmt: skip
+            counter("connects_total", "successful broker connections", self.connects)
+            counter("disconnects_total", "broker connections lost", self.disconnects)
+            gauge("recovery_seconds", "time the last restart recovery took", self.recovery_s)
+            gauge("recovery_messages", "journal messages re-fed at the last start",
+                  self.recovered_messages)  # fmt: skip
+            out.append(self.latency.family("hourwatch_ingest_latency_seconds",
+                                           "arrival to journaled, acknowledged and evaluated"))
+            out.append(self.alarm_latency.family(
+                "hourwatch_alarm_latency_seconds",
+                "end to end: arrival of the reading that raised an alarm event to the "
+                "broker's confirmation (PUBACK) of that event"))  # fmt: skip
         for name, value in sorted(gauges.items()):
-            metric(name, "gauge", GAUGE_HELP.get(name, name.replace("_", " ")), value)
-        by_name: dict[str, list[tuple[str, float]]] = {name: [] for name in LABELLED_HELP}
-        for name, label, value in labelled:
-            by_name.setdefault(name, []).append((label, value))
+            gauge(name, GAUGE_HELP.get(name, name.replace("_", " ")), value)
+        by_name: dict[str, list[tuple[Mapping[str, str], float]]] = {n: [] for n in LABELLED_HELP}
+        for name, labels, value in labelled:
+            by_name.setdefault(name, []).append((labels, value))
         for name, samples in sorted(by_name.items()):
             # declared even while empty, so a dashboard finds every series from the start
-            metric(name, "counter", LABELLED_HELP.get(name, name.replace("_", " ")))
-            out += [f"hourwatch_{name}{{{label}}} {value:g}" for label, value in sorted(samples)]
-        return "\n".join(out) + "\n"
+            keys = sorted({k for labels, _ in samples for k in labels})
+            fam = CounterMetricFamily(f"hourwatch_{name}",
+                                      LABELLED_HELP.get(name, name.replace("_", " ")),
+                                      labels=keys)  # fmt: skip
+            for labels, value in sorted(samples, key=lambda s: sorted(s[0].items())):
+                fam.add_metric([labels.get(k, "") for k in keys], value)
+            out.append(fam)
+        return out
+
+    def render(self, gauges: Mapping[str, float],
+               labelled: Iterable[tuple[str, Mapping[str, str], float]]) -> str:  # fmt: skip
+        """Prometheus text exposition of `families`."""
+        return exposition(self.families(gauges, labelled))
 
 
-def _esc(s: str) -> str:
-    return s.replace("\\", "\\\\").replace('"', '\\"').replace("\n", " ")
+class _Families:
+    """A collector of families already sampled (prometheus_client asks collectors)."""
+
+    def __init__(self, families: Iterable[Metric]) -> None:
+        self._families = list(families)
+
+    def collect(self) -> Iterator[Metric]:
+        return iter(self._families)
 
 
-HealthFn = Callable[[], tuple[bool, dict[str, Any]]]
-MetricsFn = Callable[[], str]
-# More pages on the same server (the acknowledgement links): (method, path, body) ->
-# (status, headers, body), or None when the path is not theirs.
-RoutesFn = Callable[[str, str, bytes], tuple[int, Sequence[tuple[str, str]], bytes] | None]
-MAX_POST_BYTES = 16 * 1024
-
-
-class HealthServer:
-    """GET /health (200 healthy, 503 not, JSON body) and GET /metrics, on a thread."""
-
-    def __init__(self, host: str, port: int, health: HealthFn, metrics: MetricsFn,
-                 routes: RoutesFn | None = None) -> None:  # fmt: skip
-        class Handler(BaseHTTPRequestHandler):
-            def _routed(self, method: str, body: bytes = b"") -> bool:
-                if routes is None:
-                    return False
-                reply = routes(method, self.path.split("?", 1)[0], body)
-                if reply is None:
-                    return False
-                status, headers, data = reply
-                self.send_response(status)
-                for name, value in headers:
-                    self.send_header(name, value)
-                self.send_header("Content-Length", str(len(data)))
-                self.end_headers()
-                if method != "HEAD":
-                    self.wfile.write(data)
-                return True
-
-            def do_POST(self) -> None:
-                try:
-                    n = int(self.headers.get("Content-Length") or 0)
-                except ValueError:
-                    n = -1
-                if not 0 <= n <= MAX_POST_BYTES:
-                    self._send(413, "text/plain", "request body too large\n")
-                    return
-                if not self._routed("POST", self.rfile.read(n) if n else b""):
-                    self._send(404, "text/plain", "not found\n")
-
-            def do_GET(self) -> None:
-                path = self.path.split("?", 1)[0]
-                if self._routed("GET"):
-                    return
-                if path == "/health":
-                    ok, body = health()
-                    self._send(200 if ok else 503, "application/json", json.dumps(body))
-                elif path == "/metrics":
-                    self._send(200, "text/plain; version=0.0.4; charset=utf-8", metrics())
-                else:
-                    self._send(404, "text/plain", "not found: try /health or /metrics\n")
-
-            def _send(self, code: int, ctype: str, text: str) -> None:
-                data = text.encode()
-                self.send_response(code)
-                self.send_header("Content-Type", ctype)
-                self.send_header("Content-Length", str(len(data)))
-                self.end_headers()
-                self.wfile.write(data)
-
-            def log_message(self, format: str, *args: Any) -> None:
-                pass  # scrapes every few seconds would drown the service log
-
-        self.server = ThreadingHTTPServer((host, port), Handler)
-        self.server.daemon_threads = True
-        self.address: tuple[str, int] = self.server.server_address[:2]  # type: ignore[assignment]
-        self._thread = threading.Thread(
-            target=self.server.serve_forever, name="hourwatch-health", daemon=True
-        )
-
-    def start(self) -> None:
-        self._thread.start()
-
-    def stop(self) -> None:
-        if self._thread.is_alive():  # shutdown() would wait forever for a loop never run
-            self.server.shutdown()
-            self._thread.join(2.0)
-        self.server.server_close()
+def exposition(families: Iterable[Metric]) -> str:
+    """The text format (0.0.4) of these families, written by prometheus_client."""
+    registry = CollectorRegistry(auto_describe=False)
+    registry.register(_Families(families))
+    return generate_latest(registry).decode("utf-8")

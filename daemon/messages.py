@@ -65,16 +65,22 @@ class AdviceMessage(_Out):
     bed: str
     ward: str
     because_of: list[str]
+    kind: str  # rate, no_order, held_circulation, held_sodium, ended (engine/advice.py)
     hour_start: str
     hour_output_ml: float
-    rate_ml_h: list[float]
-    fluid: str
-    sodium_mmol_h: list[float]
-    free_water_ml_h: list[float]
+    residual_ml: float = 0.0  # retained bladder content drained in the hour, not counted
+    rate_ml_h: list[float] | None  # None: no rate suggested (no order, or held)
+    fluid: str | None  # named only with a rate, under an order
+    capped: bool = False
+    sodium_mmol_h: list[float] | None
+    free_water_ml_h: list[float] | None
     tonicity_review: bool
+    order: dict[str, Any] | None = None
+    serum_na: dict[str, Any] | None = None
     notes: list[str]
     projection: dict[str, Any] | None
     summary: str
+    pager: str = ""  # the few words an alarm page carries about it
     caution: str
 
     @classmethod

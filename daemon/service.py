@@ -6,7 +6,8 @@ Threads and who owns what:
   journal (durable) → ack to the broker, in order → engine → journal the effects → publish.
 - APScheduler's thread: ONE job, re-armed to `engine.next_wakeup()`, calls
   `engine.advance(now)` under the engine lock and hands the effects to the worker.
-- the health endpoint's thread reads counters only.
+- the HTTP thread (daemon/web: /health, /metrics, the ward board) reads counters, and
+  copies the board's numbers out of the engine under the engine lock.
 
 The engine never reads the clock: the service passes `clock()` (time.time by default;
 tests inject a fake one to run a night in seconds).
@@ -25,7 +26,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
 import structlog
 from apscheduler.executors.pool import ThreadPoolExecutor  # type: ignore[import-untyped]
@@ -42,7 +43,7 @@ from .engine.evaluator import Notice
 from .engine.outcomes import Outcome
 from .engine.timefmt import iso
 from .errors import UserError
-from .health import HealthServer, Metrics
+from .health import Metrics, exposition
 from .journal import Journal, StoredEvent, is_full
 from .messages import (
     SCHEMA,
@@ -64,6 +65,11 @@ from .profile_files import load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover
 from .rule_files import load_advice, load_policy, load_rules
+from .web.live import ChangeFeed
+from .web.marks import ReadingMarks
+
+if TYPE_CHECKING:
+    from .web.server import WebServer
 
 OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
 # Received messages journaled per fsync. The broker stops sending once this many are
@@ -116,6 +122,17 @@ def configure_logging(level: str = "info", stream: TextIO | None = None) -> None
     root = logging.getLogger()
     root.handlers = [handler]
     root.setLevel(logging.WARNING)  # paho and APScheduler: only what needs attention
+
+
+def _taken(address: tuple[str, int]) -> bool:
+    """Whether this address cannot be bound now (to name the key in the error)."""
+    from .web.server import bind
+
+    try:
+        bind(*address).close()
+    except OSError:
+        return True
+    return False
 
 
 def bed_of(alarm_id: str | None) -> str | None:
@@ -217,6 +234,9 @@ class Service:
         self.clock_rate = clock_rate
         self.prefix = cfg.topic_prefix
         self.log = structlog.get_logger("hourwatch")
+        # the ward board (daemon/web): bag changes seen, and which beds changed
+        self.marks = ReadingMarks()
+        self.changes = ChangeFeed()
         profiles = load_profiles(cfg.profiles)
         self.rules = load_rules(cfg.rules)
         self.policy = load_policy(cfg.rules)
@@ -236,6 +256,7 @@ class Service:
                 max_unbound_devices=lim.max_unbound_devices,
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
                 ack_users=cfg.ack.users or None,
+                observe=self.marks.observe if cfg.board.listen else None,  # the board's bag changes
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
             raise UserError(f"ack.users: {exc}") from None
@@ -261,7 +282,7 @@ class Service:
         self.journal: Journal | None = None
         self.link: MqttLink | None = None
         self.outbox: Outbox | None = None
-        self.health: HealthServer | None = None
+        self.health: WebServer | None = None  # /health, /metrics, links and the board
         self._now = -math.inf  # engine time so far (monotone)
         self._timer_effects: list[Effect] = []
         # journal event id -> perf_counter arrival of the reading that raised the alarm
@@ -302,14 +323,8 @@ class Service:
     def _start(self) -> None:
         cfg = self.cfg
         self.stats.started = self.clock()
-        if cfg.health.listen:  # first: a taken address should fail before anything runs
-            host, port = split_address(cfg.health.listen, allow_zero=True)
-            try:
-                self.health = HealthServer(host, port, self.health_report, self.render_metrics,
-                                           self._http_routes)  # fmt: skip
-            except OSError as exc:
-                raise UserError(f"health.listen: cannot listen on {host}:{port}: "
-                                f"{exc.strerror or exc}") from None  # fmt: skip
+        if cfg.health.listen or cfg.board.listen:  # first: a taken address fails before all
+            self.health = self._web_server()
         # Recovery reads through the journal's own read connections, whose file checks
         # open and close the database file: in one process, closing any descriptor of a
         # file drops all its POSIX locks, including the writer's. So recovery gets a
@@ -337,8 +352,8 @@ class Service:
         self._worker.start()
         if self.health is not None:
             self.health.start()
-            self.log.info("health_listening", address=f"{self.health.address[0]}:"
-                          f"{self.health.address[1]}")  # fmt: skip
+            for name, (host, port) in self.health.addresses.items():
+                self.log.info(f"{name}_listening", address=f"{host}:{port}")
         self.link.start()
         self.log.info(
             "service_started", broker=f"{cfg.broker.host}:{cfg.broker.port}",
@@ -564,6 +579,7 @@ class Service:
                         arrived[id(e)] = m.arrived
             self._arm()
         self._readings_since_state = True
+        self.changes.touch()  # any bed's output may have moved
         with self.metrics.lock:
             self.metrics.received += len(batch)
             self.metrics.journaled += len(batch)
@@ -728,6 +744,7 @@ class Service:
                 b = self._bed(e.bed)
                 b.latest_advice = {k: v for k, v in json.loads(body).items() if k != "caution"}
                 b.dirty = b.urgent = True
+                self.changes.touch(e.bed)
             elif isinstance(e, RejectedInput):
                 with self.metrics.lock:
                     self.metrics.rejected[str(e.reason)] += 1
@@ -741,6 +758,7 @@ class Service:
             elif isinstance(e, Notice):
                 self.log.info("bed_notice", bed=e.bed, ward=e.ward, code=e.code, text=e.text)
                 self._bed(e.bed).dirty = True
+                self.changes.touch(e.bed)
         return True
 
     def _alarm(self, e: AlarmEvent, event_id: int, now: float) -> None:
@@ -757,6 +775,7 @@ class Service:
         )  # fmt: skip
         b = self._bed(e.bed)
         b.dirty = b.urgent = True
+        self.changes.touch(e.bed)
 
     def _body(self, model: type[OutboundOf], e: Any) -> bytes:
         """The message's bytes from its model. Should the engine's output ever not fit the
@@ -1077,7 +1096,7 @@ class Service:
             "engine_errors": float(self.stats.engine_errors),
             "technical_alarms": float(len(self.stats.technical)),
         }
-        labelled: list[tuple[str, str, float]] = []
+        labelled: list[tuple[str, dict[str, str], float]] = []
         with self.lock:  # engine counters: read under the engine lock
             dups: dict[str, int] = {}
             for dev in self.engine.devices.values():
@@ -1086,11 +1105,11 @@ class Service:
                     prof = dev.decoder.profile.name
                     dups[prof] = dups.get(prof, 0) + n
         for prof, n in sorted(dups.items()):
-            labelled.append(("duplicates_total", f'profile="{prof}"', float(n)))
-        text = self.metrics.render(gauges, labelled)
+            labelled.append(("duplicates_total", {"profile": prof}, float(n)))
+        families = self.metrics.families(gauges, labelled)
         if self.notifier is not None:
-            text += self.notifier.metrics_text()
-        return text
+            families += self.notifier.metric_families()
+        return exposition(families)
 
     # --- paging channels (daemon/notify) -----------------------------------------------
     def _notify_technical(self) -> list[_Technical]:
@@ -1098,25 +1117,74 @@ class Service:
             return []
         return [_Technical(t.code, t.text, t.since, t.alarm_id) for t in self.notifier.technical()]
 
-    def _http_routes(self, method: str, path: str,
-                     body: bytes) -> tuple[int, list[tuple[str, str]], bytes] | None:  # fmt: skip
-        """Acknowledgement links on the health endpoint's server (None: not ours)."""
-        links = self.notifier.ack_links if self.notifier is not None else None
-        if links is None:
-            return None
-        reply = links.handle(method, path, body)
-        if reply is None:
-            return None
-        return reply.status, list(reply.headers), reply.body.encode()
+    def _web_server(self) -> WebServer:
+        """The one HTTP application (daemon/web) on health.listen and board.listen."""
+        from .web.app import build_app
+        from .web.server import WebServer
+        from .web.site import BoardData, Site
+        from .web.users import UserStore
+
+        cfg = self.cfg
+        board = None
+        if cfg.board.listen:
+            board = BoardData(
+                engine=self.engine, lock=self.lock, clock=self.clock,
+                timezone=zone_info(cfg.timezone), latest_advice=self.latest_advice,
+                bed_events=self.bed_events, acknowledge=self.acknowledge_from_board,
+                users=UserStore(cfg.board.users_file), settings=cfg.board, marks=self.marks,
+                changes=self.changes, journal=str(cfg.journal.path),
+                service_state=self.health_report,
+            )  # fmt: skip
+        site = Site(self.health_report, self.render_metrics,
+                    lambda: self.notifier.ack_links if self.notifier is not None else None,
+                    board)  # fmt: skip
+        addresses = {}
+        for key, listen in (("health", cfg.health.listen), ("board", cfg.board.listen)):
+            if listen:
+                host, port = split_address(listen, allow_zero=True)
+                addresses[key] = (host, port)
+        try:
+            return WebServer(build_app(site), addresses)
+        except OSError as exc:
+            key = next((k for k in addresses if _taken(addresses[k])), next(iter(addresses)))
+            host, port = addresses[key]
+            raise UserError(f"{key}.listen: cannot listen on {host}:{port}: "
+                            f"{exc.strerror or exc}") from None  # fmt: skip
+
+    def latest_advice(self, bed: str) -> dict[str, Any] | None:
+        b = self._beds.get(bed)
+        return None if b is None else b.latest_advice
+
+    def bed_events(self, bed: str, since: float) -> list[StoredEvent]:
+        """The bed's journaled events since `since` (a read-only connection of its own)."""
+        journal = self.journal
+        if journal is None:
+            return []
+        try:
+            return list(journal.events_between(since, None, bed))
+        except Exception:  # the board shows less; the service goes on
+            self.log.error("board_journal_read_failed", bed=bed, exc_info=True)
+            return []
+
+    def acknowledge_from_board(self, alarm_id: str, user: str, role: str) -> AckOutcome:
+        """An acknowledgement by a user logged in on the board: on the user's own
+        acknowledgement topic, exactly as if the user had sent it over MQTT."""
+        payload = json.dumps({"alarm_id": alarm_id, "role": role}).encode()
+        return self._acknowledge(f"{self._topic('ack')}/{user}", payload, alarm_id, user, role,
+                                 "ack_board")  # fmt: skip
 
     def acknowledge_from_link(self, alarm_id: str, by: str, role: str) -> AckOutcome:
         """An acknowledgement from a page's link, through the worker like an MQTT one:
         journaled as a message on the acknowledgement topic (who and role in it), fed to
         the engine, published. Waits for the engine's answer."""
+        payload = json.dumps({"alarm_id": alarm_id, "by": by, "role": role}).encode()
+        return self._acknowledge(self._topic("ack"), payload, alarm_id, by, role, "ack_link_used")
+
+    def _acknowledge(self, topic: str, payload: bytes, alarm_id: str, by: str, role: str,
+                     event: str) -> AckOutcome:  # fmt: skip
         if self._worker is None or not self._worker.is_alive() or self._stopping.is_set():
             return AckOutcome(False, "the service is not running; acknowledge another way")
-        payload = json.dumps({"alarm_id": alarm_id, "by": by, "role": role}).encode()
-        item = _LocalInput(self._topic("ack"), payload)
+        item = _LocalInput(topic, payload)
         self.queue.put(item)
         if not item.done.wait(LOCAL_ACK_WAIT_S):
             return AckOutcome(False, "the service did not answer in time; check the alarm "
@@ -1130,7 +1198,7 @@ class Service:
                 outcome = AckOutcome(False, f"not acknowledged ({e.reason}): the alarm may "
                                      "have ended or been acknowledged already")  # fmt: skip
                 break
-        self.log.info("ack_link_used", alarm_id=alarm_id, bed=bed_of(alarm_id), by=by,
+        self.log.info(event, alarm_id=alarm_id, bed=bed_of(alarm_id), by=by,
                       role=role, acknowledged=outcome.ok, detail=outcome.text)  # fmt: skip
         return outcome
 

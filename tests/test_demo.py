@@ -30,6 +30,9 @@ def test_demo_runs_a_ward_and_its_journal_replays_to_the_same_alarms(
     assert "pages per alarm that paged:" in text and "pages per bed-day:" in text
     assert " ".join(CAUTION.split()) in " ".join(text.split())
     assert "pod-hourly" in text  # the ward has a post-obstructive diuresis (invented)
+    flat = " ".join(text.split())
+    assert "ward board: http://127.0.0.1:" in flat and "/ward/sim-4west" in flat
+    assert "log in as demo-charge with password" in flat
     journal = tmp_path / "journal.db"
     assert journal.is_file()
 

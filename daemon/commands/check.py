@@ -78,6 +78,7 @@ def run(args: argparse.Namespace) -> int:
     print(f"journal    {journal}, kept {cfg.journal.retention_days:g} days")
     listen = cfg.health.listen
     print(f"health     {f'http://{listen}/health and /metrics' if listen else 'off'}")
+    print_board(cfg)
     print(f"profiles   {cfg.profiles or BUNDLED_PROFILES} ({len(profiles)})")
     print(f"rules      {rules_dir} ({len(enabled)} enabled"
           + (f", disabled: {', '.join(disabled)}" if disabled else "") + ")")  # fmt: skip
@@ -103,6 +104,22 @@ def run(args: argparse.Namespace) -> int:
           f"{prefix}/rejected")  # fmt: skip
     print_notify(cfg, svc)
     return 0
+
+
+def print_board(cfg: ServiceConfig) -> None:
+    """The ward board: where, who may log in, whether looking needs a login."""
+    b = cfg.board
+    if not b.listen:
+        print("board      off (board.listen)")
+        return
+    from ..web.users import read_users
+
+    users = read_users(b.users_file).users  # an unreadable file: one line, exit 2
+    looking = "looking needs a login" if b.require_login else "looking needs no login"
+    print(f"board      http://{b.listen}/  {looking}; {len(users)} user(s) in {b.users_file} "
+          f"may log in to acknowledge")  # fmt: skip
+    if not users:
+        print("  no users yet: `hourwatch user add NAME --role ROLE --config FILE`")
 
 
 def print_notify(cfg: ServiceConfig, svc: Service) -> None:

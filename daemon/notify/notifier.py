@@ -30,12 +30,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
 from pydantic import ValidationError
 
 from ..engine.alarms import ALARM_CAUTION, PAGER_CAUTION, PAGER_MAX, STATE_WORDS, State
 from ..engine.timefmt import iso
 from ..errors import UserError
-from ..health import Histogram
+from ..health import Histogram, exposition
 from ..messages import SCHEMA, AlarmMessage
 from . import acklinks
 from .channels import Sender, sender_for
@@ -535,32 +536,32 @@ class Notifier:
                 }  # fmt: skip
         return {"channels": out}
 
-    def metrics_text(self) -> str:
+    def metric_families(self) -> list[Metric]:
         store = self.store
         pending = store.open_counts() if store is not None else {}
-        out: list[str] = []
-
-        def head(name: str, kind: str, text: str) -> None:
-            out.extend((f"# HELP hourwatch_{name} {text}", f"# TYPE hourwatch_{name} {kind}"))
-
+        pages = CounterMetricFamily("hourwatch_notify_pages_total",
+                                    "pages by channel and outcome (confirmed, failed_attempt, "
+                                    "expired, technical_alarm)",
+                                    labels=["channel", "outcome"])  # fmt: skip
+        queued = GaugeMetricFamily("hourwatch_notify_pending",
+                                   "pages queued or being sent, by channel",
+                                   labels=["channel"])  # fmt: skip
+        failing = GaugeMetricFamily("hourwatch_notify_channel_failing",
+                                    "1 while the channel's technical alarm is active",
+                                    labels=["channel"])  # fmt: skip
         with self.lock:
-            head("notify_pages_total", "counter", "pages by channel and outcome "
-                 "(confirmed, failed_attempt, expired, technical_alarm)")  # fmt: skip
             for (ch, outcome), n in sorted(self.counts.items()):
-                out.append(f'hourwatch_notify_pages_total{{channel="{ch}",'
-                           f'outcome="{outcome}"}} {n}')  # fmt: skip
-            head("notify_pending", "gauge", "pages queued or being sent, by channel")
+                pages.add_metric([ch, outcome], n)
             for ch in sorted(self.states):
-                out.append(f'hourwatch_notify_pending{{channel="{ch}"}} {pending.get(ch, 0)}')
-            head("notify_channel_failing", "gauge",
-                 "1 while the channel's technical alarm is active")  # fmt: skip
+                queued.add_metric([ch], pending.get(ch, 0))
             for ch, st in sorted(self.states.items()):
-                out.append(f'hourwatch_notify_channel_failing{{channel="{ch}"}} '
-                           f"{1 if st.alarm_id else 0}")  # fmt: skip
-            head("notify_delivery_seconds", "histogram",
-                 "alarm event to the channel's confirmation")  # fmt: skip
-            out += self.latency.lines("hourwatch_notify_delivery_seconds")
-        return "\n".join(out) + "\n"
+                failing.add_metric([ch], 1 if st.alarm_id else 0)
+            latency = self.latency.family("hourwatch_notify_delivery_seconds",
+                                          "alarm event to the channel's confirmation")
+        return [pages, queued, failing, latency]
+
+    def metrics_text(self) -> str:
+        return exposition(self.metric_families())
 
     def _log(self, level: str, event: str, **kw: Any) -> None:
         if self.log is not None:
