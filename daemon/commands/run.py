@@ -16,7 +16,8 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r = sub.add_parser("run", help="run the live service on an MQTT broker")
     r.add_argument("--config", type=Path, default=None, help="service config (TOML)")
     r.add_argument("--broker", default=None, metavar="HOST:PORT", help="overrides broker.host/port")
-    r.add_argument("--journal", type=Path, default=None, help="overrides journal.path")
+    r.add_argument("--journal", default=None, metavar="FILE|URL",
+                   help="overrides journal.path (or journal.url, for a postgresql:// URL)")
     r.set_defaults(run=run)
 
 
