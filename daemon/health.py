@@ -156,11 +156,37 @@ def _esc(s: str) -> str:
     return s.replace("\\", "\\\\").replace('"', '\\"').replace("\n", " ")
 
 
+def render_ha(role: str, group: str, token: int | None, takeovers: int, lease_lost: int,
+              last_takeover_s: float | None) -> str:  # fmt: skip
+    """Active/standby (daemon/ha.py) in Prometheus text: appended to /metrics."""
+    out: list[str] = []
+
+    def metric(name: str, kind: str, help_: str, value: float) -> None:
+        out.append(f"# HELP hourwatch_{name} {help_}")
+        out.append(f"# TYPE hourwatch_{name} {kind}")
+        out.append(f'hourwatch_{name}{{group="{_esc(group)}"}} {value:g}')
+
+    metric("ha_active", "gauge", "1 while this instance is its group's active, 0 on standby",
+           1.0 if role == "active" else 0.0)  # fmt: skip
+    metric("ha_takeovers_total", "counter", "times this instance took the lease and became "
+           "active (its first start included)", takeovers)  # fmt: skip
+    metric("ha_lease_lost_total", "counter", "times this instance lost the lease while active "
+           "(replaced, or not renewed in time) and stepped down", lease_lost)  # fmt: skip
+    metric("ha_lease_token", "gauge", "the fencing token this instance writes under "
+           "(0 on standby)", float(token or 0) if role == "active" else 0.0)  # fmt: skip
+    if last_takeover_s is not None:
+        metric("ha_takeover_seconds", "gauge", "the last takeover: lease taken to journal "
+               "recovered and broker connection started", last_takeover_s)  # fmt: skip
+    return "\n".join(out) + "\n"
+
+
 HealthFn = Callable[[], tuple[bool, dict[str, Any]]]
 MetricsFn = Callable[[], str]
 # More pages on the same server (the acknowledgement links): (method, path, body) ->
 # (status, headers, body), or None when the path is not theirs.
 RoutesFn = Callable[[str, str, bytes], tuple[int, Sequence[tuple[str, str]], bytes] | None]
+# "active" or "standby" (daemon/ha.py); a service without a group is always "active".
+RoleFn = Callable[[], str]
 MAX_POST_BYTES = 16 * 1024
 
 
@@ -168,7 +194,7 @@ class HealthServer:
     """GET /health (200 healthy, 503 not, JSON body) and GET /metrics, on a thread."""
 
     def __init__(self, host: str, port: int, health: HealthFn, metrics: MetricsFn,
-                 routes: RoutesFn | None = None) -> None:  # fmt: skip
+                 routes: RoutesFn | None = None, role: RoleFn | None = None) -> None:  # fmt: skip
         class Handler(BaseHTTPRequestHandler):
             def _routed(self, method: str, body: bytes = b"") -> bool:
                 if routes is None:
@@ -203,6 +229,7 @@ class HealthServer:
                     return
                 if path == "/health":
                     ok, body = health()
+                    body = {"role": role() if role is not None else "active", **body}
                     self._send(200 if ok else 503, "application/json", json.dumps(body))
                 elif path == "/metrics":
                     self._send(200, "text/plain; version=0.0.4; charset=utf-8", metrics())

@@ -34,6 +34,10 @@ def run(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    if cfg.journal.url is not None:  # a PostgreSQL journal: one of an active/standby group
+        from ..ha import HaRunner
+
+        return HaRunner(cfg, service.log).run(stop)
     service.start()
     # Wake now and then: signal handlers run only when the main thread gets control.
     while not stop.wait(0.5):
