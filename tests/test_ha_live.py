@@ -190,6 +190,10 @@ def page_of(h: Any) -> tuple[str, str, int, str]:
             body["recipient"])  # fmt: skip
 
 
+def paged_beds(hook: WebhookReceiver) -> set[str]:
+    return {page_of(h)[0].split("/")[0] for h in hook.received}
+
+
 def event_token(url: PgUrl, event_id: int) -> int | None:
     import psycopg
 
@@ -258,8 +262,7 @@ def test_sigkill_of_the_active_mid_stream_the_standby_pages_nothing_lost_nothing
         b.wait_role("active", 30)
         w.wait_for(lambda w: pod_active(w, "b02") and pod_active(w, "b03"), 30,
                    "b02's and b03's alarms")  # fmt: skip
-        wait_until(lambda: {"b02", "b03"} <= {page_of(h)[0].split("/")[0]
-                                              for h in hook.received}, 15, "their pages")  # fmt: skip
+        wait_until(lambda: {"b02", "b03"} <= paged_beds(hook), 15, "their pages")
         published = {(t, p["seq"]) for t, p in feed1 + feed2 + feed3}
 
         def all_journaled() -> bool:
@@ -388,7 +391,8 @@ def test_sharding_by_ward_each_group_journals_and_pages_its_own_ward(
         publish_all(pub, east_feed + west_feed)
         w.wait_for(lambda w: pod_active(w, "b01") and pod_active(w, "b09"), 20, "both alarms")
         wait_until(lambda: east.metrics.journaled >= len(east_feed) + 1
-                   and west.metrics.journaled >= len(west_feed) + 1, 10, "both journaled")  # fmt: skip
+                   and west.metrics.journaled >= len(west_feed) + 1,
+                   10, "both journaled")  # fmt: skip
         time.sleep(0.5)
         assert east.shard.ignored >= len(west_feed) + 1
         assert west.shard.ignored >= len(east_feed) + 1
