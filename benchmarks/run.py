@@ -17,6 +17,7 @@ from benchmarks import (
     bench_replay,
     bench_review,
     bench_service,
+    bench_takeover,
 )
 
 
@@ -35,6 +36,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_service.main([]) or rc
     print()
     rc = bench_fuzz.main([]) or rc
+    print()
+    rc = bench_takeover.main([]) or rc
     return rc
 
 

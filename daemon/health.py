@@ -68,6 +68,7 @@ GAUGE_HELP = {
     "connected": "1 while connected to the broker",
     "engine_errors": "engine failures caught (each one logged)",
     "technical_alarms": "technical alarms of the service itself now active",
+    "shard_ignored": "messages of other wards' beds left to their group ([shard] wards)",
 }
 LABELLED_HELP = {
     "duplicates_total": "readings dropped as duplicates of one already counted, by profile",

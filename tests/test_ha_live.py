@@ -76,6 +76,11 @@ def health(port: int) -> dict[str, Any]:
     return body
 
 
+def scrape(port: int) -> str:
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=2) as r:
+        return str(r.read().decode())
+
+
 class Instance:
     """One `hourwatch run` process of the pair, with its own health port and log."""
 
@@ -273,6 +278,10 @@ def test_sigkill_of_the_active_mid_stream_the_standby_pages_nothing_lost_nothing
 
         wait_until(all_journaled, 30, "every reading journaled")
         time.sleep(1.0)  # anything sent twice would have arrived by now
+        metrics = scrape(b.port)
+        assert 'hourwatch_ha_active{group="hourwatch-pair"} 1' in metrics
+        assert 'hourwatch_ha_takeovers_total{group="hourwatch-pair"} 1' in metrics
+        assert "hourwatch_messages_journaled_total" in metrics  # the service's own, too
     finally:
         for inst in (a, b):
             if inst is not None:
@@ -412,3 +421,10 @@ def test_sharding_by_ward_each_group_journals_and_pages_its_own_ward(
     east_alarms = {a["bed"] for a in alarm_msgs(w) if a["ward"] == "icu-east"}
     west_alarms = {a["bed"] for a in alarm_msgs(w) if a["ward"] == "icu-west"}
     assert east_alarms == {"b01"} and west_alarms == {"b09"}
+
+
+def test_a_service_without_a_group_says_it_is_active(broker, tmp_path):  # noqa: F811
+    with running_service(broker, tmp_path / "j.db") as svc:
+        assert svc.health is not None
+        body = health(svc.health.address[1])
+    assert body["role"] == "active" and body["status"] == "ok"
