@@ -428,3 +428,40 @@ def test_a_service_without_a_group_says_it_is_active(broker, tmp_path):  # noqa:
         assert svc.health is not None
         body = health(svc.health.address[1])
     assert body["role"] == "active" and body["status"] == "ok"
+
+
+def test_the_live_service_journals_identical_events_in_sqlite_and_postgresql(
+    broker, pg, tmp_path  # noqa: F811
+):
+    """One scenario through the live service twice, on a clock that only moves when told:
+    once on a journal file, once on PostgreSQL. The journals hold the same events."""
+    from daemon.journal import SqliteJournal
+    from tests.broker import FakeClock
+
+    t0 = time.time()
+    start = t0 - 3 * 3600
+    feed = readings("rc-0101", start, 3.0)
+    out = []
+    for n, where in enumerate(({"journal__path": str(tmp_path / "j.db")},
+                               {"journal__url": str(pg)})):  # fmt: skip
+        clock = FakeClock(t0)
+        w = Watcher(broker, client_id=f"watch-{n}")
+        pub = publisher(broker, client_id=f"pub-{n}")
+        with running_service(broker, tmp_path / "j.db", w, clock=clock,
+                             broker__client_id=f"parity-{n}", **where) as svc:  # fmt: skip
+            publish_all(pub, [("hourwatch/beds/b01/context", context("rc-0101", start))])
+            publish_all(pub, feed)
+            wait_until(lambda s=svc: s.metrics.journaled >= len(feed) + 1, 15, "journaled")
+            w.wait_for(lambda w: pod_active(w, "b01"), 10, "the alarm")
+            clock.advance(1200)  # past the medium priority's first escalation (900 s)
+            svc.timer_fired()
+            w.wait_for(lambda w: [a for a in alarm_msgs(w) if a["state"] == "escalated"], 10,
+                       "the escalation")  # fmt: skip
+        pub.disconnect()
+        w.close()
+        j = SqliteJournal(tmp_path / "j.db") if n == 0 else PostgresJournal(pg)
+        with j:
+            out.append([(e.time, e.kind, e.bed, e.alarm_id, e.body)
+                        for e in j.events_between(None, None)])  # fmt: skip
+    assert [e[1] for e in out[0]].count("alarm") >= 3
+    assert out[0] == out[1]
