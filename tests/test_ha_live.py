@@ -32,6 +32,9 @@ from typing import Any
 
 import pytest
 
+# skipped, with the reason, where the optional driver is not installed
+pytest.importorskip("psycopg", reason="psycopg is not installed (.[postgresql])")
+
 from daemon.journal_api import PgUrl
 from daemon.journal_pg import PostgresJournal
 from daemon.profile_files import load_profiles

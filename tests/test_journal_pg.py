@@ -18,9 +18,10 @@ from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
-import psycopg
 import pytest
 
+# skipped, with the reason, where the optional driver is not installed
+psycopg = pytest.importorskip("psycopg", reason="psycopg is not installed (.[postgresql])")
 from daemon.config import load_config
 from daemon.engine.alarms import AlarmEvent
 from daemon.errors import UserError
