@@ -18,7 +18,7 @@ COPY device_profiles ./device_profiles
 COPY alert_rules ./alert_rules
 
 # Editable, so the bundled folders above stay where the code looks for them.
-RUN pip install -e . \
+RUN pip install -e '.[postgresql]' \
  && useradd --system --uid 10001 --home-dir /var/lib/hourwatch hourwatch \
  && mkdir -p /var/lib/hourwatch \
  && chown hourwatch:hourwatch /var/lib/hourwatch

@@ -2,15 +2,15 @@
 
 Measures, in one run, on the same simulated ~120-byte JSON meter messages:
 
-- journal x16:  `Journal.append_messages` in batches of 16 (one transaction, WAL fsynced:
+- journal x16:  `SqliteJournal.append_messages` in batches of 16 (one transaction, WAL fsynced:
                 synchronous=FULL), the service's flush size (FIELD-NOTES);
 - baseline x16: the same bytes appended to a plain file with one `os.fdatasync` per 16
                 messages (the call SQLite makes on Linux). The journal can beat it: after a
                 checkpoint the WAL is overwritten in place, so its sync flushes no file size;
 - journal x1:   one message per transaction, for reference;
-- read:         `Journal.messages_between` (what recovery reads) and `journal_records`
+- read:         `SqliteJournal.messages_between` (what recovery reads) and `journal_records`
                 (log records, what replay and export read) over everything written;
-- prune:        `Journal.prune` of old rows in batches of 2,000, and the longest single
+- prune:        `SqliteJournal.prune` of old rows in batches of 2,000, and the longest single
                 batch, i.e. the longest a prune holds the write lock.
 
 Throughput figures are the best of N runs (time.perf_counter); batch latencies are over all
@@ -28,7 +28,7 @@ import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from daemon.journal import DAY_S, Journal, journal_records
+from daemon.journal import DAY_S, SqliteJournal, journal_records
 
 T0 = 1_773_446_400.0  # 2026-03-14T00:00:00Z, an invented night
 Rows = list[tuple[float, str, bytes, int]]
@@ -47,7 +47,7 @@ def make_rows(n: int, t0: float = T0) -> Rows:
 def _journal_append(path: Path, rows: Rows, size: int) -> list[float]:
     """Seconds per batch."""
     lat = []
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         for k in range(0, len(rows), size):
             t = time.perf_counter()
             j.append_messages(rows[k : k + size])
@@ -81,7 +81,7 @@ def _ms(values: list[float], q: float) -> float:
 
 def measure(n: int, repeats: int, folder: Path) -> list[str]:
     rows = make_rows(n)
-    out = [f"Journal: {n} messages of ~{len(rows[0][2])} bytes, best of {repeats} runs"]
+    out = [f"SqliteJournal: {n} messages of ~{len(rows[0][2])} bytes, best of {repeats} runs"]
     out.append(f"{'path':<34}{'msg/s':>10}{'batch p50 ms':>14}{'batch p99 ms':>14}")
     paths = (
         ("journal, batches of 16 (fsync)", _journal_append, 16, n),
@@ -103,7 +103,7 @@ def measure(n: int, repeats: int, folder: Path) -> list[str]:
     # reads, over one journal holding every message
     path = folder / "read.db"
     _journal_append(path, rows, 16)
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         best = min(_timed(lambda: sum(1 for _ in j.messages_between(None, None)))
                    for _ in range(repeats))  # fmt: skip
     out.append(f"{'read: messages_between (bytes)':<34}{n / best:>10,.0f}")
@@ -124,7 +124,7 @@ def measure(n: int, repeats: int, folder: Path) -> list[str]:
     return out
 
 
-class _TimedPrune(Journal):
+class _TimedPrune(SqliteJournal):
     """Times each prune transaction: the longest a prune keeps another writer waiting."""
 
     def __init__(self, path: Path, *, retention_days: float) -> None:

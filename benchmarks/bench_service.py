@@ -33,7 +33,7 @@ from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
 from daemon.config import ServiceConfig
 from daemon.engine.alarms import AlarmEvent
 from daemon.engine.engine import Engine
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.local_broker import Mosquitto, mosquitto_binary
 from daemon.profile_files import load_profiles
 from daemon.rule_files import load_policy, load_rules
@@ -293,7 +293,7 @@ def bench_recovery(b: Mosquitto, tmp: Path, beds: int, hours: float) -> None:
     start = now - hours * 3600
     t = time.perf_counter()
     n = 0
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         ctxs = [(start - 60, f"hourwatch/beds/rb{i:03d}/context",
                  _ctx(f"rb{i:03d}", f"rc-rb{i:03d}"), 1) for i in range(beds)]  # fmt: skip
         j.append_messages(ctxs)
@@ -308,7 +308,7 @@ def bench_recovery(b: Mosquitto, tmp: Path, beds: int, hours: float) -> None:
     size = sum(p.stat().st_size for p in (path, path.with_name(path.name + "-wal")) if p.exists())
     t = time.perf_counter()
     rows = 0
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         for _ in j.messages_between(start - 3600, None):
             rows += 1
     read_s = time.perf_counter() - t

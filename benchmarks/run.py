@@ -18,6 +18,7 @@ from benchmarks import (
     bench_replay,
     bench_review,
     bench_service,
+    bench_takeover,
 )
 
 
@@ -38,6 +39,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_fuzz.main([]) or rc
     print()
     rc = bench_board.main([]) or rc
+    rc = bench_takeover.main([]) or rc
     return rc
 
 

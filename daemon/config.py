@@ -32,6 +32,7 @@ from .engine.engine import (
     UNBOUND_EXPIRY_S,
 )
 from .errors import UserError, describe_validation
+from .journal_api import JournalTarget, is_url, pg_url
 from .notify.settings import NotifyConfig
 
 ENV_USERNAME = "HOURWATCH_MQTT_USERNAME"
@@ -117,6 +118,57 @@ class JournalConfig(_Strict):
     # (docs/operations.md, "When the journal's disk is full").
     max_bytes: Annotated[int, Field(ge=0)] = 0
     full_retry_s: Annotated[float, Field(gt=0, le=300)] = 5.0
+    # A PostgreSQL journal instead of the file: a libpq URL without a password
+    # ("postgresql://hourwatch@db.example:5432/hourwatch"). The password comes from
+    # HOURWATCH_PG_PASSWORD, the file HOURWATCH_PG_PASSWORD_FILE names, PGPASSWORD or
+    # ~/.pgpass. With a URL, instances of one config form an active/standby group ([ha]).
+    url: Annotated[str, Field(min_length=1, max_length=2000)] | None = None
+    pool_size: Annotated[int, Field(ge=2, le=64)] = 4  # connections per instance
+
+    @field_validator("url")
+    @classmethod
+    def _url(cls, v: str | None) -> str | None:
+        if v is not None:
+            try:
+                pg_url(v)
+            except UserError as exc:
+                raise ValueError(str(exc).removeprefix("journal.url: ")) from None
+        return v
+
+    def target(self) -> JournalTarget:
+        """Where the journal is: the PostgreSQL URL when given, else the file."""
+        return pg_url(self.url) if self.url is not None else self.path
+
+
+class HaConfig(_Strict):
+    """Active/standby (daemon/ha.py); only with a PostgreSQL journal."""
+
+    # The group's name in the lease table; default: broker.client_id (one group per
+    # client id: the active is the only one connected with it).
+    group: Annotated[str, Field(min_length=1, max_length=128)] | None = None
+    # This instance's name in the lease table and the logs; default: host:pid.
+    instance: Annotated[str, Field(min_length=1, max_length=128)] | None = None
+    # An active that has not renewed its lease for this long is replaced. A dead one
+    # (its database connection gone) is replaced at the next poll.
+    lease_s: Annotated[float, Field(ge=2, le=300)] = 8.0
+    # A standby looks at the lease this often.
+    poll_s: Annotated[float, Field(ge=0.1, le=30)] = 0.5
+
+    @model_validator(mode="after")
+    def _poll(self) -> HaConfig:
+        if self.poll_s * 2 > self.lease_s:
+            raise ValueError("poll_s must be at most half of lease_s")
+        return self
+
+
+class ShardConfig(_Strict):
+    """Sharding a hospital by ward: this group watches these wards only. A bed context
+    naming another ward is ignored (logged once per bed), and so are that bed's inputs
+    and its meters' readings. Empty: every ward."""
+
+    wards: list[Annotated[str, Field(min_length=1, max_length=64)]] = Field(
+        default_factory=list
+    )
 
 
 class HealthConfig(_Strict):
@@ -252,6 +304,8 @@ class ServiceConfig(_Strict):
     limits: LimitsConfig = LimitsConfig()
     identifiers: IdentifiersConfig = IdentifiersConfig()
     ack: AckConfig = AckConfig()
+    ha: HaConfig = HaConfig()
+    shard: ShardConfig = ShardConfig()
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
@@ -323,7 +377,7 @@ def load_config(
     path: Path | None = None,
     *,
     broker: str | None = None,
-    journal: Path | None = None,
+    journal: Path | str | None = None,
     env: Mapping[str, str] | None = None,
 ) -> ServiceConfig:
     """The config file (or the defaults), then command-line options, then secrets from
@@ -346,8 +400,11 @@ def load_config(
             raise UserError(f"--broker: {exc}") from None
         _set(data, "broker.host", host)
         _set(data, "broker.port", port)
-    if journal is not None:
+    if isinstance(journal, str) and is_url(journal):
+        _set(data, "journal.url", journal)
+    elif journal is not None:
         _set(data, "journal.path", str(journal))
+        _set(data, "journal.url", None)
     if env.get(ENV_USERNAME):
         _set(data, "broker.username", env[ENV_USERNAME])
     if env.get(ENV_PASSWORD):
@@ -370,4 +427,8 @@ def load_config(
         if cfg.notify.ack_base_url and not (cfg.health.listen or cfg.board.listen):
             raise UserError(f"{where}: notify.ack_base_url: the links are served on "
                             "health.listen and board.listen, which are both off")  # fmt: skip
+    if cfg.journal.url is not None and cfg.board.listen and cfg.board.listen == cfg.health.listen:
+        # an active/standby member serves /health itself, and the board only while active
+        raise UserError(f"{where}: board.listen: with a PostgreSQL journal (active/standby) the "
+                        "board needs an address of its own, not health.listen's")  # fmt: skip
     return cfg

@@ -76,6 +76,7 @@ GAUGE_HELP = {
     "connected": "1 while connected to the broker",
     "engine_errors": "engine failures caught (each one logged)",
     "technical_alarms": "technical alarms of the service itself now active",
+    "shard_ignored": "messages of other wards' beds left to their group ([shard] wards)",
 }
 LABELLED_HELP = {
     "duplicates_total": "readings dropped as duplicates of one already counted, by profile",
@@ -188,3 +189,29 @@ def exposition(families: Iterable[Metric]) -> str:
     registry = CollectorRegistry(auto_describe=False)
     registry.register(_Families(families))
     return generate_latest(registry).decode("utf-8")
+
+
+def render_ha(role: str, group: str, token: int | None, takeovers: int, lease_lost: int,
+              last_takeover_s: float | None) -> str:  # fmt: skip
+    """Active/standby (daemon/ha.py) in Prometheus text: appended to /metrics."""
+    families: list[Metric] = []
+
+    def metric(name: str, kind: str, help_: str, value: float) -> None:
+        family = (CounterMetricFamily if kind == "counter" else GaugeMetricFamily)(
+            f"hourwatch_{name}", help_, labels=["group"]
+        )
+        family.add_metric([group], value)
+        families.append(family)
+
+    metric("ha_active", "gauge", "1 while this instance is its group's active, 0 on standby",
+           1.0 if role == "active" else 0.0)  # fmt: skip
+    metric("ha_takeovers", "counter", "times this instance took the lease and became "
+           "active (its first start included)", takeovers)  # fmt: skip
+    metric("ha_lease_lost", "counter", "times this instance lost the lease while active "
+           "(replaced, or not renewed in time) and stepped down", lease_lost)  # fmt: skip
+    metric("ha_lease_token", "gauge", "the fencing token this instance writes under "
+           "(0 on standby)", float(token or 0) if role == "active" else 0.0)  # fmt: skip
+    if last_takeover_s is not None:
+        metric("ha_takeover_seconds", "gauge", "the last takeover: lease taken to journal "
+               "recovered and broker connection started", last_takeover_s)  # fmt: skip
+    return exposition(families)

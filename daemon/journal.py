@@ -6,13 +6,15 @@ Durability: WAL mode with synchronous=FULL, so a commit returns only after the w
 log is fsynced, and every append is one transaction. The service acknowledges a message
 to the broker only after `append_messages` has returned.
 
-Threads: a `Journal` owns one writer connection. Use it from one thread at a time (it may be
-created in one thread and used in another); a pruning thread opens its own `Journal` on the
+Threads: a `SqliteJournal` owns one writer connection. Use it from one thread at a time (it may be
+created in one thread and used in another); a pruning thread opens its own `SqliteJournal` on the
 same file. Reads (`messages_between`, `events_between`, `journal_records`) open a read-only
 connection of their own, so they see one consistent snapshot and never take the writer's lock.
 
 The file says what it is: the SQLite header carries APPLICATION_ID, and PRAGMA user_version
 the schema version. Any other SQLite file, or a journal from a newer Hourwatch, is refused.
+Versioned migrations (`MIGRATIONS`) bring an older journal up to date when the service
+opens it; readers never change the file (every version they meet has what they read).
 Both are read through SQLite, never with open(): on Linux, closing any descriptor of a file
 drops all of the process's POSIX locks on it, the writer connection's included, and another
 process closing its own connection could then checkpoint and delete the WAL under the writer.
@@ -29,6 +31,7 @@ pruning (AUTOINCREMENT).
 from __future__ import annotations
 
 import base64
+import contextlib
 import json
 import math
 import os
@@ -48,7 +51,7 @@ from .engine.strictjson import NotJson, validate
 from .errors import UserError
 from .logfile import BadLine, LogRecord
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # the last of MIGRATIONS
 APPLICATION_ID = 0x48774A31  # "HwJ1": marks an SQLite file as a Hourwatch journal
 SQLITE_HEADER = b"SQLite format 3\x00"
 DAY_S = 86400.0
@@ -66,7 +69,7 @@ CHECKPOINT_STUCK_CALLS = 10  # incomplete PASSIVE checkpoints in a row before fo
 FORCE_BUSY_MS = 200  # a forced checkpoint waits this long for readers, then gives up
 CHECKPOINT_MODES = ("PASSIVE", "FULL", "RESTART", "TRUNCATE")
 
-_SCHEMA = (
+_V1 = (
     """CREATE TABLE messages (
         id INTEGER PRIMARY KEY AUTOINCREMENT,  -- receive order
         recv_time REAL NOT NULL,               -- epoch seconds UTC, the service's clock
@@ -88,6 +91,48 @@ _SCHEMA = (
     "CREATE INDEX events_bed_time ON events (bed, time)",
     """CREATE INDEX events_undelivered ON events (id)
         WHERE delivered_at IS NULL AND kind IN ('alarm', 'advice')""",
+)
+# The delivery outbox (daemon/notify/store.py), which version 1 journals got on the
+# notifier's first start: IF NOT EXISTS, so those migrate as they are.
+OUTBOX_TABLES = (
+    """CREATE TABLE IF NOT EXISTS deliveries (
+        id INTEGER PRIMARY KEY AUTOINCREMENT,
+        event_id INTEGER NOT NULL,             -- the journaled event this page carries
+        alarm_id TEXT NOT NULL,
+        state TEXT NOT NULL,
+        tier INTEGER NOT NULL,
+        reason TEXT NOT NULL,
+        event_time REAL NOT NULL,              -- the event's engine time
+        channel TEXT NOT NULL,
+        recipient TEXT NOT NULL,               -- an address of that channel
+        role TEXT NOT NULL,
+        status TEXT NOT NULL,                  -- pending, sending, confirmed, cancelled, expired
+        attempts INTEGER NOT NULL DEFAULT 0,
+        created REAL NOT NULL,                 -- service clock when queued
+        next_at REAL NOT NULL,                 -- next attempt not before
+        sent_at REAL,                          -- latest attempt began
+        done_at REAL,                          -- confirmed, cancelled or expired at
+        answer TEXT,                           -- what the channel last answered
+        UNIQUE (alarm_id, state, tier, reason, event_time, channel, recipient))""",
+    """CREATE INDEX IF NOT EXISTS deliveries_due ON deliveries (channel, next_at)
+        WHERE status = 'pending'""",
+    "CREATE INDEX IF NOT EXISTS deliveries_alarm ON deliveries (alarm_id)",
+    """CREATE TABLE IF NOT EXISTS notify_cursor (
+        one INTEGER PRIMARY KEY CHECK (one = 1),
+        event_id INTEGER NOT NULL)             -- events up to here have their deliveries""",
+    """CREATE TABLE IF NOT EXISTS ack_links (
+        token_id TEXT PRIMARY KEY,             -- one acknowledgement link, used once
+        alarm_id TEXT NOT NULL,
+        recipient TEXT NOT NULL,
+        role TEXT NOT NULL,
+        used_at REAL NOT NULL)""",
+    "CREATE INDEX IF NOT EXISTS events_notify_alarm ON events (id) WHERE kind = 'notify_alarm'",
+)
+# (version, what it does, statements): applied in order, each in one transaction with
+# its user_version, so a crash leaves a journal at one version or the next.
+MIGRATIONS: tuple[tuple[int, str, tuple[str, ...]], ...] = (
+    (1, "messages and events", _V1),
+    (2, "delivery outbox", OUTBOX_TABLES),
 )
 
 
@@ -190,7 +235,7 @@ class BedFilter:
         return isinstance(alarm, str) and alarm.startswith(self.bed + "/")
 
 
-class Journal:
+class SqliteJournal:
     """The service's journal file (created with its schema when missing or empty)."""
 
     def __init__(self, path: Path, *, retention_days: float = 30.0, max_bytes: int = 0) -> None:
@@ -375,6 +420,13 @@ class Journal:
         except OSError:
             return 0
 
+    def size_bytes(self) -> int:
+        """The database file plus its WAL (stat only)."""
+        total = self.wal_bytes()
+        with contextlib.suppress(OSError):
+            total += self.path.stat().st_size
+        return total
+
     def close(self) -> None:
         self._db.close()
 
@@ -475,27 +527,35 @@ def _identify(db: sqlite3.Connection, path: Path) -> bool:
                 f"{path}: journal schema {version} is newer than this Hourwatch reads "
                 f"({SCHEMA_VERSION}); use a newer Hourwatch"
             )
-        return True
+        return bool(version > 0)
     empty = db.execute("SELECT count(*) FROM sqlite_master").fetchone()[0] == 0
     if app == 0 and version == 0 and empty:
         return False
     raise UserError(f"{path}: not a Hourwatch journal (an SQLite database of something else)")
 
 
+def _version(db: sqlite3.Connection) -> int:
+    return int(db.execute("PRAGMA user_version").fetchone()[0])
+
+
 def _init_schema(db: sqlite3.Connection, path: Path) -> None:
-    if _identify(db, path):
+    """Create the journal, or migrate it to SCHEMA_VERSION, one version per transaction."""
+    if _identify(db, path) and _version(db) == SCHEMA_VERSION:
         return
-    db.execute("BEGIN IMMEDIATE")  # another process may be creating it at the same moment
-    try:
-        if not _identify(db, path):
-            for sql in _SCHEMA:
-                db.execute(sql)
-            db.execute(f"PRAGMA application_id = {APPLICATION_ID}")
-            db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
-        db.execute("COMMIT")
-    except BaseException:
-        _rollback(db)
-        raise
+    for version, _what, statements in MIGRATIONS:
+        db.execute("BEGIN IMMEDIATE")  # another process may be migrating at the same moment
+        try:
+            current = _version(db) if _identify(db, path) else 0
+            if current < version:
+                for sql in statements:
+                    db.execute(sql)
+                if version == 1:
+                    db.execute(f"PRAGMA application_id = {APPLICATION_ID}")
+                db.execute(f"PRAGMA user_version = {version}")
+            db.execute("COMMIT")
+        except BaseException:
+            _rollback(db)
+            raise
 
 
 def _open_reader(path: Path) -> sqlite3.Connection:

@@ -53,7 +53,8 @@ from .engine.rules import (
     VolumeBelow,
 )
 from .engine.timefmt import iso
-from .journal import BedFilter, Journal, StoredEvent
+from .journal import BedFilter, StoredEvent
+from .journal_api import Journal
 
 HOUR = 3600.0
 

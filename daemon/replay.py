@@ -9,12 +9,12 @@ from __future__ import annotations
 import sys
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Literal, TextIO
 
 from .engine.effects import Effect
 from .engine.engine import Engine
 from .engine.profiles import DeviceProfile
+from .journal_api import JournalTarget
 from .logfile import BadLine, LogRecord
 from .sources import open_source
 
@@ -68,7 +68,7 @@ def drive(
 
 
 def replay_file(
-    path: Path,
+    path: JournalTarget,
     engine: Engine | list[DeviceProfile],
     warn: TextIO | Literal["stderr"] | None = "stderr",
     on_effects: Callable[[list[Effect]], None] | None = None,

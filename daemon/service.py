@@ -44,7 +44,8 @@ from .engine.outcomes import Outcome
 from .engine.timefmt import iso
 from .errors import UserError
 from .health import Metrics, exposition
-from .journal import Journal, StoredEvent, is_full
+from .journal import StoredEvent
+from .journal_api import Fenced, FenceToken, Journal, is_full, open_journal
 from .messages import (
     SCHEMA,
     ActiveAlarm,
@@ -61,10 +62,12 @@ from .mqtt_ingest import Connection, Inbound, MqttLink, Published
 from .notify.acklinks import AckOutcome
 from .notify.notifier import Notifier
 from .notify.settings import check_notify, policy_roles
+from .notify.store import open_store
 from .profile_files import load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover
 from .rule_files import load_advice, load_policy, load_rules
+from .shard import WardShard
 from .web.live import ChangeFeed
 from .web.marks import ReadingMarks
 
@@ -226,8 +229,13 @@ class Service:
         *,
         clock: Callable[[], float] = time.time,
         clock_rate: float = 1.0,
+        fence: FenceToken | None = None,
     ) -> None:
         self.cfg = cfg
+        # The lease this instance is active under (daemon/ha.py): every journal write
+        # checks it, so a replaced active writes nothing. None: no active/standby group.
+        self.fence = fence
+        self.fenced = False  # lost the lease: stop without saying anything on the broker
         self.clock = clock
         # seconds of `clock` per wall-clock second: the demo runs a simulated day in
         # minutes, and the wake-up job must then wait in wall time
@@ -307,8 +315,11 @@ class Service:
         self.notifier: Notifier | None = None
         if cfg.notify.enabled:
             secrets = check_notify(cfg.notify, policy_roles(self.policy), "configuration")
-            self.notifier = Notifier(cfg.notify, secrets, cfg.journal.path, clock=clock,
-                                     log=self.log)  # fmt: skip
+            where = cfg.journal.target()
+            self.notifier = Notifier(cfg.notify, secrets, where, clock=clock, log=self.log,
+                                     store_factory=lambda w: open_store(w, fence))  # fmt: skip
+        # Sharding by ward ([shard] wards): other wards' beds are not ours to watch.
+        self.shard = WardShard(cfg.shard.wards, self.prefix, profiles, self.log)
 
     # --- lifecycle --------------------------------------------------------------
     def start(self) -> None:
@@ -329,10 +340,12 @@ class Service:
         # open and close the database file: in one process, closing any descriptor of a
         # file drops all its POSIX locks, including the writer's. So recovery gets a
         # journal of its own, closed before the worker's long-lived one is opened.
-        with Journal(cfg.journal.path, retention_days=cfg.journal.retention_days) as j:
+        where, jc = cfg.journal.target(), cfg.journal
+        with open_journal(where, retention_days=jc.retention_days, fence=self.fence) as j:
             self._recover(j)
-        self.journal = Journal(cfg.journal.path, retention_days=cfg.journal.retention_days,
-                               max_bytes=cfg.journal.max_bytes)  # fmt: skip
+        self.journal = open_journal(where, retention_days=jc.retention_days,
+                                    max_bytes=jc.max_bytes, fence=self.fence,
+                                    pool_size=jc.pool_size)  # fmt: skip
         will = offline_status(self.clock(), "connection lost", self.stats.started)
         self.link = MqttLink(
             cfg.broker, self.subscriptions, self.queue, self.control,
@@ -358,8 +371,14 @@ class Service:
         self.log.info(
             "service_started", broker=f"{cfg.broker.host}:{cfg.broker.port}",
             protocol=cfg.broker.protocol, client_id=cfg.broker.client_id,
-            journal=str(cfg.journal.path), subscriptions=self.subscriptions,
+            journal=str(where), subscriptions=self.subscriptions,
         )  # fmt: skip
+
+    def step_down(self, reason: str) -> None:
+        """This instance lost its group's lease (daemon/ha.py): stop at once, acknowledging,
+        journaling and publishing nothing more (the new active does that)."""
+        self.fenced = True
+        self.stop(reason)
 
     def stop(self, reason: str = "stopped") -> None:
         """Drain what was received, publish the status "offline", disconnect cleanly."""
@@ -373,7 +392,7 @@ class Service:
             self.queue.put(_STOP)
             self._worker.join(STOP_CONFIRM_S * 3 + 5)
         if self.link is not None:
-            if self.failed is not None and self.link.connected.is_set():
+            if self.failed is not None and self.link.connected.is_set() and not self.fenced:
                 # the worker is gone: say so in the retained status before the clean
                 # disconnect (which sends no last will)
                 status = offline_status(self.clock(), reason, self.stats.started)
@@ -473,6 +492,10 @@ class Service:
                 if time.monotonic() >= self._next_housekeeping:
                     self._next_housekeeping = time.monotonic() + HOUSEKEEPING_EVERY_S
                     self._housekeeping()
+        except Fenced as exc:  # replaced by another instance: nothing was written
+            self.fenced = True
+            self.failed = f"fenced: {exc}"
+            self.log.error("lease_lost_on_write", error=str(exc))
         except Exception as exc:  # never ack what was not journaled: die loudly instead
             self.failed = f"{type(exc).__name__}: {exc}"
             self.log.critical("worker_failed", error=self.failed, exc_info=True)
@@ -538,12 +561,15 @@ class Service:
         # The engine lock is held from journaling to feeding, so each message is journaled
         # with the very time the engine used for it, and a timer tick cannot fall between:
         # a restart's re-feed of the journal then gives exactly the live events.
+        # Another group's wards ([shard]): acknowledged in order, never journaled or evaluated.
+        ours = self.shard.admit(batch)
         with self.lock:
             times = []
             for m in batch:
                 self._now = max(self._now, m.recv_time)  # time.time() can step back
                 times.append(self._now)
-            rows = [(t, m.topic, m.payload, m.qos) for t, m in zip(times, batch, strict=True)]
+            rows = [(t, m.topic, m.payload, m.qos)
+                    for t, m, mine in zip(times, batch, ours, strict=True) if mine]  # fmt: skip
             try:
                 self.journal.append_messages(rows)  # durable on return
             except Exception as exc:
@@ -565,7 +591,9 @@ class Service:
                     stale += 1  # an earlier connection's id: the broker redelivers it
             effects, self._timer_effects = self._timer_effects, []
             arrived: dict[int, float] = {}  # id(alarm event) -> its reading's arrival
-            for t, m in zip(times, batch, strict=True):
+            for t, m, mine in zip(times, batch, ours, strict=True):
+                if not mine:
+                    continue
                 try:
                     effects += self.engine.advance(t)
                     stepped = self.engine.step(m.topic, m.payload, t)
@@ -582,7 +610,7 @@ class Service:
         self.changes.touch()  # any bed's output may have moved
         with self.metrics.lock:
             self.metrics.received += len(batch)
-            self.metrics.journaled += len(batch)
+            self.metrics.journaled += len(rows)
             self.metrics.acked += acked
             self.metrics.stale_acks += stale
         self._emit(effects, arrived)
@@ -645,6 +673,8 @@ class Service:
     def _finish(self) -> None:
         """At stop: send what is waiting, wait briefly for confirmations, say offline."""
         assert self.outbox is not None and self.journal is not None and self.link is not None
+        if self.fenced:
+            return  # not ours any more: what was received stays with the broker
         with self.lock:
             effects, self._timer_effects = self._timer_effects, []
         self._emit(effects)
@@ -1050,6 +1080,7 @@ class Service:
         outbox = self.outbox
         body: dict[str, Any] = {
             "status": ("degraded" if degraded else "ok") if ok else "unhealthy",
+            "role": "active",  # a service without a group is always its own active (ha.py)
             "connected": self._connected,
             "worker_alive": alive,
             "worker_error": self.failed,
@@ -1079,9 +1110,14 @@ class Service:
         outbox = self.outbox
         size = 0
         path = self.cfg.journal.path
-        for p in (path, path.with_name(path.name + "-wal")):
-            with contextlib.suppress(OSError):
-                size += p.stat().st_size
+        journal = self.journal
+        if journal is not None:
+            with contextlib.suppress(Exception):  # a scrape must not fail on the journal
+                size = journal.size_bytes()
+        else:
+            for p in (path, path.with_name(path.name + "-wal")):
+                with contextlib.suppress(OSError):
+                    size += p.stat().st_size
         link = self.link
         gauges = {
             "queue_depth": float(self.queue.qsize()),
@@ -1095,6 +1131,7 @@ class Service:
             "journal_bytes": float(size),
             "engine_errors": float(self.stats.engine_errors),
             "technical_alarms": float(len(self.stats.technical)),
+            "shard_ignored": float(self.shard.ignored),
         }
         labelled: list[tuple[str, dict[str, str], float]] = []
         with self.lock:  # engine counters: read under the engine lock

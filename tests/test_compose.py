@@ -289,7 +289,7 @@ def test_a_broker_crash_keeps_what_it_queued_for_a_stopped_service(tmp_path: Pat
     import json as _json
     import signal as _signal
 
-    from daemon.journal import Journal
+    from daemon.journal import SqliteJournal
     from tests.broker import publish_all, publisher, running_service
     from tests.test_service import context, readings
 
@@ -315,7 +315,7 @@ def test_a_broker_crash_keeps_what_it_queued_for_a_stopped_service(tmp_path: Pat
             deadline = time.monotonic() + 20
             while svc.metrics.journaled < 601 and time.monotonic() < deadline:
                 time.sleep(0.05)
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         seqs = {_json.loads(m.payload)["seq"] for m in j.messages_between(None, None)
                 if m.topic.startswith("meters/")}  # fmt: skip
     assert seqs == {p["seq"] for _, p in feed}

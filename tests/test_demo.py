@@ -12,7 +12,7 @@ import pytest
 
 from daemon.caution import CAUTION
 from daemon.cli import main
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.local_broker import mosquitto_binary
 
 pytestmark = pytest.mark.skipif(mosquitto_binary() is None, reason="mosquitto not installed")
@@ -36,7 +36,7 @@ def test_demo_runs_a_ward_and_its_journal_replays_to_the_same_alarms(
     journal = tmp_path / "journal.db"
     assert journal.is_file()
 
-    with Journal(journal) as j:
+    with SqliteJournal(journal) as j:
         live = {
             (e.body["alarm_id"], e.body["state"], e.body["reason"], e.body["time"])
             for e in j.events_between(None, None)

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 
 from daemon.engine.timefmt import iso
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.logfile import read_log
 from tests.test_replay_cli import run, run_process
 
@@ -48,7 +48,7 @@ def night_journal(tmp_path_factory: pytest.TempPathFactory) -> Path:
     path = tmp_path_factory.mktemp("journal") / "night.db"
     rows = example_rows()
     mid = rows[len(rows) // 2][0]
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         for k in range(0, len(rows), 16):  # batches of 16, as the service flushes
             j.append_messages(rows[k : k + 16])
         j.append_messages(odd_rows(mid))  # received out of time order: replay copes
@@ -224,13 +224,13 @@ def test_refused_content_is_redacted_and_replays_the_same(capsys, tmp_path: Path
     path = tmp_path / "refused.db"
     rows = example_rows()
     mid = rows[len(rows) // 2][0]
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         for k in range(0, len(rows), 16):
             j.append_messages(rows[k : k + 16])
         j.append_messages(refused_rows(mid))
         j.append_messages(odd_rows(mid + 10))
     # the journal keeps what was received, as received
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         assert sum(SENSITIVE.encode() in m.payload or SENSITIVE in m.topic
                    for m in j.messages_between(None, None)) == 5  # fmt: skip
     exported = tmp_path / "all.jsonl"

@@ -22,7 +22,7 @@ from daemon.journal import (
     DAY_S,
     SCHEMA_VERSION,
     BedFilter,
-    Journal,
+    SqliteJournal,
     StoredMessage,
     is_journal,
     is_sqlite,
@@ -55,7 +55,7 @@ def test_messages_round_trip_with_binary_payloads_and_ids_in_order(jpath: Path) 
         (T0 + 3.0, "odd/empty", b"", 0),
         (T0 + 4.0, "odd/nul", b"\x00\xff\x00", 1),
     ]
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         ids = j.append_messages(rows[:2])
         ids += j.append_messages(rows[2:])
         assert ids == sorted(ids) and len(set(ids)) == len(rows)
@@ -65,10 +65,10 @@ def test_messages_round_trip_with_binary_payloads_and_ids_in_order(jpath: Path) 
 
 
 def test_ids_continue_after_reopen_and_after_everything_was_pruned(jpath: Path) -> None:
-    with Journal(jpath, retention_days=1) as j:
+    with SqliteJournal(jpath, retention_days=1) as j:
         first = j.append_messages([(T0, "a/b", b"1", 1), (T0 + 1, "a/b", b"2", 1)])
         assert j.prune(T0 + 10 * DAY_S) == 2
-    with Journal(jpath, retention_days=1) as j:
+    with SqliteJournal(jpath, retention_days=1) as j:
         (third,) = j.append_messages([(T0 + 10 * DAY_S, "a/b", b"3", 1)])
     assert third > max(first)  # AUTOINCREMENT: an id is never handed out twice
 
@@ -76,7 +76,7 @@ def test_ids_continue_after_reopen_and_after_everything_was_pruned(jpath: Path) 
 def test_time_ranges_are_half_open_and_keep_receive_order(jpath: Path) -> None:
     # receive times go back once (a clock step); the journal keeps receive (id) order
     times = [T0, T0 + 60, T0 + 30, T0 + 120, T0 + 180]
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         ids = j.append_messages([(t, f"m/{k}", b"{}", 1) for k, t in enumerate(times)])
         got = [m.id for m in j.messages_between(T0 + 30, T0 + 180)]
         assert got == [ids[1], ids[2], ids[3]]  # 180 excluded, 30 included
@@ -86,7 +86,7 @@ def test_time_ranges_are_half_open_and_keep_receive_order(jpath: Path) -> None:
 
 def test_an_open_ended_range_is_read_through_the_time_index(jpath: Path) -> None:
     """Recovery reads the last 24 h of a 30-day journal: never a scan of the whole table."""
-    Journal(jpath).close()
+    SqliteJournal(jpath).close()
     db = sqlite3.connect(jpath)
     plan = db.execute(
         "EXPLAIN QUERY PLAN SELECT id FROM messages WHERE recv_time >= ? AND recv_time < ? "
@@ -106,7 +106,7 @@ def test_events_round_trip_by_time_and_bed(jpath: Path) -> None:
         (T0 + 9, "service", None, None, {"status": "online"}),
         (T0 + 12, "advice", "b01", None, {"summary": "s"}),
     ]
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         ids = j.append_events(rows)
         assert ids == sorted(ids)
         every = list(j.events_between(None, None))
@@ -120,7 +120,7 @@ def test_events_round_trip_by_time_and_bed(jpath: Path) -> None:
 
 
 def test_undelivered_and_mark_delivered(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         a1, n1, adv, a2 = j.append_events([
             (T0, "alarm", "b01", "b01/r/1", {"state": "active"}),
             (T0 + 1, "notice", "b01", None, {}),
@@ -136,7 +136,7 @@ def test_undelivered_and_mark_delivered(jpath: Path) -> None:
 
 
 def test_alarm_event_keys_for_reconciliation(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_events([
             (T0, "alarm", "b01", "b01/r/1", {"state": "active", "reason": "condition_met"}),
             (T0 + 60, "alarm", "b01", "b01/r/1", {"state": "escalated", "reason": "due"}),
@@ -147,7 +147,7 @@ def test_alarm_event_keys_for_reconciliation(jpath: Path) -> None:
 
 
 def test_a_reader_sees_one_snapshot_while_the_writer_goes_on(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages([(T0 + k, "m/x", b"{}", 1) for k in range(3)])
         it = j.messages_between(None, None)
         first = next(it)
@@ -157,7 +157,7 @@ def test_a_reader_sees_one_snapshot_while_the_writer_goes_on(jpath: Path) -> Non
 
 # --- durability settings ---------------------------------------------------------------
 def test_wal_full_sync_and_schema_marks_are_set(jpath: Path) -> None:
-    j = Journal(jpath)
+    j = SqliteJournal(jpath)
     assert j._db.execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL: fsync every commit
     assert j._db.execute("PRAGMA busy_timeout").fetchone()[0] > 0
     assert j._db.execute("PRAGMA wal_autocheckpoint").fetchone()[0] == 0  # not inside commits
@@ -169,13 +169,13 @@ def test_wal_full_sync_and_schema_marks_are_set(jpath: Path) -> None:
     other.close()
     j.close()
     # and again when an existing journal is opened
-    with Journal(jpath) as j2:
+    with SqliteJournal(jpath) as j2:
         assert j2._db.execute("PRAGMA synchronous").fetchone()[0] == 2
         assert j2._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
 
 
 def test_each_append_is_one_committed_transaction(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         trace: list[str] = []
         j._db.set_trace_callback(trace.append)
         j.append_messages([(T0 + k, "m/x", b"{}", 1) for k in range(16)])
@@ -192,7 +192,7 @@ def test_each_append_is_one_committed_transaction(jpath: Path) -> None:
 
 
 # --- pruning ---------------------------------------------------------------------------
-def _fill(j: Journal, n_old: int, n_new: int, now: float) -> None:
+def _fill(j: SqliteJournal, n_old: int, n_new: int, now: float) -> None:
     old = now - 31 * DAY_S  # retention default 30 days, from issue 4
     new = now - 29 * DAY_S
     j.append_messages([(old + k, "m/x", b"{}", 1) for k in range(n_old)])
@@ -203,7 +203,7 @@ def _fill(j: Journal, n_old: int, n_new: int, now: float) -> None:
 
 def test_prune_deletes_only_rows_past_retention(jpath: Path) -> None:
     now = T0 + 40 * DAY_S
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         _fill(j, 250, 40, now)
         assert j.prune(now, batch=100) == 250 + 25
         assert len(list(j.messages_between(None, None))) == 40
@@ -214,7 +214,7 @@ def test_prune_deletes_only_rows_past_retention(jpath: Path) -> None:
 
 def test_prune_commits_every_batch_and_lets_another_writer_in_between(jpath: Path) -> None:
     now = T0 + 40 * DAY_S
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         _fill(j, 1000, 10, now)
         other = sqlite3.connect(jpath, isolation_level=None, timeout=0)  # no waiting at all
         trace: list[str] = []
@@ -242,7 +242,7 @@ def test_prune_commits_every_batch_and_lets_another_writer_in_between(jpath: Pat
 
 def test_prune_max_batches_stops_early(jpath: Path) -> None:
     now = T0 + 40 * DAY_S
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         _fill(j, 300, 0, now)
         # at most 2 batches per table: 200 of the 300 messages, and all 30 events
         assert j.prune(now, batch=100, max_batches=2) == 200 + 30
@@ -255,7 +255,7 @@ def test_prune_one_batch_at_a_time_reaches_the_events_too(jpath: Path, n_old_mes
     the messages have nothing to prune or a backlog of many batches."""
     now = T0 + 40 * DAY_S
     old = now - 31 * DAY_S  # past the 30-day default retention
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages([(old + k, "m/x", b"{}", 1) for k in range(n_old_messages)])
         j.append_events([(old, "notice", "b01", None, {})])
         j.append_events([(now, "notice", "b01", None, {})])  # within retention: stays
@@ -281,7 +281,7 @@ def test_other_sqlite_file_is_refused_and_left_alone(tmp_path: Path) -> None:
     db.close()
     before = other.read_bytes()
     with pytest.raises(UserError) as exc:
-        Journal(other)
+        SqliteJournal(other)
     assert "not a Hourwatch journal" in _one_line(exc)
     with pytest.raises(UserError) as exc:
         journal_records(other)
@@ -291,14 +291,14 @@ def test_other_sqlite_file_is_refused_and_left_alone(tmp_path: Path) -> None:
 
 
 def test_newer_schema_is_refused(jpath: Path) -> None:
-    Journal(jpath).close()
+    SqliteJournal(jpath).close()
     assert is_journal(jpath)
     db = sqlite3.connect(jpath)
     db.execute(f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
     db.commit()
     db.close()
     with pytest.raises(UserError) as exc:
-        Journal(jpath)
+        SqliteJournal(jpath)
     assert "newer" in _one_line(exc)
     with pytest.raises(UserError) as exc:
         list(journal_records(jpath))
@@ -309,21 +309,21 @@ def test_text_file_and_missing_file(tmp_path: Path) -> None:
     log = tmp_path / "night.jsonl"
     log.write_text('{"time": "2026-03-14T00:00:00Z", "topic": "t", "payload": "x"}\n')
     with pytest.raises(UserError) as exc:
-        Journal(log)
+        SqliteJournal(log)
     assert "not an SQLite database" in _one_line(exc)
     assert not is_journal(log) and not is_journal(tmp_path / "missing.db")
     with pytest.raises(UserError) as exc:
         journal_records(tmp_path / "missing.db")
     assert "no such file" in _one_line(exc)
     with pytest.raises(UserError) as exc:
-        Journal(tmp_path / "no-such-folder" / "j.db")
+        SqliteJournal(tmp_path / "no-such-folder" / "j.db")
     _one_line(exc)
 
 
 def test_empty_file_becomes_a_journal(tmp_path: Path) -> None:
     p = tmp_path / "new.db"
     p.touch()
-    with Journal(p) as j:
+    with SqliteJournal(p) as j:
         j.append_messages([(T0, "m/x", b"{}", 1)])
     assert is_journal(p)
 
@@ -357,7 +357,7 @@ def test_log_payload_keeps_non_utf8_bytes_recoverable() -> None:
 
 
 def test_journal_records_times_topics_and_skipped_topics(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         ids = j.append_messages([
             (T0 + 0.123456, "meters/m-01/volume", b'{"volume_ml": 1}', 1),
             (T0 + 1, "x" * 513, b"{}", 0),  # legal in MQTT, too long for the log format
@@ -390,7 +390,7 @@ def test_bed_filter_follows_bindings_in_receive_order(jpath: Path) -> None:
         (T0 + 40, "hourwatch/beds/b02/context", _ctx([]), 1),  # 12: b02 lets it go
         (T0 + 50, "meters/m-1/volume", b"{}", 1),  # 13: nobody's
     ]
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         ids = j.append_messages(rows)
 
         def kept(bed: str, t0: float | None = None) -> list[int]:
@@ -405,7 +405,7 @@ def test_bed_filter_follows_bindings_in_receive_order(jpath: Path) -> None:
 
 
 def test_bed_filter_uses_the_topic_prefix(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages([
             (T0, "ward7/beds/b01/context", _ctx(["m-1"]), 1),
             (T0 + 1, "meters/m-1/volume", b"{}", 1),
@@ -426,7 +426,7 @@ def test_wal_stays_small_with_checkpoints_and_grows_without(tmp_path: Path) -> N
     sizes = {}
     for with_checkpoints in (True, False):
         path = tmp_path / f"{with_checkpoints}.db"
-        with Journal(path) as j:
+        with SqliteJournal(path) as j:
             largest = 0
             for k in range(250):
                 j.append_messages(_batch(k))
@@ -439,7 +439,7 @@ def test_wal_stays_small_with_checkpoints_and_grows_without(tmp_path: Path) -> N
             # durability settings as before
             assert j._db.execute("PRAGMA synchronous").fetchone()[0] == 2
             assert j._db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
-        with Journal(path) as j:
+        with SqliteJournal(path) as j:
             assert len(list(j.messages_between(None, None))) == 250 * 16
     # 10 commits of a few 4 KiB pages each between checkpoints
     assert sizes[True] < 512 * 1024
@@ -448,7 +448,7 @@ def test_wal_stays_small_with_checkpoints_and_grows_without(tmp_path: Path) -> N
 
 
 def test_checkpoint_runs_at_most_once_per_interval(jpath: Path) -> None:
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages(_batch(0))
         assert j.checkpoint(min_interval_s=60) is not None
         j.append_messages(_batch(1))
@@ -465,7 +465,7 @@ def test_a_stuck_checkpoint_is_forced_once_the_wal_is_large(
     monkeypatch.setattr("daemon.journal.WAL_LIMIT_BYTES", 256 * 1024)
     monkeypatch.setattr("daemon.journal.CHECKPOINT_STUCK_CALLS", 3)
     monkeypatch.setattr("daemon.journal.FORCE_BUSY_MS", 5000)
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages(_batch(0))
         reader = sqlite3.connect(jpath, isolation_level=None, check_same_thread=False)
         reader.execute("BEGIN")
@@ -496,7 +496,7 @@ def test_a_forced_checkpoint_gives_up_while_the_reader_stays(
     monkeypatch.setattr("daemon.journal.WAL_LIMIT_BYTES", 128 * 1024)
     monkeypatch.setattr("daemon.journal.CHECKPOINT_STUCK_CALLS", 2)
     monkeypatch.setattr("daemon.journal.FORCE_BUSY_MS", 50)
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         j.append_messages(_batch(0))
         reader = j.messages_between(None, None)
         next(reader)  # an export in progress holds its snapshot
@@ -522,10 +522,10 @@ def test_a_forced_checkpoint_gives_up_while_the_reader_stays(
 HOLDER = """
 import json, sys
 from pathlib import Path
-from daemon.journal import Journal, is_journal, is_sqlite, journal_records
+from daemon.journal import SqliteJournal, is_journal, is_sqlite, journal_records
 path, t0 = Path(sys.argv[1]), float(sys.argv[2])
 wal = path.with_name(path.name + "-wal")
-j = Journal(path)
+j = SqliteJournal(path)
 j.append_messages([(t0 + k, "meters/m-01/volume", b"{}", 1) for k in range(10)])
 # every way this process looks at its own file while the writer is open
 n = len(list(j.messages_between(None, None))) + len(list(j.events_between(None, None)))
@@ -553,7 +553,7 @@ def test_another_process_closing_its_journal_leaves_the_writers_wal_alone(jpath:
     try:
         before = json.loads(holder.stdout.readline())
         assert before == {"read": 10 + 0 + 10 + 2, "wal": True}
-        with Journal(jpath) as other:  # e.g. a review tool, or a restart attempt
+        with SqliteJournal(jpath) as other:  # e.g. a review tool, or a restart attempt
             assert len(list(other.messages_between(None, None))) == 10
         assert is_journal(jpath) and is_sqlite(jpath)
         holder.stdin.write("go\n")
@@ -574,7 +574,7 @@ def test_a_file_that_is_not_sqlite_is_refused_untouched(tmp_path: Path) -> None:
     log.write_text('{"time": "2026-03-14T00:00:00Z", "topic": "t", "payload": "x"}\n' * 50)
     before = log.read_bytes()
     with pytest.raises(UserError) as exc:
-        Journal(log)
+        SqliteJournal(log)
     assert "not an SQLite database" in _one_line(exc)
     with pytest.raises(UserError) as exc:
         journal_records(log)
@@ -585,7 +585,7 @@ def test_a_file_that_is_not_sqlite_is_refused_untouched(tmp_path: Path) -> None:
 
 
 def test_is_sqlite(tmp_path: Path, jpath: Path) -> None:
-    Journal(jpath).close()
+    SqliteJournal(jpath).close()
     other = tmp_path / "other.db"
     db = sqlite3.connect(other)
     db.execute("CREATE TABLE t (x)")
@@ -611,7 +611,7 @@ def test_a_full_journal_says_so_and_takes_rows_again_once_there_is_room(jpath: P
     succeed again once the cap is lifted or pruning frees pages."""
     from daemon.journal import is_full
 
-    with Journal(jpath, max_bytes=256 * 1024) as j:
+    with SqliteJournal(jpath, max_bytes=256 * 1024) as j:
         n = 0
         with pytest.raises(sqlite3.OperationalError) as exc:
             while True:

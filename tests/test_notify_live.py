@@ -22,7 +22,7 @@ from typing import Any
 import pytest
 
 from daemon.engine.engine import Engine
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.notify import acklinks
 from daemon.profile_files import load_profiles
 from daemon.replay import replay_file
@@ -201,7 +201,7 @@ def test_three_channels_deliver_a_dead_one_alarms_and_a_restart_repeats_nothing(
     assert len(servers.mail.mails) == 4 and len(servers.hook.received) == 4
     assert [a1["alarm_id"] in r.raw or a2["alarm_id"] in r.raw for r in servers.hl7()] == [
         True, True]  # fmt: skip
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         kinds = Counter(ev.body["state"] for ev in j.events_between(None, None)
                         if ev.kind == "notify_alarm")  # fmt: skip
     assert kinds == {"active": 1, "resolved": 1}
@@ -260,7 +260,7 @@ def test_acknowledgement_link_get_shows_post_acknowledges_once(broker, tmp_path,
         pub.disconnect()
     w.close()
     # journaled as an acknowledgement message with who and role: a replay agrees
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         acks = [json.loads(m.payload) for m in j.messages_between(None, None)
                 if m.topic == "hourwatch/ack"]  # fmt: skip
     assert acks == [{"alarm_id": alarm["alarm_id"], "by": "nurse seven", "role": "bedside-nurse"}]

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from daemon.engine.alarms import AlarmEvent, Kind, Priority, State
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.notify.notifier import Notifier
 from daemon.notify.settings import NotifyConfig, Secrets
 from daemon.notify.store import SqliteDeliveryStore
@@ -39,7 +39,7 @@ def event(bed: str = "bed-02", state: State = State.ACTIVE, tier: int = 0,
 
 
 def journal(path: Path, *events: AlarmEvent) -> list[int]:
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         return j.append_events([journal_row(e) for e in events])
 
 
@@ -92,7 +92,7 @@ def notifier(path: Path, cfg: NotifyConfig) -> Notifier:
 
 def fresh_journal(tmp_path: Path) -> Path:
     path = tmp_path / "j.db"
-    Journal(path).close()
+    SqliteJournal(path).close()
     return path
 
 
@@ -219,7 +219,7 @@ def test_a_failing_channel_raises_a_technical_alarm_paged_over_the_others(tmp_pa
     # the HL7 channel never carried its own technical alarm: only the alarm's page, retried
     assert all("notify/" not in r.raw for r in servers.mllp.received)
     assert servers.mllp.received[-1].answered == "AA" and len(servers.mllp.received) > hl7_before
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         tech_events = [ev for ev in j.events_between(None, None) if ev.kind == "notify_alarm"]
     assert [ev.body["state"] for ev in tech_events] == ["active", "resolved"]
     assert tech_events[0].alarm_id == tech_events[1].alarm_id
@@ -247,7 +247,7 @@ def test_an_open_technical_alarm_is_not_raised_again_after_a_restart(tmp_path, s
         assert [t.alarm_id for t in n.technical()] == [first]
     finally:
         n.stop()
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         raised = [ev for ev in j.events_between(None, None) if ev.kind == "notify_alarm"]
     assert len(raised) == 1
     assert len(servers.mail.mails) == 2  # the alarm and one technical alarm page, no more
@@ -322,7 +322,7 @@ def test_a_page_whose_event_the_retention_pruned_is_given_up_not_sent(tmp_path, 
                                for d in store.deliveries()), 5, "an HL7 attempt")  # fmt: skip
     finally:
         n.stop()
-    with Journal(path, retention_days=1) as j:  # two days on: the event is past retention
+    with SqliteJournal(path, retention_days=1) as j:  # two days on: the event is past retention
         assert j.prune(time.time() + 2 * 86400) >= 1
     servers.mllp = MllpListener(["AA"], port=port)
     n = notifier(path, cfg)

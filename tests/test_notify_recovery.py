@@ -6,7 +6,7 @@ falls at or after the last ENGINE event; see daemon/recovery.py)."""
 from __future__ import annotations
 
 from daemon.engine.alarms import AlarmEvent
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.recovery import recover
 from tests.test_recovery import GUARD_S, WINDOW_S, engine, key, live, records, uninterrupted
 
@@ -20,11 +20,11 @@ def test_a_technical_alarm_journaled_after_a_crash_hides_no_lost_engine_event(tm
     )  # fmt: skip
     path = tmp_path / "j.db"
     live(path, recs, effects_until=first)  # died before journaling those effects
-    with Journal(path) as j:  # ... while the notifier journaled a channel's alarm, later
+    with SqliteJournal(path) as j:  # ... while the notifier journaled a channel's alarm, later
         body: dict[str, object] = {"channel": "alert-mgr", "state": "active"}
         j.append_events([(recs[-1][0] + 30, "notify_alarm", None, "notify/alert-mgr/x", body)])
     now = recs[-1][0] + 60
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         rec = recover(engine(), j, now, WINDOW_S, GUARD_S, "hourwatch")
     lost = [key(e) for eff in produced[first:] for e in eff if isinstance(e, AlarmEvent)]
     lost += [key(e) for e in uninterrupted(recs, now)]

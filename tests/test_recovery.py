@@ -23,7 +23,7 @@ from typing import Any
 
 from daemon.engine.alarms import AlarmEvent
 from daemon.engine.engine import Engine
-from daemon.journal import Journal, journal_records
+from daemon.journal import SqliteJournal, journal_records
 from daemon.profile_files import load_profiles
 from daemon.recovery import longest_window_s, recover, rule_window_s
 from daemon.rule_files import load_policy, load_rules
@@ -78,7 +78,7 @@ def live(path: Path, recs: list[tuple], effects_until: int | None = None) -> lis
     `effects_until`, the effects of message i >= effects_until are lost (a crash)."""
     eng = engine()
     produced = []
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         for i, (t, topic, payload) in enumerate(recs):
             j.append_messages([(t, topic, payload, 1)])
             eff = eng.advance(t) + eng.step(topic, payload, t)
@@ -114,7 +114,7 @@ def test_escalation_due_during_downtime_comes_out_once_as_if_never_stopped(tmp_p
     live(tmp_path / "j.db", recs)
     last = recs[-1][0]
     now = last + MEDIUM_TIER1_S + 100
-    with Journal(tmp_path / "j.db") as j:
+    with SqliteJournal(tmp_path / "j.db") as j:
         rec = recover(engine(), j, now, WINDOW_S, GUARD_S, "hourwatch")
     expected = uninterrupted(recs, now)
     assert expected, "the scenario must have an escalation due in the downtime"
@@ -124,7 +124,7 @@ def test_escalation_due_during_downtime_comes_out_once_as_if_never_stopped(tmp_p
     assert rec.differs == [] and rec.complete and rec.contexts == 0
     assert rec.messages == len(recs)
     # a second restart finds it journaled and publishes nothing again
-    with Journal(tmp_path / "j.db") as j:
+    with SqliteJournal(tmp_path / "j.db") as j:
         j.append_events([journal_row(e) for e in rec.to_publish])
         again = recover(engine(), j, now + 5, WINDOW_S, GUARD_S, "hourwatch")
     assert again.to_publish == [] and again.differs == []
@@ -140,7 +140,7 @@ def test_effects_lost_in_a_crash_after_journaling_the_messages_are_published(tmp
     )  # fmt: skip
     live(tmp_path / "j.db", recs, effects_until=first)  # died before journaling those
     now = recs[-1][0] + 1
-    with Journal(tmp_path / "j.db") as j:
+    with SqliteJournal(tmp_path / "j.db") as j:
         rec = recover(engine(), j, now, WINDOW_S, GUARD_S, "hourwatch")
     lost = [key(e) for eff in produced[first:] for e in eff if isinstance(e, AlarmEvent)]
     lost += [key(e) for e in uninterrupted(recs, now)]
@@ -158,7 +158,7 @@ def test_an_alarm_open_for_longer_than_the_window_keeps_its_id_over_a_restart(tm
     ids = {e.alarm_id for eff in produced for e in eff
            if isinstance(e, AlarmEvent) and e.rule == "pod-hourly"}  # fmt: skip
     now = recs[-1][0] + 1000
-    with Journal(tmp_path / "j.db") as j:
+    with SqliteJournal(tmp_path / "j.db") as j:
         rec = recover(engine(), j, now, WINDOW_S, GUARD_S, "hourwatch")
     assert rec.window_start < T0 and rec.complete
     expected = [key(e) for e in uninterrupted(recs, now)]
@@ -174,7 +174,7 @@ def test_a_truncated_history_is_never_published_for_its_rebuilt_first_window(tmp
     recs = records(30.0)
     live(tmp_path / "j.db", recs)
     now = recs[-1][0] + 60
-    with Journal(tmp_path / "j.db") as j:
+    with SqliteJournal(tmp_path / "j.db") as j:
         rec = recover(engine(), j, now, WINDOW_S, GUARD_S, "hourwatch", max_lookback_s=25 * HOUR)
     assert not rec.complete and rec.window_start == now - 25 * HOUR
     assert rec.contexts == 1  # the bed context from before the window was fed first
@@ -298,7 +298,7 @@ def test_kill_9_under_load_loses_no_reading_and_journals_no_alarm_twice(broker, 
             proc.kill()
     assert kills == 3
     assert published - got == set(), f"{len(published - got)} readings missing"
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         rows = list(j.messages_between(None, None))
         events = [e for e in j.events_between(None, None) if e.kind == "alarm"]
     keys = [(e.alarm_id, e.body["state"], e.body["reason"], e.time) for e in events]
@@ -372,7 +372,7 @@ def test_broker_restart_loses_nothing_and_the_outage_alarm_goes_out_on_reconnect
     assert [x["code"] for x in degraded["technical_alarms"]][:1] == ["alarm_not_delivered"]
     assert {a["alarm_id"] for a in esc} == before_outage
     assert len(esc) == len({a["alarm_id"] for a in esc})  # once each
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         seqs = {json.loads(m.payload)["seq"] for m in j.messages_between(None, None)
                 if m.topic.startswith("meters/")}  # fmt: skip
         failed = [e for e in j.events_between(None, None) if e.kind == "publish_failed"]

@@ -143,11 +143,11 @@ def test_a_journal_source_gives_the_same_report(
 ) -> None:
     import json
 
-    from daemon.journal import Journal
+    from daemon.journal import SqliteJournal
     from daemon.logfile import BadLine, read_log
 
     night, text, _, _ = made
-    journal = Journal(tmp_path / "night.journal")
+    journal = SqliteJournal(tmp_path / "night.journal")
     rows = []
     for item in read_log(night):
         assert not isinstance(item, BadLine)

@@ -21,7 +21,7 @@ from typing import Any
 import pytest
 
 from daemon.caution import CAUTION
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.profile_files import load_profiles
 from simulator.meterlog import constant, iso_z, simulate
 from tests.broker import (
@@ -70,7 +70,7 @@ def alarms(w: Watcher, rule: str | None = None, state: str | None = None) -> lis
 
 
 def journal_rows(path: Path) -> tuple[list, list]:
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         return list(j.messages_between(None, None)), list(j.events_between(None, None))
 
 
@@ -383,7 +383,7 @@ def test_a_journal_that_cannot_write_stops_the_service_without_acking(broker, tm
     offline and why, and the next start gets the reading again from the broker."""
     import sqlite3
 
-    from daemon.journal import Journal as J
+    from daemon.journal import SqliteJournal as J
 
     jpath = tmp_path / "j.db"
     w = Watcher(broker)

@@ -20,7 +20,7 @@ import urllib.error
 import urllib.request
 from pathlib import Path
 
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from tests.broker import (
     Watcher,
     broker,  # noqa: F401  (the fixture)
@@ -32,7 +32,7 @@ from tests.test_service import context, readings
 
 
 def _journal(path: Path) -> list:
-    with Journal(path) as j:
+    with SqliteJournal(path) as j:
         return list(j.messages_between(None, None))
 
 
@@ -167,7 +167,7 @@ def test_refused_content_never_reaches_the_log_or_the_rejected_topic(broker, tmp
     assert SENSITIVE not in log
     assert SENSITIVE not in json.dumps(rejected)
     # journaled as received, with the refusal and its reason beside it
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         assert sum(SENSITIVE.encode() in m.payload or SENSITIVE in m.topic
                    for m in j.messages_between(None, None)) == len(rows)  # fmt: skip
         reasons = {e.body["reason"] for e in j.events_between(None, None) if e.kind == "rejected"}

@@ -9,12 +9,14 @@ from pathlib import Path
 
 from ..engine.rules import canonical_alarm_id
 from ..errors import UserError
+from ..journal_api import target
 from ..profile_files import load_profiles
 from ..review import verdicts
 from ..review.episodes import episodes
 from ..review.explain import parse_alarm_id
 from ..review.recorder import replay_alarms
 from ..rule_files import load_advice, load_policy, load_rules
+from ..sources import require
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -22,10 +24,12 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "annotate",
         help="store a reviewer's verdict on one alarm (SOURCE.annotations.sqlite)",
         description="Record whether an alarm was actionable. The verdict is kept in "
-        "SOURCE.annotations.sqlite beside the source; a later verdict on the same alarm "
-        "replaces the earlier one. `replay --compare` counts them per rule set.",
+        "SOURCE.annotations.sqlite beside the source (in the journal's own database for a "
+        "postgresql:// URL); a later verdict on the same alarm replaces the earlier one. "
+        "`replay --compare` counts them per rule set.",
     )
-    c.add_argument("source", type=Path, help="recorded messages (JSON Lines log or journal)")
+    c.add_argument("source", type=target,
+                   help="recorded messages (JSON Lines log, journal file or postgresql:// URL)")
     c.add_argument("alarm_id", help="as `hourwatch replay` prints it: BED/RULE/TIMESTAMP")
     c.add_argument(
         "--actionable",
@@ -42,8 +46,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    if not args.source.is_file():
-        raise UserError(f"{args.source}: no such file")
+    require(args.source)
     parse_alarm_id(args.alarm_id)
     args.alarm_id = canonical_alarm_id(args.alarm_id)  # an old rule id names the same alarm
     if args.note is not None and len(args.note) > 2000:

@@ -26,13 +26,20 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     )
     c.add_argument("--config", type=Path, default=None, help="service config (TOML)")
     c.add_argument("--broker", default=None, metavar="HOST:PORT", help="as for run")
-    c.add_argument("--journal", type=Path, default=None, help="as for run")
+    c.add_argument("--journal", default=None, metavar="FILE|URL", help="as for run")
     c.set_defaults(run=run)
 
 
 def check_journal(cfg: ServiceConfig, where: str) -> str:
     """What run would do with the journal path; UserError naming journal.path if it could
-    not use it. Reads nothing but the file's header: a running service may hold it."""
+    not use it. Reads nothing but the file's header: a running service may hold it.
+    A PostgreSQL journal is not contacted (check connects to nothing): its URL is shown
+    with the active/standby group it forms."""
+    if cfg.journal.url is not None:
+        group = cfg.ha.group or cfg.broker.client_id
+        wards = ", ".join(cfg.shard.wards) if cfg.shard.wards else "every ward"
+        return (f"{cfg.journal.url} (PostgreSQL; active/standby group {group!r}, lease "
+                f"{cfg.ha.lease_s:g} s; wards: {wards})")  # fmt: skip
     path = cfg.journal.path
     folder = path.resolve().parent
     if path.exists():

@@ -7,10 +7,11 @@ import json
 import sys
 from pathlib import Path
 
-from ..errors import UserError
+from ..journal_api import target
 from ..profile_files import load_profiles
 from ..review.explain import explain, text
 from ..rule_files import load_advice, load_policy, load_rules
+from ..sources import require
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -21,7 +22,8 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "the windows it evaluated (recomputed, beside the alarm's own evidence), the readings "
         "behind them with their cleaning outcome, suppression, and what happened after.",
     )
-    c.add_argument("source", type=Path, help="recorded messages (JSON Lines log or journal)")
+    c.add_argument("source", type=target,
+                   help="recorded messages (JSON Lines log, journal file or postgresql:// URL)")
     c.add_argument("alarm_id", help="as `hourwatch replay` prints it: BED/RULE/TIMESTAMP")
     c.add_argument("--profiles", type=Path, default=None, help="device profile folder")
     c.add_argument("--rules", type=Path, default=None, help="rule folder (with escalation.toml)")
@@ -30,8 +32,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    if not args.source.is_file():
-        raise UserError(f"{args.source}: no such file")
+    require(args.source)
     profiles = load_profiles(args.profiles)
     rules = load_rules(args.rules)
     policy = load_policy(args.rules)

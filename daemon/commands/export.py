@@ -1,6 +1,7 @@
 """`hourwatch export JOURNAL --from ISO --to ISO [--bed BED] [--out FILE] [--config FILE]`.
 
-Writes the journal's messages received in [--from, --to) in the JSON Lines log format
+JOURNAL is a journal file or a PostgreSQL journal's postgresql:// URL. Writes the journal's
+messages received in [--from, --to) in the JSON Lines log format
 (`{"time", "topic", "payload"}` per line, as daemon/logfile.py reads), so `hourwatch replay`
 gives the same output for the export as for the journal itself. Times go out to the
 microsecond the journal holds. Never writes to the journal (read-only connection).
@@ -30,13 +31,16 @@ from ..engine.outcomes import withheld
 from ..engine.timefmt import TimeError, iso, parse_iso
 from ..errors import UserError
 from ..journal import journal_items
+from ..journal_api import PgUrl, target
 from ..logfile import BadLine, LogRecord
 from ..profile_files import load_profiles
+from ..sources import require
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     e = sub.add_parser("export", help="write a journal's messages as a JSON Lines log")
-    e.add_argument("journal", type=Path, help="journal file of `hourwatch run`")
+    e.add_argument("journal", type=target,
+                   help="journal of `hourwatch run`: its file or its postgresql:// URL")
     e.add_argument(
         "--from", dest="t_from", required=True, help="ISO-8601 receive time with offset (kept)"
     )
@@ -113,10 +117,14 @@ def run(args: argparse.Namespace) -> int:
     t1 = _time("--to", args.t_to)
     if t1 <= t0:
         raise UserError(f"--to ({args.t_to}) must be later than --from ({args.t_from})")
-    if not args.journal.is_file():
-        raise UserError(f"{args.journal}: no such journal file")
+    require(args.journal, "journal file")
     redact, prefix = _redactor(args)
-    items = journal_items(args.journal, t0, t1, args.bed, prefix=prefix)
+    if isinstance(args.journal, PgUrl):
+        from ..journal_pg import journal_items as pg_items
+
+        items = pg_items(args.journal, t0, t1, args.bed, prefix=prefix)
+    else:
+        items = journal_items(args.journal, t0, t1, args.bed, prefix=prefix)
     if args.out is None:
         n = _write(items, sys.stdout, str(args.journal), redact)
         sys.stdout.flush()

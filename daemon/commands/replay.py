@@ -21,9 +21,11 @@ from ..engine.engine import Engine
 from ..engine.timefmt import TimeError, parse_iso
 from ..errors import UserError
 from ..hourly import hourly_json, hourly_text, quality_text
+from ..journal_api import target
 from ..profile_files import load_profiles
 from ..replay import replay_file
 from ..rule_files import load_advice, load_policy, load_rules
+from ..sources import require
 from ..timeline import effect_json, effect_text
 
 if TYPE_CHECKING:
@@ -32,7 +34,9 @@ if TYPE_CHECKING:
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r = sub.add_parser("replay", help="replay a JSON Lines log through the engine")
-    r.add_argument("log", type=Path, help="recorded messages: a JSON Lines log or a journal")
+    r.add_argument("log", type=target,
+                   help="recorded messages: a JSON Lines log, a journal file or a "
+                   "postgresql:// journal URL")  # fmt: skip
     r.add_argument("--profiles", type=Path, default=None, help="device profile folder")
     r.add_argument("--rules", type=Path, default=None, help="rule folder (with escalation.toml)")
     r.add_argument("--hourly", action="store_true", help="print completed clock-hour totals")
@@ -89,8 +93,7 @@ def _where(folder: Path | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
-    if not args.log.is_file():
-        raise UserError(f"{args.log}: no such log file")
+    require(args.log, "log file")
     if args.plots and not args.report:
         raise UserError("--plots needs --report")
     until = None

@@ -16,7 +16,8 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r = sub.add_parser("run", help="run the live service on an MQTT broker")
     r.add_argument("--config", type=Path, default=None, help="service config (TOML)")
     r.add_argument("--broker", default=None, metavar="HOST:PORT", help="overrides broker.host/port")
-    r.add_argument("--journal", type=Path, default=None, help="overrides journal.path")
+    r.add_argument("--journal", default=None, metavar="FILE|URL",
+                   help="overrides journal.path (or journal.url, for a postgresql:// URL)")
     r.set_defaults(run=run)
 
 
@@ -33,6 +34,10 @@ def run(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    if cfg.journal.url is not None:  # a PostgreSQL journal: one of an active/standby group
+        from ..ha import HaRunner
+
+        return HaRunner(cfg, service.log).run(stop)
     service.start()
     # Wake now and then: signal handlers run only when the main thread gets control.
     while not stop.wait(0.5):

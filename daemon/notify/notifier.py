@@ -37,6 +37,7 @@ from ..engine.alarms import ALARM_CAUTION, PAGER_CAUTION, PAGER_MAX, STATE_WORDS
 from ..engine.timefmt import iso
 from ..errors import UserError
 from ..health import Histogram, exposition
+from ..journal_api import PgUrl
 from ..messages import SCHEMA, AlarmMessage
 from . import acklinks
 from .channels import Sender, sender_for
@@ -87,11 +88,11 @@ class Notifier:
         self,
         cfg: NotifyConfig,
         secrets: Secrets,
-        journal_path: Path,
+        journal_path: Path | PgUrl,
         *,
         clock: Callable[[], float] = time.time,
         log: Any = None,
-        store_factory: Callable[[Path], DeliveryStore] = SqliteDeliveryStore,
+        store_factory: Callable[[Any], DeliveryStore] = SqliteDeliveryStore,
     ) -> None:
         self.cfg = cfg
         self.clock = clock

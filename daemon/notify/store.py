@@ -31,46 +31,16 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from ..errors import UserError
-from ..journal import APPLICATION_ID, BUSY_TIMEOUT_MS
+from ..journal import APPLICATION_ID, BUSY_TIMEOUT_MS, OUTBOX_TABLES
+from ..journal_api import FenceToken, JournalTarget, PgUrl
 
 PAGED_KINDS = ("alarm", "notify_alarm")  # journaled event kinds that can page someone
 OPEN = ("pending", "sending")
 FINAL = ("confirmed", "cancelled", "expired")
 
-_SCHEMA = (
-    """CREATE TABLE IF NOT EXISTS deliveries (
-        id INTEGER PRIMARY KEY AUTOINCREMENT,
-        event_id INTEGER NOT NULL,             -- the journaled event this page carries
-        alarm_id TEXT NOT NULL,
-        state TEXT NOT NULL,
-        tier INTEGER NOT NULL,
-        reason TEXT NOT NULL,
-        event_time REAL NOT NULL,              -- the event's engine time
-        channel TEXT NOT NULL,
-        recipient TEXT NOT NULL,               -- an address of that channel
-        role TEXT NOT NULL,
-        status TEXT NOT NULL,                  -- pending, sending, confirmed, cancelled, expired
-        attempts INTEGER NOT NULL DEFAULT 0,
-        created REAL NOT NULL,                 -- service clock when queued
-        next_at REAL NOT NULL,                 -- next attempt not before
-        sent_at REAL,                          -- latest attempt began
-        done_at REAL,                          -- confirmed, cancelled or expired at
-        answer TEXT,                           -- what the channel last answered
-        UNIQUE (alarm_id, state, tier, reason, event_time, channel, recipient))""",
-    """CREATE INDEX IF NOT EXISTS deliveries_due ON deliveries (channel, next_at)
-        WHERE status = 'pending'""",
-    "CREATE INDEX IF NOT EXISTS deliveries_alarm ON deliveries (alarm_id)",
-    """CREATE TABLE IF NOT EXISTS notify_cursor (
-        one INTEGER PRIMARY KEY CHECK (one = 1),
-        event_id INTEGER NOT NULL)             -- events up to here have their deliveries""",
-    """CREATE TABLE IF NOT EXISTS ack_links (
-        token_id TEXT PRIMARY KEY,             -- one acknowledgement link, used once
-        alarm_id TEXT NOT NULL,
-        recipient TEXT NOT NULL,
-        role TEXT NOT NULL,
-        used_at REAL NOT NULL)""",
-    "CREATE INDEX IF NOT EXISTS events_notify_alarm ON events (id) WHERE kind = 'notify_alarm'",
-)
+# The outbox's tables are part of the journal's schema (migration 2 of daemon/journal.py);
+# created here too, so a store opened on a journal of version 1 finds them.
+_SCHEMA = OUTBOX_TABLES
 
 
 @dataclass(frozen=True)
@@ -381,3 +351,12 @@ class SqliteDeliveryStore:
     def close(self) -> None:
         with self._lock:
             self._db.close()
+
+
+def open_store(where: JournalTarget, fence: FenceToken | None = None) -> DeliveryStore:
+    """The outbox in the journal at `where` (daemon/notify/store_pg.py for PostgreSQL)."""
+    if isinstance(where, PgUrl):
+        from .store_pg import PostgresDeliveryStore
+
+        return PostgresDeliveryStore(where, fence)
+    return SqliteDeliveryStore(where)

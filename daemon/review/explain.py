@@ -11,7 +11,6 @@ from __future__ import annotations
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
@@ -29,6 +28,7 @@ from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef, canonical_alarm_id
 from ..engine.timefmt import iso
 from ..errors import UserError
+from ..journal_api import JournalTarget
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
 from .evidence import WindowFact, compare, residual_drains, windows_at
 from .recorder import CODE, OUTCOMES, Recorder, effective_time, run, warn_about
@@ -245,7 +245,7 @@ class Review:
 
 
 def review(
-    path: Path,
+    path: JournalTarget,
     profiles: list[DeviceProfile],
     rules: list[RuleDef],
     policy: EscalationPolicy,
@@ -298,7 +298,7 @@ def parse_alarm_id(alarm_id: str) -> tuple[str, str]:
 
 
 def explain(
-    path: Path,
+    path: JournalTarget,
     alarm_id: str,
     profiles: list[DeviceProfile],
     rules: list[RuleDef],

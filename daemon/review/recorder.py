@@ -28,6 +28,7 @@ from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef
 from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
+from ..journal_api import JournalTarget
 from ..logfile import BadLine, LogRecord
 from ..replay import ReplayResult, drive
 from ..sources import open_source
@@ -201,12 +202,12 @@ class Recorder:
         return max(ends) if ends else 0.0
 
 
-def count_records(path: Path) -> int | None:
+def count_records(path: JournalTarget) -> int | None:
     """Lines in a JSON Lines file, for the progress bar; None for anything else.
 
     A journal is never opened as a plain file here: closing such a handle would drop
     the SQLite locks of a writer in this same process."""
-    if is_sqlite(path):
+    if not isinstance(path, Path) or is_sqlite(path):
         return None
     try:
         with path.open("rb") as fh:
@@ -246,7 +247,7 @@ def with_progress(
 
 
 def run(
-    path: Path,
+    path: JournalTarget,
     make_engine: Callable[[Callable[[ReadingTrace], None]], Engine],
     recorder: Recorder,
     *,
@@ -276,7 +277,9 @@ def run(
     return drive(engine, records, both, until)
 
 
-def warn_about(result: ReplayResult, path: Path, stream: TextIO | None = sys.stderr) -> None:
+def warn_about(
+    result: ReplayResult, path: JournalTarget, stream: TextIO | None = sys.stderr
+) -> None:
     if stream is None:
         return
     bad = len(result.bad_lines)
@@ -291,7 +294,7 @@ def warn_about(result: ReplayResult, path: Path, stream: TextIO | None = sys.std
 
 
 def replay_alarms(
-    path: Path,
+    path: JournalTarget,
     profiles: list[DeviceProfile],
     rules: list[RuleDef],
     policy: EscalationPolicy,

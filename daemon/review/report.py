@@ -20,6 +20,7 @@ from ..caution import CAUTION
 from ..engine.numbers import num, pct
 from ..engine.outcomes import Outcome
 from ..engine.timefmt import iso
+from ..journal_api import JournalTarget
 from .compare import RunSummary, summarize
 from .episodes import Episode
 from .evidence import residual_drains
@@ -83,7 +84,7 @@ def _e(x: object) -> str:
 @dataclass
 class ReportInput:
     review: Review
-    source: Path
+    source: JournalTarget
     rules_label: str
     profiles_label: str
     bad_lines: int = 0
