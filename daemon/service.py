@@ -1169,7 +1169,7 @@ class Service:
                 timezone=zone_info(cfg.timezone), latest_advice=self.latest_advice,
                 bed_events=self.bed_events, acknowledge=self.acknowledge_from_board,
                 users=UserStore(cfg.board.users_file), settings=cfg.board, marks=self.marks,
-                changes=self.changes, journal=str(cfg.journal.path),
+                changes=self.changes, journal=cfg.journal.url or str(cfg.journal.path),
                 service_state=self.health_report,
             )  # fmt: skip
         site = Site(self.health_report, self.render_metrics,

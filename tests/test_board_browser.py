@@ -20,7 +20,7 @@ from urllib.parse import quote
 
 import pytest
 
-from daemon.journal import Journal
+from daemon.journal import SqliteJournal
 from daemon.profile_files import load_profiles
 from simulator.meterlog import constant, simulate
 from tests.boardsite import PASSWORD, users_file
@@ -164,7 +164,7 @@ def test_a_nurse_sees_the_ward_live_and_acknowledges_after_logging_in(
     ]
     # journaled: the acknowledgement message on the user's own topic, with the role, and
     # the engine's acknowledged event with user and role
-    with Journal(jpath) as j:
+    with SqliteJournal(jpath) as j:
         messages = list(j.messages_between(None, None))
         events = list(j.events_between(None, None))
     acks = [m for m in messages if m.topic == "hourwatch/ack/nurse-a"]
