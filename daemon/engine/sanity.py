@@ -1,0 +1,232 @@
+"""Sanity warnings: signs that a meter's PROFILE is wrong, not the patient.
+
+Two easy profile mistakes look like a sick patient: a litre meter declared in mL shows
+output near zero with every minute measured (it reads as anuria), and an epoch-seconds
+meter declared in milliseconds dates its readings in January 1970 (every reading late).
+The low-output rules stay as they are; these warnings tell the engineer that it is the
+profile, and which key to check. They never reject a reading and never page anyone.
+
+Pure: fed by the engine with receive times and readings; warnings are plain data.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+from .numbers import num
+from .outcomes import Outcome
+from .profiles import DeviceProfile, Semantics
+from .timefmt import iso
+
+# Checked over tumbling spans of this much reading time: "for hours". A litre meter read
+# as mL is caught well before the 6-h KDIGO window or the 12-h anuria window could fire.
+SPAN_S = 3 * 3600.0
+# A span counts only with readings arriving: at least this share of the expected ones.
+ARRIVING = 0.5
+# Implied flow below this, on a series that rises steadily, is a scale mistake far more
+# often than a kidney. 1 mL/h is 24 mL a day, under half the lowest textbook bound for
+# anuria (50-100 mL/day: CLINICAL-REFERENCE.md section 3, common practice, no single
+# source); a real output that low barely moves a meter, it does not climb every reading.
+LOW_FLOW_ML_H = 1.0
+# "Steadily": at most this share of the steps are falls (noise around a still bag falls
+# about as often as it rises). Ours, no clinical source.
+FALLS_MAX = 0.1
+MIN_STEPS = 10  # steps in a span before its flow is judged (ours)
+# A meter's steps are whole multiples of its resolution; steps twenty times finer than
+# the declared resolution mean the values are scaled wrong (a cL, dL or L meter read as
+# mL gives steps 10, 100 or 1000 times finer) or the resolution is. Ours, no source.
+FINER_THAN = 20.0
+MIN_NONZERO = 20  # nonzero steps before their size is judged (ours)
+# Device times this far from the receive time are not a drifting clock but a wrong epoch
+# unit (seconds read as milliseconds land in January 1970) or an unset clock: "years
+# away". 365 days, ours.
+FAR_S = 365.0 * 86400.0
+FAR_RUN = 3  # consecutive readings that far off before warning (and back before clearing)
+# Every reading late for this many readings AND this many reporting periods of receive
+# time: a store-and-forward burst arrives within seconds, a wrong clock for every reading.
+LATE_RUN = 10
+MAX_CHANGES = 10_000  # changes kept for the shell; the oldest half goes beyond this
+_LATE = frozenset({Outcome.LATE, Outcome.TOO_OLD, Outcome.STORE_FORWARD})
+_BAG = frozenset({Outcome.BAG_CHANGE, Outcome.BAG_CHANGE_INFERRED})
+
+
+@dataclass(frozen=True, slots=True)
+class SanityWarning:
+    """One warning about one meter: the likely profile key, and why, in words of ours
+    (numbers computed here, never payload content)."""
+
+    device_id: str
+    profile: str
+    code: str  # flow_below_adult | steps_below_resolution | device_time_far | every_reading_late
+    key: str  # the profile key most likely wrong
+    detail: str
+    since: float  # receive time it was raised
+    cleared: float | None = None  # receive time it cleared, when it did
+
+    def to_json(self) -> dict[str, object]:
+        return {"device_id": self.device_id, "profile": self.profile, "code": self.code,
+                "key": self.key, "detail": self.detail, "since": iso(self.since),
+                "cleared": iso(self.cleared) if self.cleared is not None else None}  # fmt: skip
+
+    def line(self) -> str:
+        return f"{self.code}: check {self.key}: {self.detail}"
+
+
+Change = tuple[str, SanityWarning]  # ("raised" | "cleared", the warning)
+
+
+class SanityWatch:
+    """One meter's checks. `clock` sees every decoded reading, `cleaned` every reading
+    the meter's cleaner judged (with its outcome and the time the engine used)."""
+
+    __slots__ = (
+        "_changes", "_far", "_late", "_late_since", "_near", "active", "device_id", "falls",
+        "interval", "n", "net", "nonzero", "period_s", "prev", "profile", "resolution",
+        "span_start", "steps", "tiny",
+    )  # fmt: skip
+
+    def __init__(self, device_id: str, profile: DeviceProfile, changes: list[Change]) -> None:
+        self.device_id = device_id
+        self.profile = profile.name
+        self.period_s = float(profile.timing.period_s)
+        self.resolution = profile.volume.resolution_ml
+        self.interval = profile.volume.semantics is Semantics.INTERVAL
+        self.active: dict[str, SanityWarning] = {}
+        self._changes = changes  # the engine's list: raised and cleared, in order
+        self._far = self._near = 0
+        self._late = 0
+        self._late_since = 0.0
+        self.prev: float | None = None  # the last value in the series (cumulative)
+        self._reset(None)
+
+    def _reset(self, start: float | None) -> None:
+        self.span_start = start
+        self.n = self.steps = self.falls = self.nonzero = self.tiny = 0
+        self.net = 0.0
+
+    # --- raising and clearing --------------------------------------------------------
+    def _raise(self, code: str, key: str, detail: str, now: float) -> None:
+        old = self.active.get(code)
+        if old is not None:
+            if old.key != key or old.detail != detail:  # newer numbers, same warning
+                self.active[code] = replace(old, key=key, detail=detail)
+            return
+        w = SanityWarning(self.device_id, self.profile, code, key, detail, now)
+        self.active[code] = w
+        self._note(("raised", w))
+
+    def _clear(self, code: str, now: float) -> None:
+        w = self.active.pop(code, None)
+        if w is not None:
+            self._note(("cleared", replace(w, cleared=now)))
+
+    def _note(self, change: Change) -> None:
+        if len(self._changes) >= MAX_CHANGES:  # nobody took them: keep the newest
+            del self._changes[: MAX_CHANGES // 2]
+        self._changes.append(change)
+
+    # --- device times -------------------------------------------------------------------
+    def clock(self, now: float, device_time: float) -> None:
+        off = now - device_time
+        if abs(off) > FAR_S:
+            self._far += 1
+            self._near = 0
+            if self._far >= FAR_RUN:
+                years = abs(off) / (365.25 * 86400.0)
+                when = "behind" if off > 0 else "ahead of"
+                self._raise("device_time_far", "time.format",
+                            f"device times are {num(years, 1)} years {when} the receive time "
+                            "(epoch seconds read as milliseconds, or the other way round, "
+                            "or the meter's clock is not set)", now)  # fmt: skip
+        else:
+            self._near += 1
+            self._far = 0
+            if self._near >= FAR_RUN:
+                self._clear("device_time_far", now)
+
+    # --- judged readings ------------------------------------------------------------------
+    def cleaned(self, now: float, t: float, device_time: float, volume_ml: float,
+                outcome: Outcome) -> None:  # fmt: skip
+        if outcome in _LATE:
+            if self._late == 0:
+                self._late_since = now
+            self._late += 1
+            if self._late >= LATE_RUN and now - self._late_since >= LATE_RUN * self.period_s:
+                key, why = _late_hint(now - device_time)
+                self._raise("every_reading_late", key,
+                            f"the last {self._late} readings over "
+                            f"{num((now - self._late_since) / 60, 0)} min were all late or "
+                            f"from the meter's store ({why})", now)  # fmt: skip
+            return
+        if outcome is Outcome.DUPLICATE or outcome is Outcome.CONFLICTING_DUPLICATE:
+            return
+        self._late = 0
+        self._clear("every_reading_late", now)
+        if outcome in _BAG:
+            self.prev = volume_ml  # a new bag: no step across the change
+            return
+        if outcome is Outcome.ARTEFACT_DROPPED or outcome is Outcome.IMPLAUSIBLE_FLOW:
+            return
+        if outcome is Outcome.SPIKE_HELD or outcome is Outcome.REORDERED:
+            return  # settled later, or out of order: no step from it
+        self._step(now, t, volume_ml)
+
+    def _step(self, now: float, t: float, v: float) -> None:
+        if self.span_start is None:
+            self._reset(t)
+        self.n += 1
+        if self.interval:
+            step = v  # each value is the volume of its interval
+        else:
+            prev, self.prev = self.prev, v
+            if prev is None:
+                return
+            step = v - prev
+        self.steps += 1
+        if step < 0:
+            self.falls += 1
+        if step != 0.0:
+            self.nonzero += 1
+            if abs(step) < self.resolution / FINER_THAN:
+                self.tiny += 1
+        self.net += step
+        assert self.span_start is not None
+        if t - self.span_start >= SPAN_S:
+            self._judge(now, t - self.span_start)
+            self._reset(t)
+
+    def _judge(self, now: float, span_s: float) -> None:
+        if self.n < ARRIVING * span_s / self.period_s:
+            return  # too few readings to say anything either way
+        hours = span_s / 3600.0
+        flow = self.net / hours
+        steady = self.steps >= MIN_STEPS and self.falls <= FALLS_MAX * self.steps
+        if steady and 0.0 < flow < LOW_FLOW_ML_H:
+            self._raise("flow_below_adult", "volume.unit",
+                        f"implied flow {num(flow, 3)} mL/h over {num(hours, 1)} h, rising "
+                        "with readings arriving: below what an adult produces even in "
+                        "anuria; is the meter's unit larger than declared (L, dL, cL)? "
+                        "Check volume.unit or volume.scale_to_ml", now)  # fmt: skip
+        else:
+            self._clear("flow_below_adult", now)
+        if self.nonzero >= MIN_NONZERO and self.tiny * 2 > self.nonzero:
+            self._raise("steps_below_resolution", "volume.unit",
+                        f"most steps are under {num(self.resolution / FINER_THAN, 3)} mL, "
+                        f"far below the declared resolution of {num(self.resolution, 3)} mL: "
+                        "check volume.unit or volume.scale_to_ml (or volume.resolution_ml, "
+                        "if the meter really resolves that finely)", now)  # fmt: skip
+        elif self.nonzero >= MIN_NONZERO:
+            self._clear("steps_below_resolution", now)
+
+
+def _late_hint(offset_s: float) -> tuple[str, str]:
+    """The key to check for readings that are all late, from how late they are."""
+    if abs(offset_s) > FAR_S:
+        return "time.format", "device times are years away: check the epoch unit"
+    hours = round(offset_s / 3600.0)
+    if hours and abs(offset_s - hours * 3600.0) < 300.0:
+        return ("fields.utc_offset",
+                f"device times run {hours} h behind: a local time sent as UTC?")  # fmt: skip
+    return ("timing.store_forward_max_s",
+            f"device times run {num(offset_s / 60, 0)} min behind the receive time: "
+            "the meter's clock, or a store it sends from late")  # fmt: skip
