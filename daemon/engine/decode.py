@@ -364,6 +364,16 @@ class Decoder:
             flag = flag or (raw_flag is not _MISSING and _truthy(raw_flag))
         return Reading(device_id, device_time, volume_ml, seq, flag, value)
 
+    def status_code(self, payload: Payload) -> str | None:
+        """The status code a payload carries, as sent (the probe counts them)."""
+        if self._get_status is None:
+            return None
+        obj = self._parse(payload)
+        if isinstance(obj, Rejected):
+            return None
+        code = self._get_status(obj)
+        return None if code is _MISSING else str(code).strip()[:32]
+
     def to_ml(self, value: float, unit: str) -> float:
         """A value in a canonical unit (UNIT_ALIASES' values) in mL."""
         scale = VOLUME_UNITS.get(unit)
