@@ -1006,8 +1006,8 @@ class Engine:
             d["held"] = dev.cleaner.pending() if dev.cleaner else 0
             if dev.labels:
                 d["topic_levels"] = dict(dev.labels)
-            if dev.sanity is not None and dev.sanity.active:
-                d["warnings"] = [w.to_json() for w in dev.sanity.active.values()]
+            if dev.sanity is not None and dev.sanity.history:
+                d["warnings"] = [w.to_json() for w in dev.sanity.history]
             out[dev_id] = d
         return out
 
@@ -1017,6 +1017,13 @@ class Engine:
         return [
             w for _, dev in sorted(self.devices.items()) if dev.sanity is not None
             for w in dev.sanity.active.values()
+        ]  # fmt: skip
+
+    def sanity_history(self) -> list[SanityWarning]:
+        """Every sanity warning raised (the newest per meter), cleared or not, by meter."""
+        return [
+            w for _, dev in sorted(self.devices.items()) if dev.sanity is not None
+            for w in dev.sanity.history
         ]  # fmt: skip
 
     def take_sanity_changes(self) -> list[Change]:

@@ -13,10 +13,10 @@ from dataclasses import dataclass
 from enum import StrEnum
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 from pydantic_core import InitErrorDetails, PydanticCustomError
 
-_NAME = r"^[a-z0-9][a-z0-9-]{1,62}$"
+NAME_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 
 
 class _Strict(BaseModel):
@@ -390,7 +390,7 @@ def compile_topic(topic: str) -> TopicPattern:
 
 class DeviceProfile(_Strict):
     schema_version: Literal[1] = Field(1, alias="schema", description="profile format version")
-    name: Annotated[str, Field(pattern=_NAME)] = Field(
+    name: Annotated[str, Field(pattern=NAME_PATTERN)] = Field(
         description="family name; equals the file name"
     )
     description: str = Field(default="", description="one line for people")
@@ -409,6 +409,12 @@ class DeviceProfile(_Strict):
     smoothing: Smoothing = Smoothing()
     checksum: Checksum | None = None
 
+    @field_validator("topic")
+    @classmethod
+    def _topic(cls, topic: str) -> str:  # on its own: reported even when a section fails
+        _raise("topic", [((), p) for p in topic_problems(topic)])
+        return topic
+
     @model_validator(mode="after")
     def _check(self) -> DeviceProfile:
         _raise("DeviceProfile", self._problems())
@@ -416,7 +422,7 @@ class DeviceProfile(_Strict):
 
     def _problems(self) -> list[Problem]:
         """Every inconsistency between sections, each under the key to change."""
-        problems: list[Problem] = [(("topic",), p) for p in topic_problems(self.topic)]
+        problems: list[Problem] = []
         enc = self.payload.encoding
         want: type = int if enc is Encoding.DELIMITED else str
         kind = {

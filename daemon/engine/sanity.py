@@ -46,6 +46,7 @@ FAR_RUN = 3  # consecutive readings that far off before warning (and back before
 # time: a store-and-forward burst arrives within seconds, a wrong clock for every reading.
 LATE_RUN = 10
 MAX_CHANGES = 10_000  # changes kept for the shell; the oldest half goes beyond this
+HISTORY_KEPT = 20  # warnings kept per meter, raised and cleared (the newest)
 _LATE = frozenset({Outcome.LATE, Outcome.TOO_OLD, Outcome.STORE_FORWARD})
 _BAG = frozenset({Outcome.BAG_CHANGE, Outcome.BAG_CHANGE_INFERRED})
 
@@ -81,8 +82,8 @@ class SanityWatch:
 
     __slots__ = (
         "_changes", "_far", "_late", "_late_since", "_near", "active", "device_id", "falls",
-        "interval", "n", "net", "nonzero", "period_s", "prev", "profile", "resolution",
-        "span_start", "steps", "tiny",
+        "history", "interval", "n", "net", "nonzero", "period_s", "prev", "profile",
+        "resolution", "span_start", "steps", "tiny",
     )  # fmt: skip
 
     def __init__(self, device_id: str, profile: DeviceProfile, changes: list[Change]) -> None:
@@ -92,6 +93,7 @@ class SanityWatch:
         self.resolution = profile.volume.resolution_ml
         self.interval = profile.volume.semantics is Semantics.INTERVAL
         self.active: dict[str, SanityWarning] = {}
+        self.history: list[SanityWarning] = []  # raised ones, with when they cleared
         self._changes = changes  # the engine's list: raised and cleared, in order
         self._far = self._near = 0
         self._late = 0
@@ -106,19 +108,26 @@ class SanityWatch:
 
     # --- raising and clearing --------------------------------------------------------
     def _raise(self, code: str, key: str, detail: str, now: float) -> None:
-        old = self.active.get(code)
-        if old is not None:
-            if old.key != key or old.detail != detail:  # newer numbers, same warning
-                self.active[code] = replace(old, key=key, detail=detail)
-            return
+        if code in self.active:
+            return  # raised already: it says what it saw then
         w = SanityWarning(self.device_id, self.profile, code, key, detail, now)
         self.active[code] = w
+        self.history.append(w)
+        del self.history[:-HISTORY_KEPT]
         self._note(("raised", w))
 
     def _clear(self, code: str, now: float) -> None:
         w = self.active.pop(code, None)
         if w is not None:
-            self._note(("cleared", replace(w, cleared=now)))
+            done = replace(w, cleared=now)
+            self._record(w, done)
+            self._note(("cleared", done))
+
+    def _record(self, old: SanityWarning, new: SanityWarning) -> None:
+        for i in range(len(self.history) - 1, -1, -1):
+            if self.history[i] is old:
+                self.history[i] = new
+                return
 
     def _note(self, change: Change) -> None:
         if len(self._changes) >= MAX_CHANGES:  # nobody took them: keep the newest
@@ -131,7 +140,7 @@ class SanityWatch:
         if abs(off) > FAR_S:
             self._far += 1
             self._near = 0
-            if self._far >= FAR_RUN:
+            if self._far >= FAR_RUN and "device_time_far" not in self.active:
                 years = abs(off) / (365.25 * 86400.0)
                 when = "behind" if off > 0 else "ahead of"
                 self._raise("device_time_far", "time.format",
@@ -151,7 +160,8 @@ class SanityWatch:
             if self._late == 0:
                 self._late_since = now
             self._late += 1
-            if self._late >= LATE_RUN and now - self._late_since >= LATE_RUN * self.period_s:
+            late = self._late >= LATE_RUN and now - self._late_since >= LATE_RUN * self.period_s
+            if late and "every_reading_late" not in self.active:
                 key, why = _late_hint(now - device_time)
                 self._raise("every_reading_late", key,
                             f"the last {self._late} readings over "
