@@ -156,6 +156,8 @@ class SanityWatch:
     # --- judged readings ------------------------------------------------------------------
     def cleaned(self, now: float, t: float, device_time: float, volume_ml: float,
                 outcome: Outcome) -> None:  # fmt: skip
+        if outcome is Outcome.DUPLICATE or outcome is Outcome.CONFLICTING_DUPLICATE:
+            return
         if outcome in _LATE:
             if self._late == 0:
                 self._late_since = now
@@ -167,11 +169,11 @@ class SanityWatch:
                             f"the last {self._late} readings over "
                             f"{num((now - self._late_since) / 60, 0)} min were all late or "
                             f"from the meter's store ({why})", now)  # fmt: skip
-            return
-        if outcome is Outcome.DUPLICATE or outcome is Outcome.CONFLICTING_DUPLICATE:
-            return
-        self._late = 0
-        self._clear("every_reading_late", now)
+            if outcome is not Outcome.STORE_FORWARD:
+                return  # not in the series
+        else:
+            self._late = 0
+            self._clear("every_reading_late", now)
         if outcome in _BAG:
             self.prev = volume_ml  # a new bag: no step across the change
             return
