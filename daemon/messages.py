@@ -59,22 +59,29 @@ class AlarmMessage(_Out):
 
 
 class AdviceMessage(_Out):
-    """`{prefix}/advice/{ward}/{bed}`: suggested replacement for a completed hour."""
+    """`{prefix}/advice/{ward}/{bed}`: suggested replacement for a completed hour, or why
+    none is suggested (`kind`; engine.advice.Advice.to_json)."""
 
     time: str
     bed: str
     ward: str
     because_of: list[str]
+    kind: Literal["rate", "no_order", "held_circulation", "held_sodium", "ended"]
     hour_start: str
     hour_output_ml: float
-    rate_ml_h: list[float]
-    fluid: str
-    sodium_mmol_h: list[float]
-    free_water_ml_h: list[float]
+    residual_ml: float = 0.0  # retained bladder content drained in the hour, not counted
+    rate_ml_h: list[float] | None  # [low, high]; None: no rate suggested
+    fluid: str | None  # named only with a rate, under an order
+    capped: bool = False  # the rate was cut to the order's maximum
+    sodium_mmol_h: list[float] | None
+    free_water_ml_h: list[float] | None
     tonicity_review: bool
+    order: dict[str, Any] | None = None  # the clinician's order the advice follows
+    serum_na: dict[str, Any] | None = None  # the result it used: value, time
     notes: list[str]
     projection: dict[str, Any] | None
     summary: str
+    pager: str | None = None  # the words a page carries
     caution: str
 
     @classmethod
