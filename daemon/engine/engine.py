@@ -369,14 +369,8 @@ class Engine:
         if labels is not dev.labels:
             dev.labels = labels
         result = decoder.decode(device_id, payload)
-        if not isinstance(result, Rejected):
-            sanity = dev.sanity
-            if sanity is None:
-                sanity = dev.sanity = SanityWatch(device_id, decoder.profile,
-                                                  self._sanity_changes)  # fmt: skip
-            sanity.clock(now, result.device_time)
-            if self._calibrated:
-                result = self._calibrate(dev, result)
+        if self._calibrated and not isinstance(result, Rejected):
+            result = self._calibrate(dev, result)
         if isinstance(result, Rejected):
             dev.quality.add(result.reason)
             dev.sent_since[result.reason] += 1
@@ -384,7 +378,11 @@ class Engine:
                 self.observe(ReadingTrace(now, topic, device_id, dev.bed, None, None, None,
                                           (result.reason,), (), labels))  # fmt: skip
             return [RejectedInput(now, topic, device_id, result.reason, result.detail)]
+        sanity = dev.sanity
+        if sanity is None:
+            sanity = dev.sanity = SanityWatch(device_id, decoder.profile, self._sanity_changes)
         if dev.cleaner is None:
+            sanity.clock(now, result.device_time)  # an unbound meter's clock can be wrong too
             dev.quality.add(Outcome.UNBOUND)
             if self.observe is not None:
                 trace = ReadingTrace(now, topic, device_id, None, result.device_time,
@@ -393,10 +391,7 @@ class Engine:
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
-        last = outcomes[-1]
-        assert dev.sanity is not None
-        dev.sanity.cleaned(now, now if last is Outcome.CLOCK_SKEW else result.device_time,
-                           result.device_time, result.volume_ml, last)  # fmt: skip
+        sanity.cleaned(now, result.device_time, result.volume_ml, outcomes[-1])
         revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
         if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
             dev.last_usable = now

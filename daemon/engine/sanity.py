@@ -11,7 +11,10 @@ Pure: fed by the engine with receive times and readings; warnings are plain data
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
+
+import numpy as np
 
 from .numbers import num
 from .outcomes import Outcome
@@ -47,8 +50,21 @@ FAR_RUN = 3  # consecutive readings that far off before warning (and back before
 LATE_RUN = 10
 MAX_CHANGES = 10_000  # changes kept for the shell; the oldest half goes beyond this
 HISTORY_KEPT = 20  # warnings kept per meter, raised and cleared (the newest)
-_LATE = frozenset({Outcome.LATE, Outcome.TOO_OLD, Outcome.STORE_FORWARD})
-_BAG = frozenset({Outcome.BAG_CHANGE, Outcome.BAG_CHANGE_INFERRED})
+# What a reading's outcome means here (one dict lookup per reading).
+_STEP, _STORED, _LATE, _BAG, _SKEWED, _SKIP = "step", "stored", "late", "bag", "skewed", "skip"
+_KIND: dict[Outcome, str] = {
+    Outcome.ACCEPTED: _STEP,  # in the series at its device time
+    Outcome.NOISE_FALL: _STEP,
+    Outcome.SPIKE_CONFIRMED: _STEP,
+    Outcome.STORE_FORWARD: _STORED,  # in the series, but sent late
+    Outcome.LATE: _LATE,  # not in the series
+    Outcome.TOO_OLD: _LATE,
+    Outcome.BAG_CHANGE: _BAG,  # a new bag: no step across it
+    Outcome.BAG_CHANGE_INFERRED: _BAG,
+    Outcome.CLOCK_SKEW: _SKEWED,  # in the series at its receive time
+}  # anything else (duplicates, artefacts, held or reordered readings): _SKIP
+_BREAK = math.nan  # in a span's values: no step across it (a bag change)
+MAX_SPAN_VALUES = 20_000  # a span is judged early past this many readings (memory bound)
 
 
 @dataclass(frozen=True, slots=True)
@@ -81,9 +97,9 @@ class SanityWatch:
     the meter's cleaner judged (with its outcome and the time the engine used)."""
 
     __slots__ = (
-        "_changes", "_far", "_late", "_late_since", "_near", "active", "device_id", "falls",
-        "history", "interval", "n", "net", "nonzero", "period_s", "prev", "profile",
-        "resolution", "span_start", "steps", "tiny",
+        "_changes", "_far", "_late", "_late_since", "_near", "_span_end", "active",
+        "device_id", "history", "interval", "period_s", "profile", "resolution", "span_start",
+        "tiny_ml", "values", "watch_clock",
     )  # fmt: skip
 
     def __init__(self, device_id: str, profile: DeviceProfile, changes: list[Change]) -> None:
@@ -91,6 +107,7 @@ class SanityWatch:
         self.profile = profile.name
         self.period_s = float(profile.timing.period_s)
         self.resolution = profile.volume.resolution_ml
+        self.tiny_ml = self.resolution / FINER_THAN  # a step this small is "far below" it
         self.interval = profile.volume.semantics is Semantics.INTERVAL
         self.active: dict[str, SanityWarning] = {}
         self.history: list[SanityWarning] = []  # raised ones, with when they cleared
@@ -98,13 +115,12 @@ class SanityWatch:
         self._far = self._near = 0
         self._late = 0
         self._late_since = 0.0
-        self.prev: float | None = None  # the last value in the series (cumulative)
-        self._reset(None)
-
-    def _reset(self, start: float | None) -> None:
-        self.span_start = start
-        self.n = self.steps = self.falls = self.nonzero = self.tiny = 0
-        self.net = 0.0
+        # the span's values in the series, in order (a bag change breaks the chain):
+        # one append per reading, judged with numpy when the span is complete
+        self.values: list[float] = []
+        self.span_start: float | None = None
+        self._span_end = -math.inf  # the first reading starts the first span
+        self.watch_clock = True  # a far clock may be pending: check device times
 
     # --- raising and clearing --------------------------------------------------------
     def _raise(self, code: str, key: str, detail: str, now: float) -> None:
@@ -137,28 +153,51 @@ class SanityWatch:
     # --- device times -------------------------------------------------------------------
     def clock(self, now: float, device_time: float) -> None:
         off = now - device_time
-        if abs(off) > FAR_S:
-            self._far += 1
-            self._near = 0
-            if self._far >= FAR_RUN and "device_time_far" not in self.active:
-                years = abs(off) / (365.25 * 86400.0)
-                when = "behind" if off > 0 else "ahead of"
-                self._raise("device_time_far", "time.format",
-                            f"device times are {num(years, 1)} years {when} the receive time "
-                            "(epoch seconds read as milliseconds, or the other way round, "
-                            "or the meter's clock is not set)", now)  # fmt: skip
-        else:
-            self._near += 1
+        if -FAR_S <= off <= FAR_S:
             self._far = 0
+            self._near += 1
             if self._near >= FAR_RUN:
-                self._clear("device_time_far", now)
+                self.watch_clock = False  # settled: the fast path skips this until it is not
+                if self.active:
+                    self._clear("device_time_far", now)
+            return
+        self.watch_clock = True
+        self._far += 1
+        self._near = 0
+        if self._far >= FAR_RUN and "device_time_far" not in self.active:
+            years = abs(off) / (365.25 * 86400.0)
+            when = "behind" if off > 0 else "ahead of"
+            self._raise("device_time_far", "time.format",
+                        f"device times are {num(years, 1)} years {when} the receive time "
+                        "(epoch seconds read as milliseconds, or the other way round, "
+                        "or the meter's clock is not set)", now)  # fmt: skip
 
     # --- judged readings ------------------------------------------------------------------
-    def cleaned(self, now: float, t: float, device_time: float, volume_ml: float,
-                outcome: Outcome) -> None:  # fmt: skip
-        if outcome is Outcome.DUPLICATE or outcome is Outcome.CONFLICTING_DUPLICATE:
+    def cleaned(self, now: float, device_time: float, volume_ml: float, outcome: Outcome
+                ) -> None:  # fmt: skip
+        """A reading the meter's cleaner judged: its device time, its volume and its
+        outcome (the last one, if it settled a held reading). Called for every reading:
+        one in the series at its device time costs a lookup, an append and a few
+        comparisons (its device time is then near the receive time: it can only end a
+        far-clock warning, and `watch_clock` says whether one may be pending)."""
+        kind = _KIND.get(outcome, _SKIP)
+        if kind is _STEP:
+            if self.watch_clock:
+                self.clock(now, device_time)
+            if self._late:
+                self._late = 0
+                if self.active:
+                    self._clear("every_reading_late", now)
+            values = self.values
+            values.append(volume_ml)
+            if device_time >= self._span_end or len(values) > MAX_SPAN_VALUES:
+                self._span(now, device_time)
             return
-        if outcome in _LATE:
+        if self.watch_clock or not -FAR_S <= now - device_time <= FAR_S:
+            self.clock(now, device_time)
+        if kind is _SKIP:  # a duplicate, an artefact, a held or an out-of-order reading
+            return
+        if kind is _LATE or kind is _STORED:
             if self._late == 0:
                 self._late_since = now
             self._late += 1
@@ -169,50 +208,51 @@ class SanityWatch:
                             f"the last {self._late} readings over "
                             f"{num((now - self._late_since) / 60, 0)} min were all late or "
                             f"from the meter's store ({why})", now)  # fmt: skip
-            if outcome is not Outcome.STORE_FORWARD:
+            if kind is _LATE:
                 return  # not in the series
         else:
             self._late = 0
-            self._clear("every_reading_late", now)
-        if outcome in _BAG:
-            self.prev = volume_ml  # a new bag: no step across the change
+            if self.active:
+                self._clear("every_reading_late", now)
+        if kind is _BAG:
+            if not self.interval:
+                self.values.append(_BREAK)  # a new bag: no step across the change
+            self.values.append(volume_ml)
             return
-        if outcome is Outcome.ARTEFACT_DROPPED or outcome is Outcome.IMPLAUSIBLE_FLOW:
-            return
-        if outcome is Outcome.SPIKE_HELD or outcome is Outcome.REORDERED:
-            return  # settled later, or out of order: no step from it
-        self._step(now, t, volume_ml)
+        t = now if kind is _SKEWED else device_time  # the time the engine used
+        self.values.append(volume_ml)
+        if t >= self._span_end or len(self.values) > MAX_SPAN_VALUES:
+            self._span(now, t)
 
-    def _step(self, now: float, t: float, v: float) -> None:
+    def _span(self, now: float, t: float) -> None:
+        """The reading at `t` starts the first span, or completes one."""
         if self.span_start is None:
-            self._reset(t)
-        self.n += 1
-        if self.interval:
-            step = v  # each value is the volume of its interval
+            self.span_start = t
+            self._span_end = t + SPAN_S
         else:
-            prev, self.prev = self.prev, v
-            if prev is None:
-                return
-            step = v - prev
-        self.steps += 1
-        if step < 0:
-            self.falls += 1
-        if step != 0.0:
-            self.nonzero += 1
-            if abs(step) < self.resolution / FINER_THAN:
-                self.tiny += 1
-        self.net += step
-        assert self.span_start is not None
-        if t - self.span_start >= SPAN_S:
-            self._judge(now, t - self.span_start)
-            self._reset(t)
+            self._judge(now, t)
 
-    def _judge(self, now: float, span_s: float) -> None:
-        if self.n < ARRIVING * span_s / self.period_s:
+    def _judge(self, now: float, t: float) -> None:
+        """A complete span, up to the reading at `t`: judge it, and start the next one
+        from that reading."""
+        assert self.span_start is not None
+        span_s = t - self.span_start
+        vals = np.array(self.values, dtype=np.float64)
+        self.values = [] if self.interval else [self.values[-1]]
+        self.span_start = t
+        self._span_end = t + SPAN_S
+        n = int(np.count_nonzero(~np.isnan(vals)))
+        if n < ARRIVING * span_s / self.period_s:
             return  # too few readings to say anything either way
+        diffs = vals if self.interval else np.diff(vals)
+        diffs = diffs[~np.isnan(diffs)]  # no step across a bag change
+        moved = diffs[diffs != 0.0]
+        steps, nonzero = int(diffs.size), int(moved.size)
+        falls = int(np.count_nonzero(moved < 0.0))
+        tiny = int(np.count_nonzero(np.abs(moved) < self.tiny_ml))
         hours = span_s / 3600.0
-        flow = self.net / hours
-        steady = self.steps >= MIN_STEPS and self.falls <= FALLS_MAX * self.steps
+        flow = float(moved.sum()) / hours
+        steady = steps >= MIN_STEPS and falls <= FALLS_MAX * steps
         if steady and 0.0 < flow < LOW_FLOW_ML_H:
             self._raise("flow_below_adult", "volume.unit",
                         f"implied flow {num(flow, 3)} mL/h over {num(hours, 1)} h, rising "
@@ -221,13 +261,13 @@ class SanityWatch:
                         "Check volume.unit or volume.scale_to_ml", now)  # fmt: skip
         else:
             self._clear("flow_below_adult", now)
-        if self.nonzero >= MIN_NONZERO and self.tiny * 2 > self.nonzero:
+        if nonzero >= MIN_NONZERO and tiny * 2 > nonzero:
             self._raise("steps_below_resolution", "volume.unit",
                         f"most steps are under {num(self.resolution / FINER_THAN, 3)} mL, "
                         f"far below the declared resolution of {num(self.resolution, 3)} mL: "
                         "check volume.unit or volume.scale_to_ml (or volume.resolution_ml, "
                         "if the meter really resolves that finely)", now)  # fmt: skip
-        elif self.nonzero >= MIN_NONZERO:
+        elif nonzero >= MIN_NONZERO:
             self._clear("steps_below_resolution", now)
 
 
