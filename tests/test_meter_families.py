@@ -33,7 +33,7 @@ from daemon.engine.profiles import (
 from daemon.errors import UserError
 from daemon.profile_files import load_profiles
 from simulator.encode import encode
-from simulator.meterlog import MeterFaults, context_record, simulate, write_log
+from simulator.meterlog import MeterFaults, constant, context_record, simulate, write_log
 from tests.conftest import PROFILES, T0
 
 KV = PROFILES["keyvalue-decilitre"]
@@ -386,3 +386,24 @@ def test_simulator_and_replay_give_the_true_hourly_volumes(tmp_path: Path,
 
 def iso_hour(k: int) -> str:
     return datetime.fromtimestamp(T0 + 3600 * k, UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def test_explain_shows_each_reading_s_topic_level(tmp_path: Path,
+                                                  capsys: pytest.CaptureFixture[str]
+                                                  ) -> None:  # fmt: skip
+    """An alarm on a key=value meter: explain lists its readings with their ward level."""
+    start = datetime.fromtimestamp(T0, UTC)
+    # invented: 300 mL/h for 3 h after a relieved obstruction (over the post-obstructive
+    # line of > 200 mL/h for 2 h: Halbgewachs & Domes, Can Fam Physician 2015)
+    sim = simulate(KV, "kv-0101", start, 3.0, constant(300.0), levels={"ward": "4-east"})
+    log = tmp_path / "pod.jsonl"
+    ctx = context_record(T0 - 60, "bed-19", "4-east", ["kv-0101"], relieved_at=T0 - 120)
+    write_log(log, [ctx, *sim.records])
+    assert main(["replay", str(log), "--json"]) == 0
+    events = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    alarm = next(e for e in events if e.get("type") == "alarm" and e["rule"] == "pod-hourly")
+    assert main(["explain", str(log), alarm["alarm_id"], "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["readings"] and all(r["topic_levels"] == {"ward": "4-east"} for r in d["readings"])
+    assert main(["explain", str(log), alarm["alarm_id"]]) == 0
+    assert "[ward=4-east]" in capsys.readouterr().out
