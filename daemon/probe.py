@@ -32,6 +32,7 @@ from .errors import UserError
 from .journal import log_payload
 
 SAMPLE_KEPT = 3  # latest decoded readings shown per device
+CODES_KEPT = 32  # distinct status codes counted per device
 TIMES_KEPT = 4096  # (receive, device) times kept per device for the period and bursts
 # A store-and-forward burst: this many readings or more, each received within
 # max(BURST_GAP_S, a tenth of the period) of the one before, whose device times are a
@@ -156,6 +157,8 @@ class ProbeTally:
         d.levels = {k: v for k, v in m.groupdict().items() if k != DEVICE_LEVEL}
         code = self.decoder.status_code(payload)
         if code is not None:
+            if code not in d.status_codes and len(d.status_codes) >= CODES_KEPT:
+                code = "(other codes)"  # a meter sending anything must not grow the probe
             d.status_codes[code] += 1
         self.engine.step(topic, payload, recv_time)
         out = self.decoder.decode(device, payload)
