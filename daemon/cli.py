@@ -14,6 +14,7 @@ from .commands import (
     demo,
     explain,
     export,
+    new_profile,
     notify_test,
     probe,
     replay,
@@ -25,8 +26,8 @@ from .errors import UserError
 
 # Each command module adds its own parser; add new commands to this list.
 COMMANDS = [
-    replay, check_profiles, export, run, check, probe, simulate, demo, explain, annotate,
-    notify_test, user,
+    replay, check_profiles, new_profile, export, run, check, probe, simulate, demo, explain,
+    annotate, notify_test, user,
 ]  # fmt: skip
 
 

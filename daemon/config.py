@@ -291,6 +291,8 @@ class ServiceConfig(_Strict):
     topic_prefix: Annotated[str, Field(pattern=TOPIC_PREFIX, max_length=128)] = "hourwatch"
     profiles: Path | None = None  # folder; None = the profiles shipped with Hourwatch
     rules: Path | None = None  # folder with escalation.toml; None = the shipped rules
+    # per-meter calibration (factor, offset_ml) kept apart from the bed contexts; optional
+    devices: Path | None = None
     log_level: Literal["debug", "info", "warning", "error"] = "info"
     # pages and summaries show local clock time in this zone (IANA name); data stays UTC
     timezone: Annotated[str, Field(min_length=1, max_length=64)] = "UTC"
@@ -349,7 +351,7 @@ def _resolve(base: Path, data: dict[str, Any]) -> None:
             if isinstance(v, str) and v and not Path(v).is_absolute():
                 table[k] = str(base / v)
 
-    fix(data, ("profiles", "rules"))
+    fix(data, ("profiles", "rules", "devices"))
     fix(data.get("journal"), ("path",))
     fix(data.get("board"), ("users_file",))
     broker = data.get("broker")

@@ -107,3 +107,13 @@ def quality_text(engine: Engine) -> Iterator[str]:
         yield "  bed context messages rejected: " + ", ".join(
             f"{b}: {n}" for b, n in sorted(engine.context_rejections.items())
         )
+    warnings = engine.sanity_history()
+    if warnings:
+        yield ""
+        yield "Profile sanity warnings (readings were not rejected; the profile may be wrong)"
+        for w in warnings:
+            when = f"since {iso(w.since)}" + (
+                f", cleared {iso(w.cleared)}" if w.cleared is not None else ", still active"
+            )
+            yield f"  {w.device_id:<14} {w.code:<24} check {w.key}  ({when})"
+            yield f"  {'':<14} {w.detail}"

@@ -59,7 +59,8 @@ class AlarmMessage(_Out):
 
 
 class AdviceMessage(_Out):
-    """`{prefix}/advice/{ward}/{bed}`: suggested replacement for a completed hour."""
+    """`{prefix}/advice/{ward}/{bed}`: suggested replacement for a completed hour, or why
+    none is suggested (`kind`; engine.advice.Advice.to_json)."""
 
     time: str
     bed: str

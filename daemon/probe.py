@@ -1,28 +1,47 @@
 """A probe for the clinical engineer commissioning a meter: listen to one profile's topic
-filter and tell, per device, how its messages decode, how often it reports and how far
-its clock is from ours. It never touches a journal and never acknowledges anything on
-the service's behalf: its own clean session, its own random client id.
+filter and tell, per device, how its messages decode, what the service's cleaning would
+make of them, how often it reports and how far its clock is from ours. It never touches a
+journal and never acknowledges anything on the service's behalf: its own clean session,
+its own random client id. With a capture file, it writes what it hears as a JSON Lines
+log, for `hourwatch replay CAPTURE --bind DEVICE`.
 
-`DeviceTally`/`ProbeTally` hold no I/O (times are arguments); `listen` is the MQTT side.
+`DeviceTally`/`ProbeTally` hold no I/O (times are arguments; the capture is a callable);
+`listen` is the MQTT side.
 """
 
 from __future__ import annotations
 
 import itertools
+import json
 import secrets
 import statistics
 import threading
 import time
-from collections import Counter
+from collections import Counter, deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, TextIO
 
 from .engine.decode import Decoder, Reading, Rejected
-from .engine.profiles import DeviceProfile
+from .engine.engine import Engine
+from .engine.numbers import num
+from .engine.outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, Outcome
+from .engine.profiles import DEVICE_LEVEL, Calibration, DeviceProfile, Semantics
+from .engine.timefmt import iso
 from .errors import UserError
+from .journal import log_payload
 
-EXAMPLES_KEPT = 3  # details of the latest rejections shown per device
+SAMPLE_KEPT = 3  # latest decoded readings shown per device
+CODES_KEPT = 32  # distinct status codes counted per device
+TIMES_KEPT = 4096  # (receive, device) times kept per device for the period and bursts
+# A store-and-forward burst: this many readings or more, each received within
+# max(BURST_GAP_S, a tenth of the period) of the one before, whose device times are a
+# reporting period apart or more. A meter that sends its buffer after an outage does
+# that; a wrong clock sends every reading on time, each equally far off.
+BURST_MIN = 3
+BURST_GAP_S = 2.0
+PROBE_BED = "probe-{n}"  # the temporary bed each heard device is bound to
+PROBE_WARD = "probe"
 
 
 @dataclass
@@ -31,10 +50,23 @@ class DeviceTally:
     retained: int = 0  # sent by the broker at subscribe time: stale receive times
     accepted: int = 0
     rejected: Counter[str] = field(default_factory=Counter)
-    device_times: list[float] = field(default_factory=list)
-    offsets: list[float] = field(default_factory=list)  # receive - device time, s
-    last_volume_ml: float | None = None
-    last_rejections: list[tuple[str, str]] = field(default_factory=list)  # newest last
+    # the first example of each rejection reason: (detail, profile key to check)
+    examples: dict[str, tuple[str, str]] = field(default_factory=dict)
+    status_codes: Counter[str] = field(default_factory=Counter)
+    levels: dict[str, str] = field(default_factory=dict)  # the topic's metadata levels
+    # (receive time, device time, retained) of decoded readings, in arrival order
+    times: deque[tuple[float, float, bool]] = field(
+        default_factory=lambda: deque(maxlen=TIMES_KEPT)
+    )
+    sample: deque[tuple[float, float, float | None]] = field(
+        default_factory=lambda: deque(maxlen=SAMPLE_KEPT)
+    )  # (device time, mL, implied mL/h)
+    last: tuple[float, float] | None = None  # (device time, mL) of the last reading
+    bed: str | None = None  # its temporary bed in the probe's engine
+
+    @property
+    def device_times(self) -> list[float]:
+        return [d for _, d, _ in self.times]
 
     def period_s(self) -> float | None:
         """Median interval between successive distinct device times."""
@@ -42,90 +74,235 @@ class DeviceTally:
         gaps = [b - a for a, b in itertools.pairwise(ts)]
         return statistics.median(gaps) if gaps else None
 
-    def offset_s(self) -> float | None:
-        return statistics.median(self.offsets) if self.offsets else None
+    def _live(self) -> list[tuple[float, float]]:
+        return [(r, d) for r, d, retained in self.times if not retained]
+
+    def bursts(self, period_s: float, stored_after_s: float) -> list[tuple[int, float, float]]:
+        """Store-and-forward bursts: (buffered readings, receive span s, device span s)."""
+        live = self._live()
+        return [
+            (len(run), live[run[-1]][0] - live[run[0]][0], live[run[-1]][1] - live[run[0]][1])
+            for run in _bursts(live, period_s, stored_after_s)
+        ]
+
+    def offset_s(self, period_s: float | None = None, stored_after_s: float = 0.0
+                 ) -> float | None:  # fmt: skip
+        """Median of receive minus device time over the live readings: not retained ones,
+        and not the buffered ones of a burst."""
+        live = self._live()
+        runs = _bursts(live, period_s, stored_after_s) if period_s else []
+        buffered = {i for run in runs for i in run}
+        offsets = [r - d for i, (r, d) in enumerate(live) if i not in buffered]
+        return statistics.median(offsets) if offsets else None
+
+
+def _bursts(live: list[tuple[float, float]], period_s: float, stored_after_s: float
+            ) -> list[list[int]]:  # fmt: skip
+    """The buffered readings (indices, in arrival order) of each burst: a run of readings
+    received close together whose device times lie a reporting period or more apart, with
+    at least BURST_MIN of them older on arrival than the engine's store-and-forward line
+    (those are the buffered ones; the run's newest readings were sent on time)."""
+    gap = max(BURST_GAP_S, period_s / 10.0)
+    runs: list[list[int]] = []
+
+    def close(run: list[int]) -> None:
+        old = [i for i in run if live[i][0] - live[i][1] > stored_after_s]
+        if len(old) >= BURST_MIN:
+            runs.append(old)
+
+    run = [0] if live else []
+    for i in range(1, len(live)):
+        (r0, d0), (r1, d1) = live[i - 1], live[i]
+        if r1 - r0 <= gap and d1 - d0 >= 0.9 * period_s:
+            run.append(i)
+            continue
+        close(run)
+        run = [i]
+    close(run)
+    return runs
 
 
 class ProbeTally:
-    """Per-device decode results for one profile."""
+    """Per-device decode results for one profile, and what the service's cleaning makes
+    of them: each device heard is bound to a temporary bed of a rule-less engine."""
 
-    def __init__(self, profile: DeviceProfile) -> None:
+    def __init__(
+        self,
+        profile: DeviceProfile,
+        save: Callable[[float, str, bytes], None] | None = None,
+        calibration: dict[str, Calibration] | None = None,
+    ) -> None:
         self.profile = profile
         self.decoder = Decoder(profile)
         self.pattern = profile.topic_regex()
+        self.engine = Engine([profile], calibration=calibration)
         self.devices: dict[str, DeviceTally] = {}
         self.other_topics = 0  # matched the filter but not the profile's topic
+        self.save = save
 
     def observe(self, topic: str, payload: bytes, recv_time: float, retained: bool = False) -> None:
+        if self.save is not None:
+            self.save(recv_time, topic, payload)
         m = self.pattern.match(topic)
         if m is None:
             self.other_topics += 1
             return
-        device = m.group(1)
+        device = m.group(DEVICE_LEVEL)
         d = self.devices.get(device)
         if d is None:
             d = self.devices[device] = DeviceTally()
+            self._bind(device, d, recv_time)
         d.messages += 1
         d.retained += retained
+        d.levels = {k: v for k, v in m.groupdict().items() if k != DEVICE_LEVEL}
+        code = self.decoder.status_code(payload)
+        if code is not None:
+            if code not in d.status_codes and len(d.status_codes) >= CODES_KEPT:
+                code = "(other codes)"  # a meter sending anything must not grow the probe
+            d.status_codes[code] += 1
+        self.engine.step(topic, payload, recv_time)
         out = self.decoder.decode(device, payload)
         if isinstance(out, Rejected):
             reason = str(out.reason)
             d.rejected[reason] += 1
-            d.last_rejections.append(
-                (reason, f"{out.detail}: {out.shown}" if out.shown else out.detail)
-            )
-            del d.last_rejections[:-EXAMPLES_KEPT]
+            if reason not in d.examples:
+                detail = f"{out.detail}: {out.shown}" if out.shown else out.detail
+                d.examples[reason] = (detail, out.key)
             return
         assert isinstance(out, Reading)
         d.accepted += 1
-        d.device_times.append(out.device_time)
-        if not retained:  # a retained message's receive time says nothing of its clock
-            d.offsets.append(recv_time - out.device_time)
-        d.last_volume_ml = out.volume_ml
+        d.times.append((recv_time, out.device_time, retained))
+        d.sample.append((out.device_time, out.volume_ml, self._rate(d, out)))
+        d.last = (out.device_time, out.volume_ml)
+
+    def _bind(self, device: str, d: DeviceTally, now: float) -> None:
+        """A temporary bed for the device, so the engine cleans its readings."""
+        bed = PROBE_BED.format(n=len(self.devices))
+        ctx = {"ward": PROBE_WARD, "device_ids": [device],
+               "device_profiles": {device: self.profile.name}}  # fmt: skip
+        refused = self.engine.step(f"hourwatch/beds/{bed}/context", ctx, now)
+        if not refused:  # an id no context may hold stays unbound: decoding only
+            d.bed = bed
+
+    def _rate(self, d: DeviceTally, r: Reading) -> float | None:
+        """Implied mL/h: an interval's volume over its length, or the rise since the last
+        reading (none across a fall: a bag change or noise)."""
+        p = self.profile
+        if p.volume.semantics is Semantics.INTERVAL:
+            return r.volume_ml * 3600.0 / float(p.volume.interval_s or p.timing.period_s)
+        if d.last is None or r.bag_flag:
+            return None
+        dt = r.device_time - d.last[0]
+        rise = r.volume_ml - d.last[1]
+        return rise * 3600.0 / dt if dt > 0 and rise >= 0 else None
 
     def report(self) -> list[str]:
         p = self.profile
         lines: list[str] = []
         if not self.devices:
             lines.append(f"no message on {p.subscription} from any device")
+        quality = self.engine.quality()
         for name in sorted(self.devices):
-            d = self.devices[name]
-            rej = sum(d.rejected.values())
-            why = ", ".join(f"{r} {n}" for r, n in sorted(d.rejected.items()))
-            lines.append(f"{name}: {d.messages} messages, {d.accepted} decoded, {rej} rejected"
-                         + (f" ({why})" if why else "")
-                         + (f", {d.retained} retained" if d.retained else ""))  # fmt: skip
-            period = d.period_s()
-            if period is None:
-                lines.append(
-                    f"  reporting period: needs two readings (profile {p.timing.period_s} s)"
-                )
-            else:
-                n = len(set(d.device_times)) - 1
-                lines.append(f"  reporting period: {period:g} s (median of {n} intervals; "
-                             f"profile: {p.timing.period_s} s)")  # fmt: skip
-            offset = d.offset_s()
-            if offset is None:
-                lines.append("  clock offset: no decoded live reading")
-            else:
-                tol = p.timing.clock_tolerance_s
-                lines.append(f"  clock offset: {offset:+.1f} s (receive minus device time, "
-                             f"median; profile tolerates {tol} s)")  # fmt: skip
-            if d.last_volume_ml is not None:
-                lines.append(f"  last volume: {d.last_volume_ml:g} mL ({p.volume.semantics})")
-            for reason, detail in d.last_rejections:
-                lines.append(f"  rejected: {reason}: {detail}")
+            lines += self._device_report(name, self.devices[name], quality.get(name))
         if self.other_topics:
             lines.append(f"{self.other_topics} messages on topics outside {p.topic}")
         return lines
 
+    def _device_report(self, name: str, d: DeviceTally, q: dict[str, object] | None) -> list[str]:
+        p = self.profile
+        rej = sum(d.rejected.values())
+        why = ", ".join(f"{r} {n}" for r, n in sorted(d.rejected.items()))
+        lines = [f"{name}: {d.messages} messages, {d.accepted} decoded, {rej} rejected"
+                 + (f" ({why})" if why else "")
+                 + (f", {d.retained} retained" if d.retained else "")]  # fmt: skip
+        if d.levels:
+            levels = ", ".join(f"{k}={v!r}" for k, v in d.levels.items())
+            lines.append(f"  topic levels: {levels}")
+        for t, ml, rate in d.sample:
+            per_h = f"{num(rate, 1)} mL/h" if rate is not None else "- mL/h"
+            lines.append(f"  decoded: {iso(t)}  {num(ml, 1)} mL ({p.volume.semantics})  {per_h}")
+        period = d.period_s()
+        if period is None:
+            lines.append(f"  reporting period: needs two readings (profile {p.timing.period_s} s)")
+        else:
+            n = len(set(d.device_times)) - 1
+            lines.append(f"  reporting period: {period:g} s (median of {n} intervals; "
+                         f"profile: {p.timing.period_s} s)")  # fmt: skip
+        lines += self._clock(d)
+        if d.status_codes:
+            codes = ", ".join(f"{c!r} {n}" for c, n in sorted(d.status_codes.items()))
+            lines.append(f"  status codes: {codes}")
+        if q is not None and d.bed is not None:
+            counts = q["outcomes"]
+            assert isinstance(counts, dict)
+            bags = counts.get(Outcome.BAG_CHANGE, 0) + counts.get(Outcome.BAG_CHANGE_INFERRED, 0)
+            lines.append(f"  bag changes: {bags}")
+            shown = {o: n for o, n in sorted(counts.items()) if Outcome(o) not in DECODE_REJECTIONS}
+            series = sum(n for o, n in shown.items() if Outcome(o) in COUNTED_IN_SERIES)
+            held = " (1 held for confirmation)" if q.get("held") else ""
+            lines.append(f"  cleaning, as the service would: {series} into the series; "
+                         + ", ".join(f"{o} {n}" for o, n in shown.items()) + held)  # fmt: skip
+        for reason, n in sorted(d.rejected.items()):
+            detail, key = d.examples[reason]
+            check = f"; check {key}" if key else ""
+            lines.append(f"  rejected: {reason}: {detail}  ({n}; e.g. the first{check})")
+        for w in self.engine.sanity_warnings():
+            if w.device_id == name:
+                lines.append(f"  WARNING {w.line()}")
+        return lines
 
-def find_profile(profiles: list[DeviceProfile], name: str) -> DeviceProfile:
+    def _clock(self, d: DeviceTally) -> list[str]:
+        p = self.profile
+        period = float(p.timing.period_s)
+        lines = []
+        tol = p.timing.clock_tolerance_s
+        stored_after = max(tol, 2 * period)  # as the engine tells a stored reading
+        bursts = d.bursts(period, stored_after)
+        for n, recv_span, dev_span in bursts:
+            lines.append(f"  buffered upload: {n} readings received within {num(recv_span, 1)} s, "
+                         f"device times spanning {num(dev_span / 60, 1)} min: the meter's store "
+                         "sent after an outage, not a clock error")  # fmt: skip
+        offset = d.offset_s(period, stored_after)
+        if offset is None:
+            lines.append("  clock offset: no decoded live reading")
+            return lines
+        what = "median of live readings" + (", bursts left out" if bursts else "")
+        lines.append(f"  clock offset: {offset:+.1f} s (receive minus device time, {what}; "
+                     f"profile tolerates {tol} s)")  # fmt: skip
+        if -offset > tol:
+            what = "the receive time is used (clock_skew)"
+            lines.append(f"  clock error: the device clock runs {num(-offset, 0)} s ahead of "
+                         f"ours on every live reading: {what}")  # fmt: skip
+        elif offset > stored_after:
+            what = ("each counts as store-and-forward (check the meter's clock, its time zone, "
+                    "or time.format)")  # fmt: skip
+            lines.append(f"  clock error: the device clock runs {num(offset, 0)} s behind ours "
+                         f"on every live reading: {what}")  # fmt: skip
+        return lines
+
+
+def find_profile(
+    profiles: list[DeviceProfile], name: str, option: str = "--profile"
+) -> DeviceProfile:
     for p in profiles:
         if p.name == name:
             return p
     known = ", ".join(sorted(p.name for p in profiles))
-    raise UserError(f"--profile: unknown profile {name!r}; known: {known}")
+    raise UserError(f"{option}: unknown profile {name!r}; known: {known}")
+
+
+def capture_writer(fh: TextIO) -> Callable[[float, str, bytes], None]:
+    """Writes each message heard as a line of the JSON Lines log format (the payload as
+    the journal keeps it: a JSON object, else the text), flushed at once."""
+
+    def write(recv_time: float, topic: str, payload: bytes) -> None:
+        if not 0 < len(topic) <= 512:
+            return  # the log format cannot hold it (nor can a broker send it)
+        line = {"time": iso(recv_time), "topic": topic, "payload": log_payload(payload)}
+        fh.write(json.dumps(line, ensure_ascii=False) + "\n")
+        fh.flush()
+
+    return write
 
 
 def listen(

@@ -23,6 +23,7 @@ import queue
 import sys
 import threading
 import time
+from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
@@ -41,6 +42,7 @@ from .engine.effects import AdviceIssued, Effect, RejectedInput
 from .engine.engine import Engine
 from .engine.evaluator import Notice
 from .engine.outcomes import Outcome
+from .engine.sanity import SanityWarning
 from .engine.timefmt import iso
 from .errors import UserError
 from .health import Metrics, exposition
@@ -63,7 +65,7 @@ from .notify.acklinks import AckOutcome
 from .notify.notifier import Notifier
 from .notify.settings import check_notify, policy_roles
 from .notify.store import open_store
-from .profile_files import load_profiles
+from .profile_files import load_devices, load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover
 from .rule_files import load_advice, load_policy, load_rules
@@ -263,7 +265,7 @@ class Service:
                 unbound_expiry_s=lim.unbound_expiry_s,
                 max_unbound_devices=lim.max_unbound_devices,
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
-                ack_users=cfg.ack.users or None,
+                ack_users=cfg.ack.users or None, calibration=load_devices(cfg.devices),
                 observe=self.marks.observe if cfg.board.listen else None,  # the board's bag changes
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
@@ -287,6 +289,7 @@ class Service:
         self.control: queue.SimpleQueue[Any] = queue.SimpleQueue()  # confirmations, connection
         self.metrics = Metrics()
         self.stats = ServiceStats()
+        self._sanity_raised: Counter[str] = Counter()  # under self.lock: raised, by code
         self.journal: Journal | None = None
         self.link: MqttLink | None = None
         self.outbox: Outbox | None = None
@@ -606,6 +609,9 @@ class Service:
                     if isinstance(e, AlarmEvent):
                         arrived[id(e)] = m.arrived
             self._arm()
+            sanity = self.engine.take_sanity_changes()
+            self._sanity_raised.update(w.code for what, w in sanity if what == "raised")
+        self._log_sanity(sanity)
         self._readings_since_state = True
         self.changes.touch()  # any bed's output may have moved
         with self.metrics.lock:
@@ -618,6 +624,14 @@ class Service:
         with self.metrics.lock:
             for m in batch:
                 self.metrics.latency.observe(done - m.arrived)
+
+    def _log_sanity(self, changes: list[tuple[str, SanityWarning]]) -> None:
+        """A meter's profile looks wrong (or looks right again): logged, never paged; the
+        active ones are in /metrics (engine.sanity)."""
+        for what, w in changes:
+            log = self.log.warning if what == "raised" else self.log.info
+            log(f"profile_sanity_{what}", device_id=w.device_id, profile=w.profile,
+                code=w.code, key=w.key, detail=w.detail)  # fmt: skip
 
     def _connection(self, c: Connection) -> None:
         assert self.outbox is not None
@@ -1141,8 +1155,13 @@ class Service:
                 if n:
                     prof = dev.decoder.profile.name
                     dups[prof] = dups.get(prof, 0) + n
+            # meters whose profile looks wrong now; warnings raised since the start, by sign
+            gauges["profile_sanity_warnings"] = float(len(self.engine.sanity_warnings()))
+            raised = sorted(self._sanity_raised.items())
         for prof, n in sorted(dups.items()):
             labelled.append(("duplicates_total", {"profile": prof}, float(n)))
+        for code, n in raised:
+            labelled.append(("profile_sanity_warnings_total", {"code": code}, float(n)))
         families = self.metrics.families(gauges, labelled)
         if self.notifier is not None:
             families += self.notifier.metric_families()

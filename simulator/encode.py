@@ -6,10 +6,13 @@ can be simulated without code of its own.
 
 from __future__ import annotations
 
+import math
+from collections.abc import Mapping
 from datetime import UTC, datetime, timedelta, timezone
 from typing import Any
 
-from daemon.engine.profiles import DeviceProfile, Encoding, Semantics, TimeFormat
+from daemon.engine.decode import checksum_text
+from daemon.engine.profiles import VOLUME_UNITS, DeviceProfile, Encoding, Semantics, TimeFormat
 
 
 def _set_path(obj: dict[str, Any], path: str, value: Any) -> None:
@@ -31,17 +34,22 @@ def encode(
     unit: str = "mL",
     utc_offset_min: int = 60,
     decimals: int = 1,
+    levels: Mapping[str, str] | None = None,
 ) -> tuple[str, dict[str, Any] | str]:
-    """Return (topic, payload): a dict for JSON families, a line of text otherwise."""
+    """Return (topic, payload): a dict for JSON families, a line of text otherwise.
+
+    `unit` is the per-message unit for families with a unit field; without one the
+    volume is written in the profile's unit or scale. `decimals` is the precision in
+    mL (0.1 mL by default), kept whatever the unit. `levels` fills the topic's metadata
+    placeholders ({ward}, ...; each defaults to "<name>-1")."""
     f = profile.fields
     values: dict[str, Any] = {}
     if profile.volume.semantics is Semantics.BAG_WEIGHT:
         amount = volume_ml * profile.volume.specific_gravity + profile.volume.tare_g
-    elif f.unit is not None and unit == "L":
-        amount = volume_ml / 1000.0
-        decimals += 3
     else:
-        amount = volume_ml
+        scale = VOLUME_UNITS[unit] if f.unit is not None else profile.volume.ml_per_unit
+        amount = volume_ml / scale
+        decimals = max(0, decimals + round(math.log10(scale)))
     values["volume"] = round(amount, decimals)
     if f.unit is not None:
         values["unit"] = "g" if profile.volume.semantics is Semantics.BAG_WEIGHT else unit
@@ -73,15 +81,29 @@ def encode(
         values["status"] = status
     if f.bag_change_flag is not None:
         values["bag_change_flag"] = bag_flag
-    topic = profile.topic.replace("{device_id}", device_id)
+    topic = profile.topic_for(device_id, dict(levels or {}))
     refs = {k: v for k, v in f.model_dump().items() if v is not None and k in values}
-    if profile.payload.encoding is Encoding.JSON:
+    enc = profile.payload.encoding
+    if enc is Encoding.JSON:
         obj: dict[str, Any] = {}
         for key, path in refs.items():
             _set_path(obj, path, values[key])
         return topic, obj
+    cs = profile.checksum
+    if enc is Encoding.KEYVALUE:
+        pairs, kv = profile.payload.pairs, profile.payload.kv
+        text = pairs.join(f"{ref}{kv}{values[key]}" for key, ref in refs.items())
+        if cs is not None:
+            text += f"{pairs}{cs.field}{kv}{checksum_text(cs.algorithm, text)}"
+        return topic, text
+    sep = profile.payload.separator
+    assert sep is not None
     cols = [""] * (max(refs.values()) + 1)
     for key, idx in refs.items():
         cols[idx] = str(values[key])
-    assert profile.payload.separator is not None
-    return topic, profile.payload.separator.join(cols)
+    text = sep.join(cols)
+    if cs is not None:
+        cols += [""] * (int(cs.field) - len(cols))
+        text = sep.join(cols)
+        text += sep + checksum_text(cs.algorithm, text)
+    return topic, text

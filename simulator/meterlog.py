@@ -69,8 +69,10 @@ def simulate(
     faults: MeterFaults | None = None,
     seed: int = 0,
     initial_bag_ml: float = 0.0,
+    levels: dict[str, str] | None = None,
 ) -> SimStream:
-    """One meter of `profile` over `hours`, producing `flow(minute)` mL/h."""
+    """One meter of `profile` over `hours`, producing `flow(minute)` mL/h; `levels` fills
+    the topic's metadata placeholders ({ward}, ...)."""
     faults = faults or MeterFaults()
     rng = np.random.default_rng(seed)
     t0 = start.timestamp()
@@ -108,7 +110,9 @@ def simulate(
             value += faults.spike_ml
             spikes.pop(0)
         seq += 1
-        topic, payload = encode(profile, device_id, t0 + ts, value, seq=seq, bag_flag=pending_flag)
+        topic, payload = encode(
+            profile, device_id, t0 + ts, value, seq=seq, bag_flag=pending_flag, levels=levels
+        )
         pending_flag = False
         lo, hi = faults.latency_s
         recv = ts + rng.uniform(lo, hi)

@@ -45,12 +45,13 @@ class MeterRun:
     messages: list[Message]  # receive order not guaranteed; the runner sorts
 
 
-def _render(profile: DeviceProfile, spec: Meter, r: SimReading) -> Render:
+def _render(profile: DeviceProfile, spec: Meter, r: SimReading, levels: dict[str, str]
+            ) -> Render:  # fmt: skip
     def render(clock: Clock) -> Payload:
         _, payload = encode(
             profile, spec.device_id, clock(r.taken) + r.clock_offset_s, r.value_ml,
             seq=r.seq, bag_flag=r.bag_flag, status=r.status, unit=spec.unit,
-            utc_offset_min=spec.utc_offset_min,
+            utc_offset_min=spec.utc_offset_min, levels=levels,
         )  # fmt: skip
         return payload
 
@@ -68,8 +69,10 @@ def simulate_meter(
     start: float,
     hours: float,
     rng: np.random.Generator,
+    ward: str | None = None,
 ) -> MeterRun:
-    """Readings of one meter over its time on the bed, from the urine reaching it."""
+    """Readings of one meter over its time on the bed, from the urine reaching it. A
+    `{ward}` level in the profile's topic says the bed's ward."""
     cum = np.concatenate([[0.0], np.cumsum(to_bag_ml_min)])
     grid = np.arange(cum.size, dtype=np.float64)
 
@@ -87,7 +90,8 @@ def simulate_meter(
     next_change = begin + _uniform(rng, changes) * HOUR_S if changes else math.inf
     flag_due = False
     noise = 0.0
-    topic = profile.topic.replace("{device_id}", spec.device_id)
+    levels = {"ward": ward} if ward else {}
+    topic = profile.topic_for(spec.device_id, levels)
     readings: list[SimReading] = []
     messages: list[Message] = []
     burst: dict[float, int] = {}  # outage end -> readings sent in its burst so far
@@ -146,7 +150,7 @@ def simulate_meter(
             recv = back + 0.5 + 0.05 * burst[back]  # the buffer is sent oldest first
         elif spec.reorder_p and rng.random() < spec.reorder_p:
             recv += 1.5 * period  # overtaken by the next reading, within the reorder tolerance
-        render = _render(profile, spec, reading)
+        render = _render(profile, spec, reading, levels)
         messages.append(Message(start + recv, topic, render))
         if spec.duplicate_p and rng.random() < spec.duplicate_p:
             messages.append(Message(start + recv + float(rng.uniform(1.0, 30.0)), topic, render))

@@ -98,7 +98,7 @@ def build(
         plan = clinical.plan_output(bed, t0, minutes, _rng(seed, i, _FLOW))
         runs = [
             simulate_meter(profiles[m.profile], m, plan.to_bag_ml_min, t0, run_h,
-                           _rng(seed, i, _METER, j))
+                           _rng(seed, i, _METER, j), ward)
             for j, m in enumerate(bed.meters)
         ]  # fmt: skip
         messages += clinical.context_messages(bed, ward, plan, run_h, prefix, order_s=i * 0.01)

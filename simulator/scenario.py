@@ -157,7 +157,7 @@ class Meter(_Strict):
         1.5,
     )
     noise_ml: Annotated[float, Field(ge=0, le=20)] = 0.5
-    unit: Literal["mL", "L"] = "mL"  # for profiles with a unit field
+    unit: Literal["mL", "cL", "dL", "L"] = "mL"  # for profiles with a unit field
     utc_offset_min: Annotated[int, Field(ge=-720, le=840)] = 60  # for local-time profiles
     duplicate_p: Prob = 0.0
     reorder_p: Prob = 0.0
@@ -354,10 +354,10 @@ def check_scenario(sc: Scenario, profiles: dict[str, DeviceProfile]) -> str | No
                         f"{key}.faults.{k}.status: {f.status!r} is a normal status of "
                         f"{p.name!r}, not a fault"
                     )
-            if m.unit == "L" and (
+            if m.unit != "mL" and (
                 p.fields.unit is None or p.volume.semantics is Semantics.BAG_WEIGHT
             ):
-                return f"{key}.unit: profile {p.name!r} cannot report litres"
+                return f"{key}.unit: profile {p.name!r} has no unit field to say {m.unit}"
             interval = p.volume.semantics is Semantics.INTERVAL
             if interval and m.period_s is not None and m.period_s != p.volume.interval_s:
                 return (

@@ -26,10 +26,10 @@ from typing import Any
 import numpy as np
 from hypothesis import strategies as st
 
-from daemon.engine.decode import Decoder, Reading
+from daemon.engine.decode import Decoder, Reading, checksum_text
 from daemon.engine.engine import Engine
 from daemon.engine.escalation import EscalationPolicy
-from daemon.engine.profiles import DeviceProfile
+from daemon.engine.profiles import DeviceProfile, Encoding
 from daemon.engine.rules import RuleDef
 from daemon.profile_files import load_profiles
 from simulator.encode import encode
@@ -103,10 +103,41 @@ def shaped_like(draw: st.DrawFn, name: str) -> Any:
     return obj
 
 
+def signed(p: DeviceProfile, text: str) -> str:
+    """A text payload with the checksum its family expects appended (a meter that signs
+    what it sends, whatever that is), so the fuzz reaches past the checksum."""
+    cs = p.checksum
+    if cs is None:
+        return text
+    if p.payload.encoding is Encoding.KEYVALUE:
+        return f"{text}{p.payload.pairs}{cs.field}{p.payload.kv}{checksum_text(cs.algorithm, text)}"
+    sep = p.payload.separator or ","
+    cols = text.split(sep)
+    cols += [""] * max(0, int(cs.field) - len(cols))
+    text = sep.join(cols[: int(cs.field)])
+    return text + sep + checksum_text(cs.algorithm, text)
+
+
+def unsigned(p: DeviceProfile, text: str) -> str:
+    """A family's text payload without its checksum (the part a meter signs)."""
+    if p.checksum is None:
+        return text
+    last = p.payload.pairs if p.payload.encoding is Encoding.KEYVALUE else p.payload.separator
+    return text.rpartition(last or ",")[0]
+
+
 def _columns(name: str) -> st.SearchStrategy[str]:
-    sep = PROFILES[name].payload.separator or ","
+    p = PROFILES[name]
     cell = st.text(max_size=12) | st.floats().map(str) | st.integers().map(str)
-    return st.lists(cell, max_size=6).map(sep.join)
+    if p.payload.encoding is Encoding.KEYVALUE:
+        keys = st.sampled_from(
+            [str(r) for r in p.fields.model_dump().values() if r is not None]
+        ) | st.text(max_size=6)
+        pair = st.tuples(keys, cell).map(lambda kv: f"{kv[0]}{p.payload.kv}{kv[1]}")
+        text = st.lists(pair, max_size=7).map(p.payload.pairs.join)
+    else:
+        text = st.lists(cell, max_size=6).map((p.payload.separator or ",").join)
+    return text | text.map(lambda t: signed(p, t))
 
 
 @st.composite
@@ -160,12 +191,18 @@ def stringly_reading(draw: st.DrawFn, name: str, device: str) -> Any:
             node = node[k]
         node[last] = text
         return payload
-    cols = payload.split(p.payload.separator or ",")
-    if key == "time":
-        cols[int(p.fields.time)] = text
+    if key != "time":
+        text = draw(st.sampled_from(["twelve", "1_000", "nan", "inf"]))
+    ref = getattr(p.fields, "time" if key == "time" else "volume")
+    body = unsigned(p, payload)
+    if p.payload.encoding is Encoding.KEYVALUE:
+        pairs = [x.partition(p.payload.kv) for x in body.split(p.payload.pairs)]
+        body = p.payload.pairs.join(f"{k}{sep}{text if k == ref else v}" for k, sep, v in pairs)
     else:
-        cols[int(p.fields.volume)] = draw(st.sampled_from(["twelve", "1_000", "nan", "inf"]))
-    return (p.payload.separator or ",").join(cols)
+        cols = body.split(p.payload.separator or ",")
+        cols[int(ref)] = text
+        body = (p.payload.separator or ",").join(cols)
+    return signed(p, body)
 
 
 def payloads(name: str) -> st.SearchStrategy[Any]:
@@ -194,7 +231,7 @@ bed_ids = st.sampled_from([GOOD_BED, *OTHER_BEDS, "bed 9", "b" * 70, "bed+1", "x
 def meter_message(draw: st.DrawFn) -> tuple[str, Any]:
     name = draw(st.sampled_from(NAMES))
     device = draw(device_ids)
-    topic = PROFILES[name].topic.replace("{device_id}", device)
+    topic = PROFILES[name].topic_for(device)
     payload = draw(payloads(name) | wild_reading(name, device) | stringly_reading(name, device))
     return topic, payload
 
@@ -321,7 +358,7 @@ class Screen:
     def __init__(self, good: GoodStream) -> None:
         self.engine = Engine(PROFILES.values())
         self.decoder = Decoder(PROFILES[good.profile])
-        self.good_topic = PROFILES[good.profile].topic.replace("{device_id}", GOOD_DEVICE)
+        self.good_topic = PROFILES[good.profile].topic_for(GOOD_DEVICE)
         self.good_context = f"hourwatch/beds/{GOOD_BED}/context"
 
     def allowed(self, topic: str, payload: Any) -> bool:

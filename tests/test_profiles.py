@@ -38,8 +38,10 @@ def _load_bad(tmp_path: Path, name: str, text: str, file_stem: str | None = None
 def test_every_shipped_profile_loads(path: Path) -> None:
     profile = load_profile(path)
     assert profile.name == path.stem
-    assert profile.subscription.count("+") == 1
-    assert profile.topic_regex().match(profile.topic.replace("{device_id}", "dev-9"))
+    # one '+' per placeholder: the device id, and any metadata level
+    assert profile.subscription.count("+") == profile.topic.count("{")
+    m = profile.topic_regex().match(profile.topic_for("dev-9"))
+    assert m is not None and m.group("device_id") == "dev-9"
 
 
 def test_at_least_four_families_covering_every_semantics_and_encoding() -> None:

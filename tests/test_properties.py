@@ -145,8 +145,15 @@ def test_sum_equals_truth_nested_telemetry(s: dict[str, Any]) -> None:
     _check_stream("nested-telemetry", s)
 
 
+@settings(max_examples=30)
+@given(streams("keyvalue-decilitre"))
+def test_sum_equals_truth_keyvalue_decilitre(s: dict[str, Any]) -> None:
+    _check_stream("keyvalue-decilitre", s)
+
+
 def test_every_cumulative_family_has_a_sum_property() -> None:
-    covered = {"reference-cumulative", "gravimetric-text", "nested-telemetry"}
+    covered = {"reference-cumulative", "gravimetric-text", "nested-telemetry",
+               "keyvalue-decilitre"}  # fmt: skip
     assert set(CUMULATIVE) <= covered, "add a property test for the new cumulative family"
 
 
@@ -170,7 +177,7 @@ def test_decoding_never_raises(data: st.DataObject) -> None:
 def _topics() -> st.SearchStrategy[str]:
     device = st.text(st.characters(blacklist_characters="/"), min_size=1, max_size=10)
     routed = st.sampled_from(sorted(PROFILES)).flatmap(
-        lambda n: device.map(lambda d: PROFILES[n].topic.replace("{device_id}", d))
+        lambda n: device.map(lambda d: PROFILES[n].topic_for(d))
     )
     beds = st.sampled_from(["b1", "b2", "x/y"]).map(lambda b: f"hourwatch/beds/{b}/context")
     return routed | beds | st.text(max_size=40)

@@ -177,7 +177,7 @@ def test_live_publishing_to_a_real_broker(
         for regex, dec in decoders.items():
             m = regex.match(topic)
             if m:
-                r = dec.decode(m.group(1), payload)
+                r = dec.decode(m.group("device_id"), payload)
                 assert isinstance(r, Reading)
                 # payload times are the wall clock at publish, not the simulated clock
                 assert abs(r.device_time - wall) < 3.0

@@ -1,11 +1,14 @@
 """`hourwatch replay LOG`: a log through the engine on a virtual clock; with
 `--report` an HTML review report, with `--compare`/`--compare-profiles` a what-if
-comparison of two rule sets or two device profile sets."""
+comparison of two rule sets or two device profile sets. `--bind DEVICE[=BED]` replays a
+capture that holds no bed context (`hourwatch probe --save`), `--rejects` lists every
+rejected line with its reason, detail and payload."""
 
 from __future__ import annotations
 
 import argparse
 import json
+import re
 import sqlite3
 import sys
 from collections.abc import Iterator
@@ -17,13 +20,13 @@ from typing import TYPE_CHECKING
 from ..caution import CAUTION
 from ..config import zone_info
 from ..engine.effects import Effect
-from ..engine.engine import Engine
+from ..engine.engine import ID_PATTERN, Engine
 from ..engine.timefmt import TimeError, parse_iso
 from ..errors import UserError
 from ..hourly import hourly_json, hourly_text, quality_text
 from ..journal_api import target
-from ..profile_files import load_profiles
-from ..replay import replay_file
+from ..profile_files import load_devices, load_profiles
+from ..replay import Records, RejectLog, bench_beds, replay_file
 from ..rule_files import load_advice, load_policy, load_rules
 from ..sources import require
 from ..timeline import effect_json, effect_text
@@ -78,6 +81,29 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         metavar="ZONE",
         help="local time zone for the clock times on pages (IANA name; default UTC)",
     )
+    r.add_argument(
+        "--bind",
+        action="append",
+        default=[],
+        metavar="DEVICE[=BED]",
+        help="bind a meter to a temporary bed at the log's start (a capture without a bed "
+        "context); repeat for more meters; default beds bench-1, bench-2, ...",
+    )
+    r.add_argument(
+        "--weight",
+        type=float,
+        default=None,
+        metavar="KG",
+        help="with --bind: the temporary beds' weight (without one, weight-based rules do not run)",
+    )
+    r.add_argument(
+        "--rejects",
+        action="store_true",
+        help="list every rejected line with its reason, detail and payload",
+    )
+    r.add_argument(
+        "--devices", type=Path, default=None, metavar="FILE", help="per-meter calibration file"
+    )
     r.set_defaults(run=run)
 
 
@@ -92,6 +118,24 @@ def _where(folder: Path | None) -> str:
     return str(folder) if folder else "shipped defaults"
 
 
+def binds(specs: list[str]) -> list[tuple[str, str]]:
+    """--bind DEVICE[=BED] options as (device, bed); a meter without a bed gets its own."""
+    out: list[tuple[str, str]] = []
+    pattern = re.compile(ID_PATTERN)
+    for k, spec in enumerate(specs, start=1):
+        device, _, bed = spec.partition("=")
+        bed = bed or f"bench-{k}"
+        if not device or len(device) > 128 or "/" in device:
+            raise UserError(f"--bind: {spec!r}: a meter id (1-128 characters, no '/') first")
+        if not pattern.match(bed):
+            raise UserError(f"--bind: {spec!r}: the bed {bed!r} is not an identifier "
+                            "(letters, digits, '-', '_', '.')")  # fmt: skip
+        if any(device == d for d, _ in out):
+            raise UserError(f"--bind: meter {device!r} named twice")
+        out.append((device, bed))
+    return out
+
+
 def run(args: argparse.Namespace) -> int:
     require(args.log, "log file")
     if args.plots and not args.report:
@@ -102,21 +146,42 @@ def run(args: argparse.Namespace) -> int:
             until = parse_iso(args.until)
         except TimeError as exc:
             raise UserError(f"--until: {exc}") from None
+    if args.weight is not None and not 0 < args.weight <= 400:
+        raise UserError("--weight: a body weight in kg, above 0 and at most 400")
+    if args.weight is not None and not args.bind:
+        raise UserError("--weight is the weight of the beds --bind makes: name a meter")
+    bound = binds(args.bind)
+    review = args.compare or args.compare_profiles or args.report
+    used = [o for o, on in (("--bind", bound), ("--rejects", args.rejects),
+                            ("--devices", args.devices)) if on]  # fmt: skip
+    if review and used:
+        raise UserError(f"{used[0]} works with the timeline and --hourly, not with a report or "
+                        "a comparison (add a bed context to the log for those)")  # fmt: skip
     if args.compare or args.compare_profiles:
         return _compare(args, until)
     if args.report:
         return _report(args, until, comparison=None)
     profiles = load_profiles(args.profiles)
+    rejects = RejectLog() if args.rejects else None
     engine = Engine(
         profiles,
         load_rules(args.rules),
         load_policy(args.rules),
+        observe=rejects.observe if rejects else None,
         advice_policy=load_advice(args.rules),
         timezone=_zone(args.timezone),
+        calibration=load_devices(args.devices),
     )
+    bench = bench_beds(bound, args.weight, engine.prefix) if bound else None
+
+    def wrap(records: Records) -> Records:
+        records = bench(records) if bench else records
+        return rejects.records(records) if rejects else records
+
     out = sys.stdout
     if args.hourly:
-        result = replay_file(args.log, engine, until=until)
+        result = replay_file(args.log, engine, until=until, wrap=wrap,
+                             on_effects=rejects.on_effects if rejects else None)  # fmt: skip
         lines = hourly_json(result.engine) if args.json else hourly_text(result.engine)
         for line in lines:
             out.write(line + "\n")
@@ -124,16 +189,26 @@ def run(args: argparse.Namespace) -> int:
         show = effect_json if args.json else effect_text
 
         def emit(effects: list[Effect]) -> None:
+            if rejects is not None:
+                rejects.on_effects(effects)
             for e in effects:
                 line = show(e)
                 if line is not None:
                     out.write(line + "\n")
 
-        result = replay_file(args.log, engine, on_effects=emit, until=until)
+        result = replay_file(args.log, engine, on_effects=emit, until=until, wrap=wrap)
         if not args.json:
             out.write("\n")
             for line in quality_text(result.engine):
                 out.write(line + "\n")
+    if rejects is not None:
+        if args.json:
+            for row in rejects.rows:
+                out.write(json.dumps(row.to_json()) + "\n")
+        else:
+            out.write(f"\nRejected lines: {len(rejects.rows)}\n")
+            for row in rejects.rows:
+                out.write("\n".join(row.text(args.log)) + "\n")
     if not args.json:
         out.write(
             f"\n{result.messages} messages replayed, {len(result.bad_lines)} malformed "

@@ -7,6 +7,7 @@ from typing import Annotated, Literal
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from .advice import ReplacementOrder
+from .profiles import Calibration
 from .rules import canonical_rule_id
 
 DeviceId = Annotated[str, Field(min_length=1, max_length=128)]
@@ -69,6 +70,10 @@ class BedContext(BaseModel):
     )
     # meters this bed takes over from another bed's binding (moved with a notice)
     replaces: Annotated[list[DeviceId], Field(max_length=8)] = Field(default_factory=list)
+    # per-meter calibration found on the bench (wins over a devices file's)
+    calibration: Annotated[dict[DeviceId, Calibration], Field(max_length=8)] = Field(
+        default_factory=dict
+    )
 
     @field_validator("disabled_rules")
     @classmethod

@@ -5,16 +5,26 @@ Never raises for bad input: every failure is a `Rejected` with a reason code.
 
 from __future__ import annotations
 
+import binascii
 import json
 import math
+import re
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 from .numbers import num
 from .outcomes import DECODE_REJECTIONS, Outcome, withheld_reason
-from .profiles import UNIT_ALIASES, DeviceProfile, Encoding, Semantics, TimeFormat
-from .timefmt import TimeError, parse_epoch, parse_iso
+from .profiles import (
+    UNIT_ALIASES,
+    VOLUME_UNITS,
+    ChecksumAlgorithm,
+    DeviceProfile,
+    Encoding,
+    Semantics,
+    TimeFormat,
+)
+from .timefmt import EPOCH_MAX_S, TimeError, parse_epoch, parse_iso
 
 Payload = bytes | str | dict[str, Any] | list[Any]
 
@@ -40,6 +50,28 @@ class Rejected:
     # the offending value as sent, for the commissioning probe only (a hostile payload
     # may carry anything): never journaled, logged or published
     shown: str = ""
+    key: str = ""  # the profile key most likely to fix it, when it may be the profile's
+
+
+def _checksum(algorithm: ChecksumAlgorithm, data: bytes) -> tuple[int, int]:
+    """(value, hex digits) of a payload's checksum."""
+    if algorithm is ChecksumAlgorithm.XOR8:
+        x = 0
+        for b in data:
+            x ^= b
+        return x, 2
+    if algorithm is ChecksumAlgorithm.CRC16_CCITT:
+        return binascii.crc_hqx(data, 0xFFFF), 4
+    return binascii.crc32(data) & 0xFFFFFFFF, 8
+
+
+def checksum_text(algorithm: ChecksumAlgorithm, text: str) -> str:
+    """The checksum of `text` as a meter writes it (upper-case hex, zero-padded)."""
+    value, digits = _checksum(algorithm, text.encode("utf-8"))
+    return f"{value:0{digits}X}"
+
+
+_HEX = re.compile(r"^[0-9A-Fa-f]{1,8}$")
 
 
 def _json_getter(path: str | int) -> Callable[[Any], Any]:
@@ -63,6 +95,11 @@ def _json_getter(path: str | int) -> Callable[[Any], Any]:
 def _column_getter(ref: str | int) -> Callable[[Any], Any]:
     index = int(ref)
     return lambda cols: cols[index].strip() if index < len(cols) else _MISSING
+
+
+def _key_getter(ref: str | int) -> Callable[[Any], Any]:
+    key = str(ref)  # a key name, literally (no dotted paths in key=value text)
+    return lambda pairs: pairs.get(key, _MISSING)
 
 
 def _number(value: Any) -> float | None:
@@ -111,8 +148,9 @@ class Decoder:
     def __init__(self, profile: DeviceProfile) -> None:
         self.profile = profile
         f = profile.fields
-        json_payload = profile.payload.encoding is Encoding.JSON
-        make = _json_getter if json_payload else _column_getter
+        enc = profile.payload.encoding
+        make = {Encoding.JSON: _json_getter, Encoding.DELIMITED: _column_getter,
+                Encoding.KEYVALUE: _key_getter}[enc]  # fmt: skip
         self._get_time = make(f.time)
         self._get_volume = make(f.volume)
         self._get_device = make(f.device_id) if f.device_id is not None else None
@@ -121,14 +159,20 @@ class Decoder:
         self._get_offset = make(f.utc_offset) if f.utc_offset is not None else None
         self._get_status = make(f.status) if f.status is not None else None
         self._get_flag = make(f.bag_change_flag) if f.bag_change_flag is not None else None
-        self._json = profile.payload.encoding is Encoding.JSON
+        self._json = enc is Encoding.JSON
+        self._keyvalue = enc is Encoding.KEYVALUE
         self._num = _number if self._json else _text_number
         self._sep = profile.payload.separator or ","
+        self._pair_sep, self._kv_sep = profile.payload.pairs, profile.payload.kv
+        cs = profile.checksum
+        self._checksum = cs
+        self._cs_last = self._pair_sep if self._keyvalue else self._sep
         self._time_format = profile.time.format
         self._status_ok = frozenset(s.lower() for s in profile.status.ok)
         self._status_bag = frozenset(s.lower() for s in profile.status.bag_change)
         v = profile.volume
-        self._default_unit = v.unit
+        self._default_unit = v.unit or "mL"
+        self._default_scale = v.ml_per_unit  # mL per unit sent without a unit field
         self._sg = v.specific_gravity
         self._tare = v.tare_g
         self._semantics = v.semantics
@@ -162,74 +206,142 @@ class Decoder:
             except UnicodeDecodeError:
                 return Rejected(Outcome.BAD_ENCODING, "payload is not UTF-8")
         if not isinstance(payload, str):
-            return Rejected(Outcome.BAD_PAYLOAD, "delimited payload is not text")
-        return payload.strip().split(self._sep)
+            return Rejected(Outcome.BAD_PAYLOAD, f"{self.profile.payload.encoding} payload "
+                            "is not text", key="payload.encoding")  # fmt: skip
+        text = payload.strip()
+        if self._checksum is not None:
+            checked = self._verify(text)
+            if isinstance(checked, Rejected):
+                return checked
+            text = checked
+        if self._keyvalue:
+            return self._pairs(text)
+        return text.split(self._sep)
+
+    def _pairs(self, text: str) -> dict[str, str] | Rejected:
+        """key=value pairs; blanks around keys, values and separators are tolerated,
+        unknown keys are kept (and ignored), a key given twice is refused."""
+        out: dict[str, str] = {}
+        for part in text.split(self._pair_sep):
+            if not part.strip():
+                continue  # a trailing separator, or an empty pair
+            key, sep, value = part.partition(self._kv_sep)
+            key = key.strip()
+            if not sep or not key:
+                return Rejected(Outcome.BAD_PAYLOAD, "not key=value pairs (see "
+                                "payload.pair_separator and kv_separator)",
+                                key="payload.kv_separator")  # fmt: skip
+            if key in out:
+                return Rejected(Outcome.BAD_PAYLOAD, "a key appears twice")
+            out[key] = value.strip()
+        if not out:
+            return Rejected(Outcome.BAD_PAYLOAD, "no key=value pair")
+        return out
+
+    def _verify(self, text: str) -> str | Rejected:
+        """The payload's text without its checksum, if the checksum matches."""
+        cs = self._checksum
+        assert cs is not None
+        head, sep, tail = text.rpartition(self._cs_last)
+        where = "checksum.field"
+        if not sep:
+            return Rejected(Outcome.BAD_CHECKSUM, "no checksum field", key=where)
+        if self._keyvalue:
+            key, kv, value = tail.partition(self._kv_sep)
+            if not kv or key.strip() != cs.field:
+                return Rejected(Outcome.BAD_CHECKSUM, "checksum is not the last pair", key=where)
+        else:
+            if text.count(self._sep) != int(cs.field):
+                return Rejected(Outcome.BAD_CHECKSUM, "checksum is not in its column", key=where)
+            value = tail
+        value = value.strip()
+        expected, digits = _checksum(cs.algorithm, head.encode("utf-8"))
+        if not _HEX.match(value) or len(value) > digits:
+            return Rejected(Outcome.BAD_CHECKSUM, f"checksum is not {digits} hex digits",
+                            shown=_shown(value), key="checksum.algorithm")  # fmt: skip
+        if int(value, 16) != expected:
+            return Rejected(Outcome.BAD_CHECKSUM, "checksum does not match the payload",
+                            shown=_shown(value), key="checksum.algorithm")  # fmt: skip
+        return head
 
     def decode(self, topic_device: str, payload: Payload) -> Reading | Rejected:
         obj = self._parse(payload)
         if isinstance(obj, Rejected):
-            return Rejected(obj.reason, obj.detail, topic_device)
+            obj.device_id = topic_device
+            return obj
 
         device_id = topic_device
         if self._get_device is not None:
             named = self._get_device(obj)
             if named is _MISSING:
-                return Rejected(Outcome.MISSING_FIELD, "device id field missing", topic_device)
+                return Rejected(Outcome.MISSING_FIELD, "device id field missing", topic_device,
+                                key="fields.device_id")  # fmt: skip
             if not isinstance(named, str) or named.strip() != topic_device:
                 return Rejected(
                     Outcome.DEVICE_ID_MISMATCH,
                     "payload names another device than its topic",
                     topic_device,
                     _shown(named),
+                    "fields.device_id",
                 )
 
         status_bag = False
         if self._get_status is not None:
             status = self._get_status(obj)
             if status is _MISSING:
-                return Rejected(Outcome.MISSING_FIELD, "status field missing", device_id)
+                return Rejected(Outcome.MISSING_FIELD, "status field missing", device_id,
+                                key="fields.status")  # fmt: skip
             code = str(status).strip().lower()
             if code in self._status_bag:
                 status_bag = True
             elif code not in self._status_ok:
                 return Rejected(
                     Outcome.DEVICE_FAULT, "status code is not a measuring one", device_id,
-                    _shown(status),
+                    _shown(status), "status.ok",
                 )  # fmt: skip
 
         raw_time = self._get_time(obj)
         if raw_time is _MISSING:
-            return Rejected(Outcome.MISSING_FIELD, "time field missing", device_id)
+            return Rejected(Outcome.MISSING_FIELD, "time field missing", device_id,
+                            key="fields.time")  # fmt: skip
         try:
             device_time = self._time(raw_time, obj)
         except TimeError as exc:
-            return Rejected(Outcome.BAD_TIME, exc.reason, device_id, str(exc)[:120])
+            return Rejected(Outcome.BAD_TIME, exc.reason, device_id, str(exc)[:120],
+                            "time.format")  # fmt: skip
 
         raw_volume = self._get_volume(obj)
         if raw_volume is _MISSING:
-            return Rejected(Outcome.MISSING_FIELD, "volume field missing", device_id)
+            return Rejected(Outcome.MISSING_FIELD, "volume field missing", device_id,
+                            key="fields.volume")  # fmt: skip
         value = self._num(raw_volume)
         if value is None:
             return Rejected(
-                Outcome.BAD_NUMBER, "volume is not a finite number", device_id, _shown(raw_volume)
-            )
+                Outcome.BAD_NUMBER, "volume is not a finite number", device_id, _shown(raw_volume),
+                "fields.volume",
+            )  # fmt: skip
 
-        unit = self._default_unit
         if self._get_unit is not None:
             raw_unit = self._get_unit(obj)
             if raw_unit is _MISSING:
-                return Rejected(Outcome.MISSING_FIELD, "unit field missing", device_id)
+                return Rejected(Outcome.MISSING_FIELD, "unit field missing", device_id,
+                                key="fields.unit")  # fmt: skip
             canon = UNIT_ALIASES.get(raw_unit.strip()) if isinstance(raw_unit, str) else None
             if canon is None or (canon == "g") != (self._semantics is Semantics.BAG_WEIGHT):
                 return Rejected(
-                    Outcome.BAD_UNIT, "unit not known for this meter", device_id, _shown(raw_unit)
-                )
-            unit = canon  # type: ignore[assignment]
-        volume_ml = self.to_ml(value, unit)
+                    Outcome.BAD_UNIT, "unit not known for this meter", device_id, _shown(raw_unit),
+                    "fields.unit",
+                )  # fmt: skip
+            volume_ml = self.to_ml(value, canon)
+        elif self._semantics is Semantics.BAG_WEIGHT:
+            volume_ml = self.to_ml(value, "g")
+        else:
+            volume_ml = value * self._default_scale
         if not (self._min <= volume_ml <= self._max):
             return Rejected(
-                Outcome.OUT_OF_RANGE, f"{num(volume_ml, 1)} mL outside physical range", device_id
-            )
+                Outcome.OUT_OF_RANGE, f"{num(volume_ml, 1)} mL outside physical range", device_id,
+                key="volume.unit",
+            )  # fmt: skip
 
         seq: int | None = None
         if self._get_seq is not None:
@@ -238,7 +350,11 @@ class Decoder:
                 n = self._num(raw_seq)
                 if n is None or n != int(n):
                     return Rejected(
-                        Outcome.BAD_NUMBER, "seq is not an integer", device_id, _shown(raw_seq)
+                        Outcome.BAD_NUMBER,
+                        "seq is not an integer",
+                        device_id,
+                        _shown(raw_seq),
+                        "fields.seq",
                     )
                 seq = int(n)
 
@@ -248,11 +364,21 @@ class Decoder:
             flag = flag or (raw_flag is not _MISSING and _truthy(raw_flag))
         return Reading(device_id, device_time, volume_ml, seq, flag, value)
 
+    def status_code(self, payload: Payload) -> str | None:
+        """The status code a payload carries, as sent (the probe counts them)."""
+        if self._get_status is None:
+            return None
+        obj = self._parse(payload)
+        if isinstance(obj, Rejected):
+            return None
+        code = self._get_status(obj)
+        return None if code is _MISSING else str(code).strip()[:32]
+
     def to_ml(self, value: float, unit: str) -> float:
-        if unit == "mL":
-            return value
-        if unit == "L":
-            return value * 1000.0
+        """A value in a canonical unit (UNIT_ALIASES' values) in mL."""
+        scale = VOLUME_UNITS.get(unit)
+        if scale is not None:
+            return value if scale == 1.0 else value * scale
         # Bag weight: mass / specific gravity (1 g of water taken as 1 mL; the
         # 0.2-0.3% density-of-water difference is below the meters' resolution).
         return (value - self._tare) / self._sg
@@ -275,4 +401,21 @@ class Decoder:
             raise TimeError(
                 f"epoch time is not a JSON number: {raw!r}", "epoch time is not a number"
             )
-        return parse_epoch(raw, 1.0 if fmt is TimeFormat.EPOCH_S else 1000.0)
+        scale = 1.0 if fmt is TimeFormat.EPOCH_S else 1000.0
+        try:
+            return parse_epoch(raw, scale)
+        except TimeError as exc:
+            other = 1000.0 if fmt is TimeFormat.EPOCH_S else 1.0
+            if "range" in exc.reason and _in_epoch_range(raw, other):
+                meant = "epoch_ms" if other == 1000.0 else "epoch_s"
+                raise TimeError(f"{exc}; as {meant} it would be a date",
+                                f"{exc.reason}; as {meant} it would be a date: "
+                                "check time.format") from None  # fmt: skip
+            raise
+
+
+def _in_epoch_range(raw: Any, scale: float) -> bool:
+    try:
+        return 0.0 < float(raw) / scale < EPOCH_MAX_S
+    except (TypeError, ValueError, OverflowError):
+        return False

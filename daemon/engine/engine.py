@@ -39,8 +39,9 @@ from .escalation import EscalationPolicy
 from .evaluator import Evaluator, Notice, criterion_holds
 from .lifecycle import AlarmBook
 from .outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, DeviceQuality, Outcome, withheld_reason
-from .profiles import DeviceProfile, Semantics
+from .profiles import DEVICE_LEVEL, Calibration, DeviceProfile, Semantics
 from .rules import Hypovolaemia, ReplacementRatio, RuleDef
+from .sanity import Change, SanityWarning, SanityWatch
 from .series import MinuteSeries
 from .strictjson import NotJson, first_error, validate
 from .timefmt import LocalClock, as_epoch
@@ -61,6 +62,7 @@ UNBOUND_EXPIRY_S = 86400.0  # an unbound meter's entry is forgotten after a day 
 MAX_UNBOUND_DEVICES = 10_000  # and never more than this many unbound entries are kept
 MAX_BEDS = 2_000
 MAX_REJECTION_KEYS = 1_000  # beds named in the context-rejection counts
+Labels = tuple[tuple[str, str], ...]  # a topic's metadata levels: (("ward", "4-east"),)
 
 
 class ReadingTrace(NamedTuple):
@@ -82,6 +84,8 @@ class ReadingTrace(NamedTuple):
     # earlier readings of this device now found to be artefacts (a jump or fall they
     # followed was taken back): (effective time, the outcome they were counted with)
     revised: tuple[tuple[float, Outcome], ...] = ()
+    # the topic's metadata levels, e.g. (("ward", "4-east"),) for uo/{ward}/{device_id}/m
+    labels: Labels = ()
 
 
 @dataclass(slots=True)
@@ -111,6 +115,8 @@ class _Device:
     stored_after_s: float = 0.0  # older than this on arrival: sent from the meter's store
     reorder_tolerance_s: float = 0.0
     capacity_ml: float | None = None
+    labels: Labels = ()  # its topic's metadata levels, as last heard
+    sanity: SanityWatch | None = None
 
     def __post_init__(self) -> None:
         p = self.decoder.profile.timing
@@ -183,6 +189,7 @@ class Engine:
         max_beds: int = MAX_BEDS,
         ack_topic: str | None = None,
         ack_users: Mapping[str, Iterable[str]] | None = None,
+        calibration: Mapping[str, Calibration] | None = None,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -191,6 +198,11 @@ class Engine:
             raise ValueError("device profile names must be unique")
         self._routes = [(p.topic_regex(), Decoder(p)) for p in self.profiles]
         self._decoders = {d.profile.name: d for _, d in self._routes}
+        # per-meter calibration: a devices file's, unless a bed context gives one
+        self._calibration = dict(calibration or {})
+        self._calibrated = bool(self._calibration)  # any at all (a context may add some)
+        # sanity warnings raised and cleared since the shell last took them
+        self._sanity_changes: list[Change] = []
         self.prefix = topic_prefix.rstrip("/")
         self._bed_topic = self.prefix + "/beds/"
         self._ack_topic = self.prefix + "/ack"
@@ -213,7 +225,7 @@ class Engine:
         self.applied: Counter[str] = Counter()
         self._slowest_period = max((p.timing.period_s for p in self.profiles), default=60)
         self._max_ml_per_min = max((_max_ml_per_min(p) for p in self.profiles), default=0.0)
-        self._route_cache: dict[str, tuple[Decoder, str] | tuple[()]] = {}
+        self._route_cache: dict[str, tuple[Decoder, str, Labels] | tuple[()]] = {}
         self.devices: dict[str, _Device] = {}
         self.beds: dict[str, BedState] = {}
         self._bound: dict[str, str] = {}  # device id -> bed id
@@ -272,17 +284,23 @@ class Engine:
         if route is None:
             route = self._route(topic)
         if route:
-            return self._meter_message(topic, route[1], route[0], payload, t_now)
+            return self._meter_message(topic, route[1], route[0], payload, t_now, route[2])
         self.unrouted[Outcome.UNKNOWN_TOPIC] += 1
         return [RejectedInput(t_now, topic, None, Outcome.UNKNOWN_TOPIC, "no profile matches")]
 
-    def _route(self, topic: str) -> tuple[Decoder, str] | tuple[()]:
-        """Which profile a meter topic belongs to; remembered, since topics repeat."""
-        route: tuple[Decoder, str] | tuple[()] = ()  # () = no profile matches
+    def _route(self, topic: str) -> tuple[Decoder, str, Labels] | tuple[()]:
+        """Which profile a meter topic belongs to, the device id and the topic's metadata
+        levels (a level that is not an identifier is kept as {refused}: it could be
+        anything, a patient's name included); remembered, since topics repeat."""
+        route: tuple[Decoder, str, Labels] | tuple[()] = ()  # () = no profile matches
         for regex, decoder in self._routes:
             m = regex.match(topic)
             if m:
-                route = (decoder, m.group(1))
+                labels = tuple(
+                    (k, v if self.is_identifier(v) else REFUSED_LEVEL)
+                    for k, v in m.groupdict().items() if k != DEVICE_LEVEL
+                )  # fmt: skip
+                route = (decoder, m.group(DEVICE_LEVEL), labels)
                 break
         if len(self._route_cache) < 100_000:  # bounded: junk topics must not grow it
             self._route_cache[topic] = route
@@ -330,8 +348,9 @@ class Engine:
         return [RejectedInput(now, topic, dev.device_id, Outcome.WRONG_PROFILE, detail)]
 
     def _meter_message(
-        self, topic: str, device_id: str, decoder: Decoder, payload: Payload, now: float
-    ) -> list[Effect]:
+        self, topic: str, device_id: str, decoder: Decoder, payload: Payload, now: float,
+        labels: Labels = (),
+    ) -> list[Effect]:  # fmt: skip
         dev = self.devices.get(device_id)
         if dev is None or dev.decoder is not decoder:
             if dev is not None and dev.owned:
@@ -347,22 +366,32 @@ class Engine:
             # in the silence limit, which may bring the bed's wake-up forward
             self.beds[dev.bed].forget_quiet()
         dev.last_seen = now
+        if labels is not dev.labels:
+            dev.labels = labels
         result = decoder.decode(device_id, payload)
+        if self._calibrated and not isinstance(result, Rejected):
+            result = self._calibrate(dev, result)
         if isinstance(result, Rejected):
             dev.quality.add(result.reason)
             dev.sent_since[result.reason] += 1
             if self.observe is not None:
                 self.observe(ReadingTrace(now, topic, device_id, dev.bed, None, None, None,
-                                          (result.reason,)))  # fmt: skip
+                                          (result.reason,), (), labels))  # fmt: skip
             return [RejectedInput(now, topic, device_id, result.reason, result.detail)]
+        sanity = dev.sanity
+        if sanity is None:
+            sanity = dev.sanity = SanityWatch(device_id, decoder.profile, self._sanity_changes)
         if dev.cleaner is None:
+            sanity.clock(now, result.device_time)  # an unbound meter's clock can be wrong too
             dev.quality.add(Outcome.UNBOUND)
             if self.observe is not None:
                 trace = ReadingTrace(now, topic, device_id, None, result.device_time,
-                                     result.volume_ml, result.seq, (Outcome.UNBOUND,))  # fmt: skip
+                                     result.volume_ml, result.seq, (Outcome.UNBOUND,),
+                                     (), labels)  # fmt: skip
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
         outcomes = self._clean(dev, result, now)
+        sanity.cleaned(now, result.device_time, result.volume_ml, outcomes[-1])
         revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
         if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
             dev.last_usable = now
@@ -378,7 +407,7 @@ class Engine:
         if self.observe is not None:
             self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
                                       result.volume_ml, result.seq, tuple(outcomes),
-                                      tuple(revised)))  # fmt: skip
+                                      tuple(revised), labels))  # fmt: skip
         effects: list[Effect] = []
         if dev.bed is not None:
             effects += self._after_reading(self.beds[dev.bed], now)
@@ -397,6 +426,21 @@ class Engine:
             if o not in _SILENT:
                 effects.append(RejectedInput(now, topic, device_id, o, _DETAIL.get(o, str(o))))
         return effects
+
+    def _calibrate(self, dev: _Device, r: Reading) -> Reading | Rejected:
+        """The meter's calibration (its bed context's, else the devices file's), then the
+        physical range again."""
+        bed = self._bound.get(dev.device_id)
+        cal = self.beds[bed].context.calibration.get(dev.device_id) if bed else None
+        cal = cal or self._calibration.get(dev.device_id)
+        if cal is None:
+            return r
+        r.volume_ml = cal.apply(r.volume_ml)
+        lim = dev.decoder.profile.limits
+        if not (lim.min_ml <= r.volume_ml <= lim.max_ml):
+            return Rejected(Outcome.OUT_OF_RANGE, "outside physical range after calibration",
+                            dev.device_id, key="calibration")  # fmt: skip
+        return r
 
     def _clean(self, dev: _Device, r: Reading, now: float) -> list[Outcome]:
         t = r.device_time
@@ -502,6 +546,9 @@ class Engine:
         for dev_id in ctx.replaces:
             if dev_id not in listed:
                 return bad, f"replaces: {dev_id[:64]!r} is not in device_ids"
+        for dev_id in ctx.calibration:
+            if dev_id not in listed:
+                return bad, f"calibration: {dev_id[:64]!r} is not in device_ids"
         return ctx
 
     def screen(self, topic: str, payload: Payload) -> Refusal | None:
@@ -550,6 +597,7 @@ class Engine:
             detail = f"too many beds: this engine keeps at most {self._max_beds}"
             return self._bad_context(topic, bed_id, now, Outcome.BAD_CONTEXT, detail)
         effects, moved_from = self._bind(topic, bed_id, ctx, now)
+        self._calibrated = self._calibrated or bool(ctx.calibration)
         self.applied["context"] += 1
         for other in sorted(moved_from):  # they lost a meter: their rules may change
             effects += self._evaluate(self.beds[other], now)
@@ -951,7 +999,33 @@ class Engine:
             d = dev.quality.to_dict()
             d["bed"] = dev.bed
             d["held"] = dev.cleaner.pending() if dev.cleaner else 0
+            if dev.labels:
+                d["topic_levels"] = dict(dev.labels)
+            if dev.sanity is not None and dev.sanity.history:
+                d["warnings"] = [w.to_json() for w in dev.sanity.history]
             out[dev_id] = d
+        return out
+
+    def sanity_warnings(self) -> list[SanityWarning]:
+        """Every meter's active sanity warning (a profile that looks wrong), by meter:
+        for the data-quality summary, the service's metrics and the ward board."""
+        return [
+            w for _, dev in sorted(self.devices.items()) if dev.sanity is not None
+            for w in dev.sanity.active.values()
+        ]  # fmt: skip
+
+    def sanity_history(self) -> list[SanityWarning]:
+        """Every sanity warning raised (the newest per meter), cleared or not, by meter."""
+        return [
+            w for _, dev in sorted(self.devices.items()) if dev.sanity is not None
+            for w in dev.sanity.history
+        ]  # fmt: skip
+
+    def take_sanity_changes(self) -> list[Change]:
+        """Sanity warnings raised or cleared since the last call, in order (the shell logs
+        them); at most sanity.MAX_CHANGES are kept between calls, the newest."""
+        out = list(self._sanity_changes)
+        self._sanity_changes.clear()
         return out
 
 

@@ -36,6 +36,7 @@ class Outcome(StrEnum):
     BAD_TIME = "bad_time"
     BAD_NUMBER = "bad_number"
     BAD_UNIT = "bad_unit"
+    BAD_CHECKSUM = "bad_checksum"  # the payload's checksum does not match its text
     DEVICE_ID_MISMATCH = "device_id_mismatch"
     TOO_LARGE = "too_large"  # payload over the service's size limit, never read
     UNBOUND = "unbound"
@@ -74,6 +75,7 @@ DECODE_REJECTIONS = frozenset(
         Outcome.BAD_TIME,
         Outcome.BAD_NUMBER,
         Outcome.BAD_UNIT,
+        Outcome.BAD_CHECKSUM,
         Outcome.DEVICE_ID_MISMATCH,
         Outcome.OUT_OF_RANGE,
         Outcome.DEVICE_FAULT,

@@ -6,6 +6,7 @@ import re
 from datetime import UTC, datetime, timedelta, timezone, tzinfo
 
 _OFFSET = re.compile(r"^([+-])(\d{2}):?(\d{2})$")
+EPOCH_MAX_S = 32503680000.0  # 3000-01-01: epoch times must fall in 1970..3000
 
 
 class TimeError(ValueError):
@@ -58,7 +59,7 @@ def parse_epoch(value: object, scale: float) -> float:
         seconds = float(value) / scale
     except (ValueError, OverflowError) as exc:
         raise TimeError(f"not an epoch number: {value!r}", "not an epoch number") from exc
-    if not (0.0 < seconds < 32503680000.0):  # year 1970..3000
+    if not (0.0 < seconds < EPOCH_MAX_S):  # year 1970..3000
         raise TimeError(f"epoch out of range: {value!r}", "epoch out of range (1970-3000)")
     return seconds
 

@@ -384,6 +384,8 @@ def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict
             "meaning": words(outcome),
             "windows": inside,
         }
+        if tr.labels:  # the topic's metadata levels, e.g. {"ward": "4-east"}
+            row["topic_levels"] = dict(tr.labels)
         if later is not outcome:
             row["settled_later_as"] = str(later)
         if len(tr.outcomes) == 2:
@@ -694,10 +696,12 @@ def _reading_lines(readings: list[dict[str, Any]], windowed: bool = True) -> lis
             if "also_settled_previous_as" in r
             else ""
         )
+        levels = r.get("topic_levels")
+        where = " [" + ", ".join(f"{k}={v}" for k, v in levels.items()) + "]" if levels else ""
         lines.append(
             f"  {r['device_id']:<10} {_when(r['time_used']):<19} "
             f"{_when(r['received']):<19} {vol}  {r['outcome']}: {r['meaning']}"
-            f"{later}{prev}"
+            f"{later}{prev}{where}"
         )
     return lines
 
