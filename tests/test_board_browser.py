@@ -136,6 +136,11 @@ def test_a_nurse_sees_the_ward_live_and_acknowledges_after_logging_in(
         button = page.locator("#bed-b01 .ack-button")
         button.wait_for(state="visible", timeout=WAIT_MS)
         button.focus()
+        # a live update (another bed's new alarm changes the ward's summary and its
+        # card) must leave the keyboard on the same button
+        sodium(broker, "b02", now)
+        page.wait_for_selector("#bed-b02 >> text=Serum sodium above 145", timeout=WAIT_MS)
+        page.wait_for_selector("#bed-b01 .ack-button:focus", timeout=WAIT_MS)
         page.keyboard.press("Enter")
         page.wait_for_selector("#ack-result >> text=Acknowledged", timeout=WAIT_MS)
         page.wait_for_selector("#bed-b01 >> text=acknowledged by nurse-a (bedside-nurse)",
@@ -153,7 +158,12 @@ def test_a_nurse_sees_the_ward_live_and_acknowledges_after_logging_in(
         phone.on("request", lambda r: requests.append(r.url))
         phone.goto(f"{base}/ward/icu-east")
         phone.wait_for_selector("#bed-b02", timeout=WAIT_MS)
-        xs = {round(phone.locator(f"#bed-{b}").bounding_box()["x"]) for b in ("b01", "b02")}
+        phone.wait_for_selector("#bed-b01", timeout=WAIT_MS)
+        # measured in one page-side step: a live update may swap a card between two calls
+        xs = set(phone.evaluate(
+            "['b01', 'b02'].map(b => Math.round("
+            "document.getElementById('bed-' + b).getBoundingClientRect().x))"
+        ))
         assert len(xs) == 1
         assert phone.evaluate("document.documentElement.scrollWidth") <= 390
         context.close()

@@ -55,16 +55,25 @@
     }
   }
 
+  // Moving a node takes the keyboard focus out of it, so cards are moved only when the
+  // ward's order really changed, and the focus is put back where it was.
   function order(beds) {
     if (!board || board.dataset.only) { return; }
     const keep = new Set(beds.map(function (b) { return "bed-" + b; }));
     Array.from(board.children).forEach(function (el) {
       if (!keep.has(el.id)) { el.remove(); }
     });
-    beds.forEach(function (b) {
-      const el = document.getElementById("bed-" + b);
-      if (el) { board.appendChild(el); }
-    });
+    const wanted = beds.map(function (b) { return document.getElementById("bed-" + b); })
+      .filter(function (el) { return el; });
+    const now = Array.from(board.children);
+    if (wanted.length === now.length && wanted.every(function (el, i) { return el === now[i]; })) {
+      return;
+    }
+    const active = document.activeElement;
+    wanted.forEach(function (el) { board.appendChild(el); });
+    if (active && active !== document.activeElement && board.contains(active)) {
+      active.focus();
+    }
   }
 
   function listen() {
