@@ -111,9 +111,10 @@ def _hourly_replacement(
 
 def _labs(bed: str, t0: float, seed: int) -> list[Record]:
     """Invented results every 4 h from 18:15, each inside its usual adult reference
-    interval (CLINICAL-REFERENCE §5, §5b), resulted 50 minutes after sampling."""
+    interval (CLINICAL-REFERENCE §5, §5b), resulted 50 minutes after sampling. Only
+    samples resulted inside the 24-hour log are kept, so the log ends on a meter reading."""
     out: list[Record] = []
-    for k in range(7):
+    for k in range(6):
         t = t0 + 900.0 + k * 4 * HOUR_S
         payload: dict[str, Any] = {
             "time": iso_z(t), "serum_na_mmol_l": 140 - (k + seed) % 3,
