@@ -160,10 +160,12 @@ def test_a_nurse_sees_the_ward_live_and_acknowledges_after_logging_in(
         phone.wait_for_selector("#bed-b02", timeout=WAIT_MS)
         phone.wait_for_selector("#bed-b01", timeout=WAIT_MS)
         # measured in one page-side step: a live update may swap a card between two calls
-        xs = set(phone.evaluate(
-            "['b01', 'b02'].map(b => Math.round("
-            "document.getElementById('bed-' + b).getBoundingClientRect().x))"
-        ))
+        xs = set(
+            phone.evaluate(
+                "['b01', 'b02'].map(b => Math.round("
+                "document.getElementById('bed-' + b).getBoundingClientRect().x))"
+            )
+        )
         assert len(xs) == 1
         assert phone.evaluate("document.documentElement.scrollWidth") <= 390
         context.close()
