@@ -48,8 +48,14 @@ BACKGROUND_RATE = 1000.0  # readings/s during the latency trials
 WEIGHT = {"weight_kg": 80, "weight_basis": "actual"}  # invented
 
 
-def _ctx(bed: str, device: str) -> bytes:
-    return json.dumps({"ward": "bench", "device_ids": [device]} | WEIGHT).encode()
+def _ctx(bed: str, device: str, relieved_at: float | None = None) -> bytes:
+    """A bed context; `relieved_at` records an obstruction relief, which arms the
+    post-obstructive diuresis rules (DESIGN §4)."""
+    body: dict[str, Any] = {"ward": "bench", "device_ids": [device]} | WEIGHT
+    if relieved_at is not None:
+        at = datetime.fromtimestamp(relieved_at, UTC).isoformat().replace("+00:00", "Z")
+        body["episodes"] = [{"kind": "obstruction_relieved", "at": at}]
+    return json.dumps(body).encode()
 
 
 def stream(device: str, start: float, hours: float, ml_h: float) -> list[tuple[str, bytes]]:
@@ -231,7 +237,8 @@ def bench_latency(b: Mosquitto, tmp: Path, trials: int, seconds_bg_meters: int =
     try:
         for k in range(trials):
             bed, dev = f"lt{k:03d}", f"rc-lt{k:03d}"
-            ctx = (f"hourwatch/beds/{bed}/context", _ctx(bed, dev))
+            # relieved an hour before the stream, so its residual drain is over
+            ctx = (f"hourwatch/beds/{bed}/context", _ctx(bed, dev, hour - 4 * 3600))
             msgs = stream(dev, hour - 3 * 3600 + 30, 2.6, 300.0)  # invented 300 mL/h
             i = decisive_index(ctx, msgs, time.time())
             if i is None:
