@@ -53,7 +53,7 @@ def test_migrations_create_every_version_once_and_refuse_a_newer_journal(pg):  #
         assert migrate(conn, pg) == []  # applied on every start: nothing twice
         names = [r[0] for r in conn.execute("SELECT name FROM hourwatch_schema ORDER BY version")]
         assert names == ["messages and events", "delivery outbox", "annotations",
-                         "active/standby lease"]  # fmt: skip
+                         "active/standby lease", "engine snapshots"]  # fmt: skip
         conn.execute("INSERT INTO hourwatch_schema (version, name) VALUES (99, 'future')")
     with pytest.raises(UserError, match="schema 99 is newer"):
         PostgresJournal(pg)

@@ -261,7 +261,8 @@ class _Decoder:
             keys, values = self.seq(x[1]), self.seq(x[2])
             if len(keys) != len(values):
                 raise Corrupt("a dict's keys and values differ in number")
-            d.update(zip(keys, values, strict=True))
+            for k, v in zip(keys, values, strict=True):
+                d[k] = v  # not Counter.update, which would count the pairs
             return d
         if tag == "S":
             s: set[Any] = set()
