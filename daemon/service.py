@@ -84,6 +84,9 @@ OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
 BATCH_MAX_311 = 16
 BATCH_MAX_CAP = 256
 BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
+# minutes of output kept per bed: the rule windows, and the board's last 24 h and the hour
+# being filled (daemon/web/board.py); older minutes are forgotten (bounded memory)
+SERIES_KEEP_S = 25 * 3600.0
 HOUSEKEEPING_S = 0.25  # the worker wakes at least this often
 HOUSEKEEPING_EVERY_S = 0.05  # timeouts, retained state and status at most this often
 PRUNE_EVERY_S = 600.0
@@ -258,6 +261,8 @@ class Service:
         if not cfg.ack.per_user_topic:  # a broker without logins: the payload names them
             self.subscriptions.append(f"{self.prefix}/ack")
         lim = cfg.limits
+        self.guard_s = longest_window_s(self.rules)
+        self.window_s = self.guard_s + cfg.recovery.margin_s
         try:
             self.engine = Engine(
                 profiles, self.rules, self.policy, topic_prefix=self.prefix,
@@ -268,11 +273,10 @@ class Service:
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
                 ack_users=cfg.ack.users or None, calibration=load_devices(cfg.devices),
                 observe=self.marks.observe if cfg.board.listen else None,  # the board's bag changes
+                series_keep_s=max(self.window_s, SERIES_KEEP_S),  # bounded memory per bed
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
             raise UserError(f"ack.users: {exc}") from None
-        self.guard_s = longest_window_s(self.rules)
-        self.window_s = self.guard_s + cfg.recovery.margin_s
         self.batch_max = (
             min(BATCH_MAX_CAP, cfg.broker.receive_maximum // 2)
             if cfg.broker.protocol == "5"

@@ -7,7 +7,7 @@ The walker is generic and explicit: it knows a short list of kinds and refuses e
 other type (`Unsupported`), so a state type it cannot carry fails a test instead of
 being lost in silence.
 - None, bool, int, float, str; tuples, lists, dicts, sets, frozensets, deques, Counters;
-- numpy arrays and numpy scalars (dtype kept);
+- typed arrays (array.array), numpy arrays and numpy scalars (type kept);
 - enum members, by name;
 - dataclasses (slots or not, frozen or not) and classes with __slots__ of the engine's
   own modules, field by field;
@@ -60,6 +60,7 @@ ENGINE_CONFIG = frozenset({
     "_unbound_expiry_s", "_max_unbound", "_max_beds", "_slowest_period", "_max_ml_per_min",
     "_route_cache", "rules", "_ack_roles", "_staff", "advice_policy", "clock", "evaluator",
     "_advice_sources", "_advice_rules", "_ack_valid", "_hypovolaemia_rules",
+    "_series_keep_min",
 })  # fmt: skip
 ENGINE_CLASS = "daemon.engine.engine:Engine"  # the pseudo-class of the state attributes
 
@@ -164,6 +165,9 @@ class _Encoder:
         if t is deque:
             self.number(x)
             return ["Q", x.maxlen, *[self.enc(v) for v in x]]
+        if t is array:
+            self.number(x)
+            return ["Y", x.typecode, base64.b64encode(x.tobytes()).decode("ascii")]
         if t is np.ndarray:
             self.number(x)
             if x.dtype.hasobject:
@@ -278,6 +282,11 @@ class _Decoder:
             self.number(q)
             q.extend(self.dec(v) for v in x[2:])
             return q
+        if tag == "Y":
+            typed = array(x[1])
+            typed.frombytes(base64.b64decode(x[2], validate=True))
+            self.number(typed)
+            return typed
         if tag == "A":
             raw = base64.b64decode(x[3], validate=True)
             arr = np.frombuffer(raw, dtype=np.dtype(x[1])).reshape(x[2]).copy()
@@ -416,7 +425,8 @@ def config_fingerprint(engine: Engine) -> str:
         sorted((k, v.model_dump_json()) for k, v in engine._calibration.items()),
         None if engine._staff is None else sorted((u, sorted(r)) for u, r in engine._staff.items()),
         [engine.prefix, engine._ack_advertised, engine._id.pattern, engine._clinical_ahead_s,
-         engine._unbound_expiry_s, engine._max_unbound, engine._max_beds],
+         engine._unbound_expiry_s, engine._max_unbound, engine._max_beds,
+         engine._series_keep_min],
     ]  # fmt: skip
     return _digest(parts)
 
