@@ -89,13 +89,15 @@ class MinuteSeries:
             self._base -= extra
             self._n += extra
             self._reset_sums()
+        keep = self.keep_min
+        if keep is not None:
+            # forget what lies more than keep_min before the newest minute written, on a
+            # grid of GROW minutes: where the buffer starts (and so how its prefix sums
+            # round) then depends on the data, not on how the buffer happened to grow
+            target = min((hi - keep) // GROW * GROW, lo)
+            if target - self._base >= GROW:
+                self._forget(target - self._base)
         need = hi - self._base + 1
-        if need > len(self._vol) and self.keep_min is not None:
-            # forget what lies more than keep_min before the newest minute written
-            drop = min(hi - self.keep_min, lo) - self._base
-            if drop >= GROW:
-                self._forget(drop)
-                need = hi - self._base + 1
         if need > len(self._vol):
             size = need + GROW
             if self.keep_min is None:
