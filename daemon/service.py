@@ -740,7 +740,8 @@ class Service:
         """Journal the engine's state, with the newest message it has been fed. Taken only
         where every effect the engine has made is journaled (a snapshot must not hold an
         event the journal lacks: recovery would never find it again). Encoded under the
-        engine lock (tens of ms for a ward), written by the worker, which owns the journal."""
+        engine lock (tens of ms for a ward), compressed after it, written by the worker,
+        which owns the journal."""
         assert self.journal is not None
         self._next_snapshot = self._now + max(self.cfg.recovery.snapshot_every_s, 1.0)
         if self._held or self._held_effects or self.fenced:
@@ -754,11 +755,12 @@ class Service:
             if at == self._snapshot_at or not math.isfinite(self._now):
                 return  # nothing new since the last one
             try:
-                body = snapshot.take(self.engine)
+                captured = snapshot.take_captured(self.engine)
             except Exception:  # a state the walker cannot carry: restarts re-feed instead
                 self.log.error("snapshot_failed", exc_info=True)
                 return
         encoded = time.perf_counter() - started
+        body = captured.pack()  # compressed with the engine free again
         try:
             self.journal.save_snapshot(at[0], at[1], body)
         except Fenced:
@@ -770,7 +772,7 @@ class Service:
             return
         self._snapshot_at = at
         self.log.info("snapshot_saved", bytes=len(body), message_id=at[1],
-                      encode_ms=round(encoded * 1000, 1),
+                      locked_ms=round(encoded * 1000, 1),
                       total_ms=round((time.perf_counter() - started) * 1000, 1))  # fmt: skip
 
     # --- a full journal: hold, say so, retry -----------------------------------------

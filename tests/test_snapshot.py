@@ -20,7 +20,7 @@ import dataclasses
 import json
 import re
 import time
-import zlib
+from collections import deque
 from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
@@ -249,9 +249,10 @@ def test_effects_lost_in_a_crash_after_the_snapshot_are_published(tmp_path) -> N
 
 # --- snapshots that must not be read ---------------------------------------------------
 def rewrite(blob: bytes, change: Any) -> bytes:
-    doc = json.loads(zlib.decompress(blob))
+    """The snapshot with its document changed (the binary part as it was)."""
+    doc, blobs = snapshot._open(blob)
     change(doc)
-    return zlib.compress(json.dumps(doc).encode())
+    return snapshot.Captured(json.dumps(doc).encode(), blobs).pack()
 
 
 def older_format(doc: dict[str, Any]) -> None:
@@ -502,6 +503,8 @@ def test_the_walker_carries_what_it_knows() -> None:
         "tuple": (1, (2, 3)), "set": {1, 2}, "frozen": frozenset({"a"}),
         "array": np.arange(6, dtype=np.uint8).reshape(2, 3), "scalar": np.float32(1.5),
         "series": series, "a": shared, "b": shared, 7.5: None, (1, "x"): True,
+        "rows": deque([(0.5 * i, 1.0 + i) for i in range(12)], maxlen=20),
+        "odd rows": [(1.0, 2.0)] * 7 + [(1.0, 2)],
     }  # fmt: skip
     back = snapshot.decode(snapshot.encode(state, {}), {})
     assert back["a"] is back["b"]
@@ -515,3 +518,5 @@ def test_the_walker_carries_what_it_knows() -> None:
     assert back["array"].dtype == np.uint8 and back["array"].tolist() == [[0, 1, 2], [3, 4, 5]]
     assert type(back["scalar"]) is np.float32 and back["scalar"] == 1.5
     assert back["series"].sums(0, 10) == series.sums(0, 10)
+    assert back["rows"] == state["rows"] and back["rows"].maxlen == 20
+    assert [type(v) for v in back["odd rows"][-1]] == [float, int]

@@ -18,7 +18,10 @@ being lost in silence.
 Shared objects stay shared (a cleaner and its bed hold the same minute series): each
 object is written once, later occurrences refer back to it.
 
-Format: zlib-compressed JSON {"format", "layout", "config", "classes", "state"}.
+Format: zlib of [8-byte length][JSON document][binary blobs]. The document is
+{"format", "layout", "config", "classes", "extra", "blobs", "state"}; typed arrays,
+numpy arrays and long lists of floats or ints are raw bytes in the blobs (their
+lengths in "blobs"), referred to by index from the state.
 - `format`: FORMAT, raised when the encoding itself changes;
 - `layout`: a hash of every class encoded, with its field names (and the engine's own
   state attributes); on load each class must still exist with exactly those fields;
@@ -34,12 +37,13 @@ import dataclasses
 import enum
 import hashlib
 import json
+import struct
 import sys
 import zlib
 from array import array
 from collections import Counter, deque
 from collections.abc import Mapping
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from pydantic import BaseModel
@@ -109,13 +113,9 @@ def _layout(cls: type) -> list[str]:
     return _fields(cls)
 
 
-def _pack(kind: str, values: list[Any]) -> str:
-    return base64.b64encode(array(kind, values).tobytes()).decode("ascii")
-
-
-def _unpack(kind: str, text: str) -> list[Any]:
+def _unpack(kind: str, raw: bytes) -> list[Any]:
     a = array(kind)
-    a.frombytes(base64.b64decode(text, validate=True))
+    a.frombytes(raw)
     return a.tolist()
 
 
@@ -125,6 +125,11 @@ class _Encoder:
         self.memo: dict[int, int] = {}  # id(obj) -> its number, in order of first meeting
         self.keep: list[object] = []  # the objects numbered: their ids stay theirs
         self.classes: dict[type, int] = {}
+        self.blobs: list[bytes] = []  # raw bytes, referred to by index
+
+    def blob(self, data: bytes) -> int:
+        self.blobs.append(data)
+        return len(self.blobs) - 1
 
     def cls(self, cls: type) -> int:
         n = self.classes.get(cls)
@@ -164,16 +169,15 @@ class _Encoder:
             return ["S" if t is set else "F", *[self.enc(v) for v in x]]
         if t is deque:
             self.number(x)
-            return ["Q", x.maxlen, *[self.enc(v) for v in x]]
+            return ["Q", x.maxlen, self.seq("L", list(x))]
         if t is array:
             self.number(x)
-            return ["Y", x.typecode, base64.b64encode(x.tobytes()).decode("ascii")]
+            return ["Y", x.typecode, self.blob(x.tobytes())]
         if t is np.ndarray:
             self.number(x)
             if x.dtype.hasobject:
                 raise Unsupported("numpy array of objects")
-            data = base64.b64encode(np.ascontiguousarray(x).tobytes()).decode("ascii")
-            return ["A", x.dtype.str, list(x.shape), data]
+            return ["A", x.dtype.str, list(x.shape), self.blob(np.ascontiguousarray(x).tobytes())]
         if isinstance(x, np.generic) and not isinstance(x, np.object_):
             return ["N", x.dtype.str, base64.b64encode(x.tobytes()).decode("ascii")]
         if isinstance(x, enum.Enum):
@@ -200,10 +204,17 @@ class _Encoder:
     def seq(self, tag: str, values: list[Any]) -> list[Any]:
         if len(values) >= PACK_MIN:
             if all(type(v) is float for v in values):
-                return [tag + "f", _pack("d", values)]
+                return [tag + "f", self.blob(array("d", values).tobytes())]
             ints = all(type(v) is int for v in values)
             if ints and min(values) >= -(2**63) and max(values) < 2**63:
-                return [tag + "i", _pack("q", values)]
+                return [tag + "i", self.blob(array("q", values).tobytes())]
+            # rows of floats (a cleaner's (time, level) history): one blob, row by row
+            # (immutable tuples: that they are not numbered changes nothing)
+            w = len(values[0]) if type(values[0]) is tuple else 0
+            if w and all(type(v) is tuple and len(v) == w for v in values):
+                flat = [f for v in values for f in v]
+                if all(type(f) is float for f in flat):
+                    return [tag + "t", w, self.blob(array("d", flat).tobytes())]
         return [tag, *[self.enc(v) for v in values]]
 
 
@@ -224,9 +235,11 @@ def _resolve(name: str) -> type:
 
 
 class _Decoder:
-    def __init__(self, classes: list[Any], links: Mapping[str, object]) -> None:
+    def __init__(self, classes: list[Any], links: Mapping[str, object],
+                 blobs: list[bytes]) -> None:  # fmt: skip
         self.classes = classes
         self.links = links
+        self.blobs = blobs
         self.memo: list[Any] = []
 
     def number(self, obj: Any) -> int:
@@ -246,7 +259,7 @@ class _Decoder:
             if obj is _PENDING:
                 raise Corrupt("a reference into a tuple being built")
             return obj
-        if tag in ("L", "Lf", "Li"):
+        if tag in ("L", "Lf", "Li", "Lt"):
             out: list[Any] = []
             self.number(out)
             out += self.seq(x)
@@ -280,15 +293,15 @@ class _Decoder:
         if tag == "Q":
             q: deque[Any] = deque(maxlen=x[1])
             self.number(q)
-            q.extend(self.dec(v) for v in x[2:])
+            q.extend(self.seq(x[2]))
             return q
         if tag == "Y":
             typed = array(x[1])
-            typed.frombytes(base64.b64decode(x[2], validate=True))
+            typed.frombytes(self.blobs[x[2]])
             self.number(typed)
             return typed
         if tag == "A":
-            raw = base64.b64decode(x[3], validate=True)
+            raw = self.blobs[x[3]]
             arr = np.frombuffer(raw, dtype=np.dtype(x[1])).reshape(x[2]).copy()
             self.number(arr)
             return arr
@@ -315,10 +328,15 @@ class _Decoder:
 
     def seq(self, x: list[Any]) -> list[Any]:
         tag = x[0]
+        if tag.endswith("t"):
+            w, flat = x[1], _unpack("d", self.blobs[x[2]])
+            if w < 1 or len(flat) % w:
+                raise Corrupt("rows of floats of another width")
+            return [tuple(flat[i : i + w]) for i in range(0, len(flat), w)]
         if tag.endswith("f"):
-            return _unpack("d", x[1])
+            return _unpack("d", self.blobs[x[1]])
         if tag.endswith("i"):
-            return _unpack("q", x[1])
+            return _unpack("q", self.blobs[x[1]])
         return [self.dec(v) for v in x[1:]]
 
 
@@ -328,9 +346,21 @@ def _digest(obj: object) -> str:
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
-def encode(root: object, links: Mapping[str, object], config: str = "",
-           extra_layout: Mapping[str, list[str]] | None = None) -> bytes:  # fmt: skip
-    """`root` as snapshot bytes; Unsupported names the first type it cannot carry."""
+class Captured(NamedTuple):
+    """A state encoded but not yet compressed: taken while the engine stands still,
+    compressed after (it shares nothing with the engine any more)."""
+
+    document: bytes
+    blobs: list[bytes]
+
+    def pack(self, level: int = 1) -> bytes:
+        head = struct.pack("<Q", len(self.document))
+        return zlib.compress(b"".join([head, self.document, *self.blobs]), level)
+
+
+def capture(root: object, links: Mapping[str, object], config: str = "",
+            extra_layout: Mapping[str, list[str]] | None = None) -> Captured:  # fmt: skip
+    """`root` encoded; Unsupported names the first type it cannot carry."""
     enc = _Encoder(links)
     state = enc.enc(root)
     table = enc.table()
@@ -341,27 +371,49 @@ def encode(root: object, links: Mapping[str, object], config: str = "",
         "config": config,
         "classes": table,
         "extra": layout,
+        "blobs": [len(b) for b in enc.blobs],
         "state": state,
     }
     text = json.dumps(doc, separators=(",", ":"), allow_nan=True)
-    return zlib.compress(text.encode(), 6)
+    return Captured(text.encode(), enc.blobs)
+
+
+def encode(root: object, links: Mapping[str, object], config: str = "",
+           extra_layout: Mapping[str, list[str]] | None = None) -> bytes:  # fmt: skip
+    """`root` as snapshot bytes; Unsupported names the first type it cannot carry."""
+    return capture(root, links, config, extra_layout).pack()
+
+
+def _open(blob: bytes) -> tuple[dict[str, Any], list[bytes]]:
+    """The document and its blobs (Corrupt if the bytes are not a whole snapshot)."""
+    try:
+        raw = zlib.decompress(blob)  # its checksum catches damage and truncation
+        (n,) = struct.unpack_from("<Q", raw)
+        doc = json.loads(raw[8 : 8 + n])
+    except (zlib.error, struct.error, ValueError, RecursionError) as exc:
+        raise Corrupt(f"not a snapshot: {exc}") from None
+    keys = {"format", "layout", "config", "classes", "extra", "blobs", "state"}
+    if not isinstance(doc, dict) or not keys <= set(doc):
+        raise Corrupt("not a snapshot: fields missing")
+    sizes = doc["blobs"]
+    if not isinstance(sizes, list) or 8 + n + sum(sizes) != len(raw):
+        raise Corrupt("not a snapshot: its binary part has another length")
+    blobs, at = [], 8 + n
+    for size in sizes:
+        blobs.append(raw[at : at + size])
+        at += size
+    return doc, blobs
 
 
 def header(blob: bytes) -> dict[str, Any]:
     """The snapshot's document (Corrupt if it is not one)."""
-    try:
-        doc = json.loads(zlib.decompress(blob))
-    except (zlib.error, ValueError, RecursionError) as exc:
-        raise Corrupt(f"not a snapshot: {exc}") from None
-    if not isinstance(doc, dict) or not {"format", "layout", "config", "state"} <= set(doc):
-        raise Corrupt("not a snapshot: fields missing")
-    return doc
+    return _open(blob)[0]
 
 
 def decode(blob: bytes, links: Mapping[str, object], config: str = "",
            extra_layout: Mapping[str, list[str]] | None = None) -> Any:  # fmt: skip
     """The state `encode` was given, rebuilt; Mismatch or Corrupt, never a misreading."""
-    doc = header(blob)
+    doc, blobs = _open(blob)
     if doc["format"] != FORMAT:
         raise Mismatch(f"snapshot format {doc['format']}, this version reads {FORMAT}")
     if doc["config"] != config:
@@ -383,7 +435,7 @@ def decode(blob: bytes, links: Mapping[str, object], config: str = "",
         for name, fields in (extra_layout or {}).items():
             if doc["extra"].get(name) != list(fields):
                 raise Mismatch(f"{name} has other state attributes now")
-        return _Decoder(classes, links).dec(doc["state"])
+        return _Decoder(classes, links, blobs).dec(doc["state"])
     except (Mismatch, Corrupt):
         raise
     except Exception as exc:  # anything else the bytes can provoke: not a snapshot we read
@@ -433,10 +485,16 @@ def config_fingerprint(engine: Engine) -> str:
 
 def take(engine: Engine) -> bytes:
     """The engine's state as snapshot bytes."""
+    return take_captured(engine).pack()
+
+
+def take_captured(engine: Engine) -> Captured:
+    """The engine's state encoded, for `pack()` later (the service captures under the
+    engine's lock and compresses outside it)."""
     engine.book.settle()  # alarm words built lazily are built now: closures do not travel
     state = {k: getattr(engine, k) for k in state_names(engine)}
-    return encode(state, links(engine), config_fingerprint(engine),
-                  {ENGINE_CLASS: state_names(engine)})  # fmt: skip
+    return capture(state, links(engine), config_fingerprint(engine),
+                   {ENGINE_CLASS: state_names(engine)})  # fmt: skip
 
 
 def restore(engine: Engine, blob: bytes) -> None:
