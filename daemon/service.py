@@ -434,7 +434,7 @@ class Service:
             )  # fmt: skip
             self._now = max(now, rec.last_message_time or now)
             self._last_message_id = rec.last_message_id or 0
-            self._next_snapshot = self._now + self.cfg.recovery.snapshot_every_s
+            self._next_snapshot = self._now  # one at once: a crash soon after restarts fast
         self.stats.recovery = rec
         for why in rec.snapshots_ignored:
             self.log.warning("snapshot_ignored", why=why[:300],
