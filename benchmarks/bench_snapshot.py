@@ -9,10 +9,14 @@ timed as `daemon/recovery.py` does it (a fresh Engine, then `recover`), in the s
 - measured: the newest snapshot + the journal's tail after it.
 Goal: under 2 s for 100 beds, whether the journal holds 1 day or 30 days.
 
-The 1-day journal is all live. The 30-day journal has the same live last day, preceded
-by 29 days SYNTHESISED by writing journal rows directly (each bed's simulated day again,
-its device times shifted a day at a time, and the day's events again): simulating 29
-more days through the engine would take minutes and change nothing the restart reads.
+The 1-day journal is all live. The 30-day journal has the same live last 25 h, and before
+it 28 days SYNTHESISED by writing journal rows directly (each bed's simulated day again,
+its device times shifted by 2 to 29 days, and the day's events again, each alarm episode
+of a copied day ended that day): simulating 28 more days through the engine would take
+minutes. A day without rows separates them from the live part, so the full re-feed of the
+baseline (which reaches a rule window before the onset of the oldest open alarm) never
+feeds a synthesised row the snapshot's engine has not seen; its outcome is compared.
+Events are marked delivered as the service marks them on the broker's confirmation.
 
 Memory per bed: tracemalloc, the Python heap (numpy buffers included) the engine holds
 after the 25 simulated hours (its steady state: windows full, dedup horizon full),
@@ -117,7 +121,9 @@ def run_live(path: Path, msgs: list[tuple[float, str, bytes]]) -> tuple[Live, En
             for t, topic, p in batch:
                 effects += eng.advance(t)
                 effects += eng.step(topic, p, t)
-            live.events += len(j.append_events([journal_row(e) for e in effects]))
+            ev_ids = j.append_events([journal_row(e) for e in effects])
+            j.mark_delivered(ev_ids, batch[-1][0])  # the broker confirms (PUBACK)
+            live.events += len(ev_ids)
             live.messages += len(batch)
             live.last_t = batch[-1][0]
             if live.last_t >= next_snap:
@@ -136,14 +142,14 @@ def run_live(path: Path, msgs: list[tuple[float, str, bytes]]) -> tuple[Live, En
 
 
 def synthesise_past(path: Path, msgs: list[tuple[float, str, bytes]], days: int) -> int:
-    """Days before the live day, written as journal rows (see the module text)."""
+    """Days 2..days+1 before the live part, as journal rows (see the module text)."""
     start = msgs[0][0]
     day = [(t, topic, json.loads(p)) for t, topic, p in msgs if not topic.endswith("/context")]
     day = [m for m in day if m[0] < start + 86400.0]
     rows_n = 0
     with SqliteJournal(path, retention_days=31) as j:
-        events = list(j.events_between(None, None))
-        for k in range(days, 0, -1):
+        events = [ev for ev in j.events_between(None, start + 86400.0)]
+        for k in range(days + 1, 1, -1):
             shift = k * 86400.0
             rows = []
             for t, topic, p in day:
@@ -154,9 +160,17 @@ def synthesise_past(path: Path, msgs: list[tuple[float, str, bytes]], days: int)
             for n in range(0, len(rows), 20_000):
                 j.append_messages(rows[n : n + 20_000])
             rows_n += len(rows)
-            j.append_events([(ev.time - shift, ev.kind, ev.bed,
-                              f"{ev.alarm_id}-d{k}" if ev.alarm_id else None, ev.body)
-                             for ev in events if ev.time < start + 86400.0])  # fmt: skip
+            copied = [(ev.time - shift, ev.kind, ev.bed,
+                       f"{ev.alarm_id}-d{k}" if ev.alarm_id else None, ev.body)
+                      for ev in events]  # fmt: skip
+            ended = {}  # each copied episode ends within its day
+            for t, kind, bed, alarm, body in copied:
+                if kind == "alarm" and alarm is not None:
+                    ended[alarm] = (t, bed, body)
+            copied += [(start - shift + 86000.0, "alarm", bed, alarm, dict(body, state="resolved"))
+                       for alarm, (t, bed, body) in ended.items()]  # fmt: skip
+            ids = j.append_events(copied)
+            j.mark_delivered(ids, start - shift + 86000.0)
     return rows_n
 
 
@@ -220,13 +234,13 @@ def measure(beds: int, days: tuple[int, ...], out: list[Row], verbose: bool) -> 
         for d in days:
             path = Path(tmp) / f"j{d}.db"
             path.write_bytes(live_path.read_bytes())
-            past = synthesise_past(path, msgs, d - 1) if d > 1 else 0
+            past = synthesise_past(path, msgs, d - 2) if d > 2 else 0
             before, full, b = timed_restart(path, now, use=False)
             after, fast, a = timed_restart(path, now, use=True)
             same = same_outcome(a, b) and [str(e) for e in fast.to_publish] == [
                 str(e) for e in full.to_publish]  # fmt: skip
             if verbose:
-                print(f"{d:>2}-day journal ({past:,} synthesised rows before the live day): "
+                print(f"{d:>2}-day journal ({past:,} synthesised rows before the live part): "
                       f"full re-feed {before:.2f} s ({full.messages:,} messages), snapshot + "
                       f"tail {after:.2f} s ({fast.messages:,} messages after snapshot "
                       f"{fast.snapshot_id}); same outcome: {same}")  # fmt: skip
