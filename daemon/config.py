@@ -284,6 +284,10 @@ class RecoveryConfig(_Strict):
     # Re-fed on restart beyond the longest rule window, so that alarm episodes that
     # began just before the window start are rebuilt with the same ids.
     margin_s: Annotated[float, Field(ge=0, le=7 * 86400)] = 3600.0
+    # An engine snapshot is journaled every this many seconds of engine time, and at a
+    # clean stop; a restart loads the newest and feeds only the messages after it.
+    # 0: never (every restart re-feeds the longest rule window).
+    snapshot_every_s: Annotated[float, Field(ge=0, le=86400)] = 900.0
 
 
 class ServiceConfig(_Strict):

@@ -51,7 +51,7 @@ from .engine.strictjson import NotJson, validate
 from .errors import UserError
 from .logfile import BadLine, LogRecord
 
-SCHEMA_VERSION = 2  # the last of MIGRATIONS
+SCHEMA_VERSION = 3  # the last of MIGRATIONS
 APPLICATION_ID = 0x48774A31  # "HwJ1": marks an SQLite file as a Hourwatch journal
 SQLITE_HEADER = b"SQLite format 3\x00"
 DAY_S = 86400.0
@@ -128,11 +128,22 @@ OUTBOX_TABLES = (
         used_at REAL NOT NULL)""",
     "CREATE INDEX IF NOT EXISTS events_notify_alarm ON events (id) WHERE kind = 'notify_alarm'",
 )
+# Engine snapshots (daemon/engine/snapshot.py): a restart loads the newest and feeds only
+# the messages after `message_id`; the last few are kept (see save_snapshot).
+SNAPSHOT_TABLES = (
+    """CREATE TABLE IF NOT EXISTS snapshots (
+        id INTEGER PRIMARY KEY AUTOINCREMENT,
+        taken_at REAL NOT NULL,                -- the engine time of the state
+        message_id INTEGER NOT NULL,           -- messages up to this id were fed to it
+        body BLOB NOT NULL)                    -- snapshot.encode's bytes""",
+)
+SNAPSHOTS_KEPT = 3
 # (version, what it does, statements): applied in order, each in one transaction with
 # its user_version, so a crash leaves a journal at one version or the next.
 MIGRATIONS: tuple[tuple[int, str, tuple[str, ...]], ...] = (
     (1, "messages and events", _V1),
     (2, "delivery outbox", OUTBOX_TABLES),
+    (3, "engine snapshots", SNAPSHOT_TABLES),
 )
 
 
@@ -169,6 +180,14 @@ class StoredEvent:
     alarm_id: str | None
     body: dict[str, object]
     delivered_at: float | None
+
+
+@dataclass(frozen=True)
+class StoredSnapshot:
+    id: int
+    taken_at: float  # engine time
+    message_id: int  # messages up to this id are in it
+    body: bytes
 
 
 class BedFilter:
@@ -327,6 +346,31 @@ class SqliteJournal:
         except BaseException:
             _rollback(db)
             raise
+
+    def save_snapshot(self, taken_at: float, message_id: int, body: bytes,
+                      keep: int = SNAPSHOTS_KEPT) -> int:  # fmt: skip
+        """Store an engine snapshot and drop all but the newest `keep`, in one transaction."""
+        db = self._db
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            cur = db.execute(
+                "INSERT INTO snapshots (taken_at, message_id, body) VALUES (?, ?, ?)",
+                (taken_at, message_id, body),
+            )
+            db.execute("DELETE FROM snapshots WHERE id NOT IN "
+                       "(SELECT id FROM snapshots ORDER BY id DESC LIMIT ?)", (keep,))  # fmt: skip
+            db.execute("COMMIT")
+        except BaseException:
+            _rollback(db)
+            raise
+        return int(cur.lastrowid or 0)
+
+    def snapshots(self) -> list[StoredSnapshot]:
+        """The stored engine snapshots, newest first."""
+        rows = self._db.execute(
+            "SELECT id, taken_at, message_id, body FROM snapshots ORDER BY id DESC"
+        ).fetchall()
+        return [StoredSnapshot(i, t, m, bytes(b)) for i, t, m, b in rows]
 
     def prune(
         self, now: float, batch: int = 2000, *, pause_s: float = 0.002, max_batches: int = 0

@@ -25,7 +25,7 @@ from urllib.parse import urlsplit, urlunsplit
 from .errors import UserError
 
 if TYPE_CHECKING:
-    from .journal import BedFilter, Checkpoint, StoredEvent, StoredMessage
+    from .journal import BedFilter, Checkpoint, StoredEvent, StoredMessage, StoredSnapshot
 
 ENV_PG_PASSWORD = "HOURWATCH_PG_PASSWORD"
 ENV_PG_PASSWORD_FILE = "HOURWATCH_PG_PASSWORD_FILE"
@@ -114,6 +114,9 @@ class Journal(Protocol):
         self, rows: Sequence[tuple[float, str, str | None, str | None, dict[str, object]]]
     ) -> list[int]: ...
     def mark_delivered(self, event_ids: Sequence[int], at: float) -> None: ...
+    def save_snapshot(self, taken_at: float, message_id: int, body: bytes,
+                      keep: int = 3) -> int: ...  # fmt: skip
+    def snapshots(self) -> list[StoredSnapshot]: ...
     def prune(self, now: float, batch: int = 2000, *, pause_s: float = 0.002,
               max_batches: int = 0) -> int: ...  # fmt: skip
     def checkpoint(self, mode: str = "PASSIVE", *,

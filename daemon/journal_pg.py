@@ -34,7 +34,15 @@ import psycopg
 from psycopg_pool import ConnectionPool
 
 from .errors import UserError
-from .journal import DAY_S, BedFilter, Checkpoint, StoredEvent, StoredMessage
+from .journal import (
+    DAY_S,
+    SNAPSHOTS_KEPT,
+    BedFilter,
+    Checkpoint,
+    StoredEvent,
+    StoredMessage,
+    StoredSnapshot,
+)
 from .journal_api import Fenced, FenceToken, PgUrl, pg_password
 from .logfile import BadLine, LogRecord
 
@@ -43,7 +51,7 @@ EVENTS_LOCK = 0x48774A32  # event inserts one at a time: ids commit in order
 IDLE_IN_TX_MS = 5000
 CONNECT_TIMEOUT_S = 5
 OUR_TABLES = ("messages", "events", "deliveries", "notify_cursor", "ack_links", "annotation",
-              "ha_lease", "ha_takeovers")  # fmt: skip
+              "ha_lease", "ha_takeovers", "snapshots")  # fmt: skip
 
 _V1 = (
     """CREATE TABLE messages (
@@ -132,11 +140,20 @@ _V4 = (  # the active/standby lease (daemon/ha.py)
         why TEXT NOT NULL,                     -- first, expired, connection_gone
         at TIMESTAMPTZ NOT NULL DEFAULT clock_timestamp())""",
 )
+_V5 = (  # engine snapshots (daemon/engine/snapshot.py; as the SQLite journal's)
+    """CREATE TABLE snapshots (
+        id BIGINT GENERATED ALWAYS AS IDENTITY PRIMARY KEY,
+        taken_at DOUBLE PRECISION NOT NULL,    -- the engine time of the state
+        message_id BIGINT NOT NULL,            -- messages up to this id were fed to it
+        body BYTEA NOT NULL,
+        lease_token BIGINT)""",
+)
 MIGRATIONS: tuple[tuple[int, str, tuple[str, ...]], ...] = (
     (1, "messages and events", _V1),
     (2, "delivery outbox", _V2),
     (3, "annotations", _V3),
     (4, "active/standby lease", _V4),
+    (5, "engine snapshots", _V5),
 )
 SCHEMA_VERSION = MIGRATIONS[-1][0]
 
@@ -293,6 +310,29 @@ class PostgresJournal:
         self._write(lambda c: c.execute(
             "UPDATE events SET delivered_at = %s WHERE id = ANY(%s) AND delivered_at IS NULL",
             (at, list(event_ids))))  # fmt: skip
+
+    def save_snapshot(self, taken_at: float, message_id: int, body: bytes,
+                      keep: int = SNAPSHOTS_KEPT) -> int:  # fmt: skip
+        """As SqliteJournal.save_snapshot (fenced: a replaced active stores none)."""
+        token = self.fence.token if self.fence else None
+
+        def tx(conn: psycopg.Connection[Any]) -> int:
+            row = conn.execute(
+                "INSERT INTO snapshots (taken_at, message_id, body, lease_token) "
+                "VALUES (%s, %s, %s, %s) RETURNING id",
+                (taken_at, message_id, body, token)).fetchone()  # fmt: skip
+            conn.execute("DELETE FROM snapshots WHERE id NOT IN (SELECT id FROM snapshots "
+                         "ORDER BY id DESC LIMIT %s)", (keep,))  # fmt: skip
+            return int(row[0]) if row is not None else 0
+
+        out: int = self._write(tx)
+        return out
+
+    def snapshots(self) -> list[StoredSnapshot]:
+        with self.pool.connection() as conn:
+            rows = conn.execute("SELECT id, taken_at, message_id, body FROM snapshots "
+                                "ORDER BY id DESC").fetchall()  # fmt: skip
+        return [StoredSnapshot(int(i), float(t), int(m), bytes(b)) for i, t, m, b in rows]
 
     def prune(self, now: float, batch: int = 2000, *, pause_s: float = 0.002,
               max_batches: int = 0) -> int:  # fmt: skip

@@ -1,6 +1,16 @@
 """Restart recovery (DESIGN §2, §5): rebuild the engine from the journal, then say what
 is still to be published.
 
+0. From a snapshot, when there is one to read: the newest engine snapshot in the journal
+   (daemon/engine/snapshot.py) whose format, class layout and configuration are this
+   start's is loaded, and only the messages journaled after it (ids above its
+   `message_id`) are fed, from its engine time on, then steps 4 and 5 below over that
+   tail. The snapshot's state is the live engine's, so nothing is rebuilt and nothing is
+   guessed: restart time no longer grows with the rule windows or the journal's length.
+   A snapshot that cannot be read as it was written (another version or layout, other
+   rules or profiles, damaged bytes, older than the retention) is skipped with its reason
+   in `snapshots_ignored` (the service logs each), and the next older one is tried; with
+   none left, steps 1-5 re-feed the window in full, as before.
 1. Where to start: the longest rule window plus a margin before now, or earlier, so
    that every alarm episode the journal last saw open is rebuilt from a full rule
    window before its onset (same alarm id, same escalation clock). Never further back
@@ -30,6 +40,7 @@ import math
 import time
 from dataclasses import dataclass, field
 
+from .engine import snapshot
 from .engine.alarms import AlarmEvent
 from .engine.effects import AdviceIssued, Effect
 from .engine.engine import Engine
@@ -53,7 +64,7 @@ from .engine.rules import (
     VolumeBelow,
 )
 from .engine.timefmt import iso
-from .journal import BedFilter, StoredEvent
+from .journal import BedFilter, StoredEvent, StoredSnapshot
 from .journal_api import Journal
 
 HOUR = 3600.0
@@ -120,6 +131,10 @@ class Recovery:
     undelivered: list[StoredEvent] = field(default_factory=list)  # journaled, never confirmed
     engine_errors: list[str] = field(default_factory=list)  # messages the engine choked on
     seconds: float = 0.0
+    snapshot_id: int | None = None  # the snapshot loaded (None: a full re-feed)
+    snapshot_time: float | None = None  # its engine time
+    snapshots_ignored: list[str] = field(default_factory=list)  # why each was skipped
+    last_message_id: int | None = None  # the newest message fed (from the snapshot on)
 
 
 def _key(e: AlarmEvent) -> tuple[str, str, str, float]:
@@ -185,6 +200,82 @@ def _read_events(journal: Journal, since: float | None) -> _Journaled:
     return out
 
 
+def _load_snapshot(engine: Engine, journal: Journal, floor: float | None,
+                   ignored: list[str]) -> StoredSnapshot | None:  # fmt: skip
+    """The newest snapshot the engine could load (loaded into it), or None."""
+    for snap in journal.snapshots():
+        what = f"snapshot {snap.id} of {iso(snap.taken_at)}"
+        if floor is not None and snap.taken_at < floor:
+            ignored.append(f"{what}: older than the journal's retention")
+            continue
+        try:
+            snapshot.restore(engine, snap.body)  # leaves the engine untouched if it fails
+        except snapshot.Mismatch as exc:
+            ignored.append(f"{what}: {exc}")
+            continue
+        except snapshot.Corrupt as exc:
+            ignored.append(f"{what}: damaged: {exc}")
+            continue
+        return snap
+    return None
+
+
+def _reconcile(rec: Recovery, journal: Journal, effects: list[Effect], since: float,
+               seen: _Journaled, cut: float) -> None:  # fmt: skip
+    """Step 5: what the journal holds already, what is new, what differs."""
+    journaled = journal.alarm_event_keys(since)
+    for e in effects:
+        if isinstance(e, AlarmEvent):
+            if _key(e) in journaled:
+                rec.already_journaled += 1
+            elif e.time >= cut:
+                rec.to_publish.append(e)
+            else:
+                rec.differs.append(e)
+        elif (k := _other_key(e)) is not None:
+            if k in seen.other_keys:
+                rec.already_journaled += 1
+            elif e.time >= cut:
+                rec.to_publish.append(e)
+        # rejected input was reported live; a rejection is not news after a restart
+
+
+# Messages after a snapshot are read from this long before its engine time on (by id):
+# their receive times are the engine's, which never runs backwards, so none is older.
+TAIL_SLACK_S = 3600.0
+
+
+def _from_snapshot(engine: Engine, journal: Journal, snap: StoredSnapshot, now: float,
+                   window_s: float, rec: Recovery) -> None:  # fmt: skip
+    """Steps 0, 4 and 5: the journal's tail after a loaded snapshot."""
+    t0 = snap.taken_at
+    rec.snapshot_id, rec.snapshot_time = snap.id, t0
+    rec.window_start, rec.complete = t0, True
+    seen = _read_events(journal, t0)
+    rec.last_event_time = seen.last_time
+    refed: list[Effect] = []
+    t = t0
+    last_id = snap.message_id
+    for m in journal.messages_between(t0 - TAIL_SLACK_S, None):
+        if m.id <= snap.message_id:
+            continue  # in the snapshot already
+        t = max(t, m.recv_time)
+        try:
+            refed += engine.advance(t)
+            refed += engine.step(m.topic, m.payload, t)
+        except Exception as exc:  # as live
+            rec.engine_errors.append(f"message {m.id} on {m.topic[:100]}: {exc!r}"[:300])
+        rec.messages += 1
+        last_id = m.id
+    rec.last_message_time = t if rec.messages else None
+    rec.last_message_id = last_id
+    downtime = engine.advance(max(now, t))
+    cut = seen.last_time if seen.last_time is not None else -math.inf
+    _reconcile(rec, journal, refed + downtime, t0, seen, cut)
+    lo = min(t0, now - window_s)  # what was never confirmed, as far back as a full re-feed
+    rec.undelivered = [ev for ev in journal.undelivered_events() if ev.time >= lo]
+
+
 def recover(
     engine: Engine,
     journal: Journal,
@@ -193,18 +284,27 @@ def recover(
     guard_s: float,
     prefix: str,
     max_lookback_s: float | None = None,
+    use_snapshots: bool = True,
 ) -> Recovery:
-    """Rebuild `engine` from the journal (see the module text). The re-feed starts at
+    """Rebuild `engine` from the journal (see the module text): from its newest readable
+    snapshot and the messages after it, or else by a full re-feed. The re-feed starts at
     now - window_s, or earlier: `guard_s` (the longest rule window) before the onset of
     the oldest alarm episode the journal says is still open, so that episode is rebuilt
     with its own id and escalation clock. Never further back than `max_lookback_s`."""
     started = time.perf_counter()
     floor = now - max_lookback_s if max_lookback_s is not None else None
+    ignored: list[str] = []
+    snap = _load_snapshot(engine, journal, floor, ignored) if use_snapshots else None
+    if snap is not None:
+        rec = Recovery(snap.taken_at, now, snapshots_ignored=ignored)
+        _from_snapshot(engine, journal, snap, now, window_s, rec)
+        rec.seconds = time.perf_counter() - started
+        return rec
     seen = _read_events(journal, floor)
     t0 = min([now - window_s] + [t - guard_s for t in seen.open_onsets()])
     if floor is not None:
         t0 = max(t0, floor)
-    rec = Recovery(t0, now, complete=not _has_older(journal, t0))
+    rec = Recovery(t0, now, complete=not _has_older(journal, t0), snapshots_ignored=ignored)
     rec.last_event_time = seen.last_time
     refed: list[Effect] = []
     memory = _LatestContexts(prefix)
@@ -224,30 +324,17 @@ def recover(
         except Exception as exc:  # as live: one bad message must not stop every restart
             rec.engine_errors.append(f"message {m.id} on {m.topic[:100]}: {exc!r}"[:300])
         rec.messages += 1
+        rec.last_message_id = m.id
     if first:  # no message in the window: still bind the beds
         for topic, payload in sorted(memory.latest.items()):
             refed += engine.step(topic, payload, t0)
             rec.contexts += 1
     rec.last_message_time = t if rec.messages else None
     downtime = engine.advance(max(now, t))
-    journaled = journal.alarm_event_keys(t0)
     cut = seen.last_time if seen.last_time is not None else -math.inf
     if not rec.complete:
         cut = max(cut, t0 + guard_s)
-    for e in refed + downtime:
-        if isinstance(e, AlarmEvent):
-            if _key(e) in journaled:
-                rec.already_journaled += 1
-            elif e.time >= cut:
-                rec.to_publish.append(e)
-            else:
-                rec.differs.append(e)
-        elif (k := _other_key(e)) is not None:
-            if k in seen.other_keys:
-                rec.already_journaled += 1
-            elif e.time >= cut:
-                rec.to_publish.append(e)
-        # rejected input was reported live; a rejection is not news after a restart
+    _reconcile(rec, journal, refed + downtime, t0, seen, cut)
     rec.undelivered = [ev for ev in journal.undelivered_events() if ev.time >= t0]
     rec.seconds = time.perf_counter() - started
     return rec

@@ -37,6 +37,7 @@ from pydantic import ValidationError
 
 from .caution import CAUTION
 from .config import ServiceConfig, split_address, zone_info
+from .engine import snapshot
 from .engine.alarms import AlarmEvent
 from .engine.effects import AdviceIssued, Effect, RejectedInput
 from .engine.engine import Engine
@@ -83,6 +84,9 @@ OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
 BATCH_MAX_311 = 16
 BATCH_MAX_CAP = 256
 BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
+# minutes of output kept per bed: the rule windows, and the board's last 24 h and the hour
+# being filled (daemon/web/board.py); older minutes are forgotten (bounded memory)
+SERIES_KEEP_S = 25 * 3600.0
 HOUSEKEEPING_S = 0.25  # the worker wakes at least this often
 HOUSEKEEPING_EVERY_S = 0.05  # timeouts, retained state and status at most this often
 PRUNE_EVERY_S = 600.0
@@ -257,6 +261,8 @@ class Service:
         if not cfg.ack.per_user_topic:  # a broker without logins: the payload names them
             self.subscriptions.append(f"{self.prefix}/ack")
         lim = cfg.limits
+        self.guard_s = longest_window_s(self.rules)
+        self.window_s = self.guard_s + cfg.recovery.margin_s
         try:
             self.engine = Engine(
                 profiles, self.rules, self.policy, topic_prefix=self.prefix,
@@ -267,11 +273,10 @@ class Service:
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
                 ack_users=cfg.ack.users or None, calibration=load_devices(cfg.devices),
                 observe=self.marks.observe if cfg.board.listen else None,  # the board's bag changes
+                series_keep_s=max(self.window_s, SERIES_KEEP_S),  # bounded memory per bed
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
             raise UserError(f"ack.users: {exc}") from None
-        self.guard_s = longest_window_s(self.rules)
-        self.window_s = self.guard_s + cfg.recovery.margin_s
         self.batch_max = (
             min(BATCH_MAX_CAP, cfg.broker.receive_maximum // 2)
             if cfg.broker.protocol == "5"
@@ -295,6 +300,10 @@ class Service:
         self.outbox: Outbox | None = None
         self.health: WebServer | None = None  # /health, /metrics, links and the board
         self._now = -math.inf  # engine time so far (monotone)
+        # the newest message journaled and fed to the engine (a snapshot's position)
+        self._last_message_id = 0
+        self._next_snapshot = -math.inf  # engine time of the next snapshot
+        self._snapshot_at: tuple[float, int] | None = None  # (engine time, id) of the last
         self._timer_effects: list[Effect] = []
         # journal event id -> perf_counter arrival of the reading that raised the alarm
         self._alarm_arrived: dict[int, float] = {}
@@ -424,7 +433,12 @@ class Service:
                 max_lookback_s=self.cfg.journal.retention_days * 86400.0,
             )  # fmt: skip
             self._now = max(now, rec.last_message_time or now)
+            self._last_message_id = rec.last_message_id or 0
+            self._next_snapshot = self._now  # one at once: a crash soon after restarts fast
         self.stats.recovery = rec
+        for why in rec.snapshots_ignored:
+            self.log.warning("snapshot_ignored", why=why[:300],
+                             note="not read; the journal is re-fed instead")  # fmt: skip
         with self.metrics.lock:
             self.metrics.recovery_s = rec.seconds
             self.metrics.recovered_messages = rec.messages
@@ -432,6 +446,7 @@ class Service:
             "recovery_done", seconds=round(rec.seconds, 3),
             window_h=round((rec.now - rec.window_start) / 3600, 2), complete=rec.complete,
             messages=rec.messages, contexts=rec.contexts, beds=len(self.engine.beds),
+            snapshot=rec.snapshot_id,
             already_journaled=rec.already_journaled, new_events=len(rec.to_publish),
             undelivered=len(rec.undelivered), differs=len(rec.differs),
             engine_errors=len(rec.engine_errors),
@@ -495,6 +510,8 @@ class Service:
                 if time.monotonic() >= self._next_housekeeping:
                     self._next_housekeeping = time.monotonic() + HOUSEKEEPING_EVERY_S
                     self._housekeeping()
+                if self._now >= self._next_snapshot and self.cfg.recovery.snapshot_every_s:
+                    self._snapshot()
         except Fenced as exc:  # replaced by another instance: nothing was written
             self.fenced = True
             self.failed = f"fenced: {exc}"
@@ -574,12 +591,14 @@ class Service:
             rows = [(t, m.topic, m.payload, m.qos)
                     for t, m, mine in zip(times, batch, ours, strict=True) if mine]  # fmt: skip
             try:
-                self.journal.append_messages(rows)  # durable on return
+                ids = self.journal.append_messages(rows)  # durable on return
             except Exception as exc:
                 if not is_full(exc):
                     raise  # any other failure: stop, acknowledging nothing
                 self._journal_full(batch, exc)
                 return
+            if ids:  # fed below, under this same hold of the lock
+                self._last_message_id = max(self._last_message_id, ids[-1])
             self.slots.release(len(batch))
             self._journal_lag = time.perf_counter() - min(m.arrived for m in batch)
             acked = stale = 0
@@ -692,6 +711,8 @@ class Service:
         with self.lock:
             effects, self._timer_effects = self._timer_effects, []
         self._emit(effects)
+        if self.cfg.recovery.snapshot_every_s:
+            self._snapshot()  # the next start reads it and feeds nothing before it
         self._publish_states(force=True)
         status = offline_status(self.clock(), self._stop_reason, self.stats.started)
         self.outbox.put(Outgoing(self._topic("status"), status.to_bytes(), 1, True))
@@ -713,6 +734,46 @@ class Service:
         if left:
             self.log.warning("stopping_with_unconfirmed", events=len(left),
                              note="sent again at the next start")  # fmt: skip
+
+    # --- snapshots: the next start loads the newest (daemon/recovery.py) --------------
+    def _snapshot(self) -> None:
+        """Journal the engine's state, with the newest message it has been fed. Taken only
+        where every effect the engine has made is journaled (a snapshot must not hold an
+        event the journal lacks: recovery would never find it again). Encoded under the
+        engine lock (tens of ms for a ward), compressed after it, written by the worker,
+        which owns the journal."""
+        assert self.journal is not None
+        self._next_snapshot = self._now + max(self.cfg.recovery.snapshot_every_s, 1.0)
+        if self._held or self._held_effects or self.fenced:
+            return
+        started = time.perf_counter()
+        with self.lock:
+            if self._timer_effects:  # not journaled yet: at the next turn
+                self._next_snapshot = self._now
+                return
+            at = (self._now, self._last_message_id)
+            if at == self._snapshot_at or not math.isfinite(self._now):
+                return  # nothing new since the last one
+            try:
+                captured = snapshot.take_captured(self.engine)
+            except Exception:  # a state the walker cannot carry: restarts re-feed instead
+                self.log.error("snapshot_failed", exc_info=True)
+                return
+        encoded = time.perf_counter() - started
+        body = captured.pack()  # compressed with the engine free again
+        try:
+            self.journal.save_snapshot(at[0], at[1], body)
+        except Fenced:
+            raise
+        except Exception as exc:
+            if not is_full(exc):
+                raise
+            self.log.warning("snapshot_not_saved", error=str(exc)[:200])
+            return
+        self._snapshot_at = at
+        self.log.info("snapshot_saved", bytes=len(body), message_id=at[1],
+                      locked_ms=round(encoded * 1000, 1),
+                      total_ms=round((time.perf_counter() - started) * 1000, 1))  # fmt: skip
 
     # --- a full journal: hold, say so, retry -----------------------------------------
     def _journal_full(self, batch: list[Inbound], exc: Exception) -> None:
@@ -1264,7 +1325,8 @@ class Service:
         try:
             with self.lock:
                 self._now = t = max(self._now, self.clock())
-                self.journal.append_messages([(t, item.topic, item.payload, 0)])
+                ids = self.journal.append_messages([(t, item.topic, item.payload, 0)])
+                self._last_message_id = max(self._last_message_id, *ids)
                 effects, self._timer_effects = self._timer_effects, []
                 try:
                     effects += self.engine.advance(t)

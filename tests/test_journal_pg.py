@@ -53,7 +53,7 @@ def test_migrations_create_every_version_once_and_refuse_a_newer_journal(pg):  #
         assert migrate(conn, pg) == []  # applied on every start: nothing twice
         names = [r[0] for r in conn.execute("SELECT name FROM hourwatch_schema ORDER BY version")]
         assert names == ["messages and events", "delivery outbox", "annotations",
-                         "active/standby lease"]  # fmt: skip
+                         "active/standby lease", "engine snapshots"]  # fmt: skip
         conn.execute("INSERT INTO hourwatch_schema (version, name) VALUES (99, 'future')")
     with pytest.raises(UserError, match="schema 99 is newer"):
         PostgresJournal(pg)
@@ -127,6 +127,49 @@ def test_the_same_scenario_gives_identical_messages_events_and_recovery(tmp_path
                         [asdict(e) for e in rec.undelivered]))  # fmt: skip
         assert out[0] == out[1]
         assert out[0][4], "the downtime should bring an escalation to publish"
+
+
+def test_snapshots_are_kept_and_read_alike_and_a_restart_from_one_recovers_the_same(
+    tmp_path, pg  # noqa: F811
+):
+    """The newest three snapshots kept, newest first, bytes as written; a restart from a
+    snapshot taken mid-way gives on both what the full re-feed gives."""
+    from daemon.engine import snapshot
+
+    recs = records(5.0)
+    half = len(recs) // 2
+    lite, post = both(tmp_path, pg)
+    with lite, post:
+        for j in (lite, post):
+            for i in range(5):
+                j.save_snapshot(float(i), i, bytes([i]) * 100)
+            assert [(s.message_id, s.body) for s in j.snapshots()] == [
+                (4, b"\x04" * 100), (3, b"\x03" * 100), (2, b"\x02" * 100)]  # fmt: skip
+            eng = engine()
+            for n, (t, topic, payload) in enumerate(recs, start=1):
+                (mid,) = j.append_messages([(t, topic, payload, 1)])
+                eff = eng.advance(t) + eng.step(topic, payload, t)
+                j.append_events([journal_row(e) for e in eff])
+                if n == half:
+                    j.save_snapshot(t, mid, snapshot.take(eng))
+        now = recs[-1][0] + 3 * HOUR
+        out = []
+        for j in (lite, post):
+            for use in (True, False):
+                rec = recover(engine(), j, now, GUARD_S + HOUR, GUARD_S, "hourwatch",
+                              use_snapshots=use)  # fmt: skip
+                assert (rec.snapshot_id is not None) == use
+                assert rec.messages == (len(recs) - half if use else len(recs))
+                out.append([(e.alarm_id, str(e.state), e.reason, e.time)
+                            for e in rec.to_publish if isinstance(e, AlarmEvent)])  # fmt: skip
+        assert out[0] and out[0] == out[1] == out[2] == out[3]
+
+
+def test_a_replaced_active_stores_no_snapshot(pg):  # noqa: F811
+    with open_journal(pg, fence=FenceToken("nobody-holds-this", 1)) as j:
+        with pytest.raises(Fenced):
+            j.save_snapshot(1.0, 1, b"state")
+        assert j.snapshots() == []
 
 
 @pytest.fixture

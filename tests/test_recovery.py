@@ -21,6 +21,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+import pytest
+
 from daemon.engine.alarms import AlarmEvent
 from daemon.engine.engine import Engine
 from daemon.journal import SqliteJournal, journal_records
@@ -204,12 +206,16 @@ def alarm_msgs(w: Watcher) -> list[dict]:
     return w.json("hourwatch/alarms/")
 
 
-def test_restart_publishes_the_downtime_escalation_once_and_nothing_twice(broker, tmp_path):  # noqa: F811
+@pytest.mark.parametrize("every_s", [0.0, 900.0], ids=["re-feed", "snapshot"])
+def test_restart_publishes_the_downtime_escalation_once_and_nothing_twice(broker, tmp_path,  # noqa: F811
+                                                                         every_s):  # fmt: skip
+    """Alike whether the restart re-feeds the journal or loads the snapshot the clean stop
+    wrote (and feeds nothing after it)."""
     clock = FakeClock(time.time())
     jpath = tmp_path / "j.db"
     w = Watcher(broker)
     pub = publisher(broker)
-    with running_service(broker, jpath, w, clock=clock):
+    with running_service(broker, jpath, w, clock=clock, recovery__snapshot_every_s=every_s):
         publish_all(pub, [("hourwatch/beds/b01/context", context(["rc-1"]))], retain=True)
         publish_all(pub, readings("rc-1", clock() - 2.2 * HOUR, 2.2))
         w.wait_for(lambda w: [a for a in alarm_msgs(w) if a["rule"] == "pod-hourly"], 5, "alarm")
@@ -218,10 +224,15 @@ def test_restart_publishes_the_downtime_escalation_once_and_nothing_twice(broker
     paging = {a["alarm_id"] for a in before if a["state"] == "active" and a["rule"] == "pod-hourly"}
     assert len(paging) == 1
     clock.advance(MEDIUM_TIER1_S + 100)  # the service is down while tier 1 falls due
-    with running_service(broker, jpath, w, clock=clock) as svc:
+    with running_service(broker, jpath, w, clock=clock, recovery__snapshot_every_s=every_s) as svc:
         w.wait_for(lambda w: [a for a in alarm_msgs(w) if a["state"] == "escalated"], 5, "esc")
         time.sleep(0.3)
-        assert svc.stats.recovery.messages == len(readings("rc-1", 0, 2.2)) + 1
+        if every_s:
+            assert svc.stats.recovery.snapshot_id is not None
+            assert svc.stats.recovery.messages == 0
+        else:
+            assert svc.stats.recovery.snapshot_id is None
+            assert svc.stats.recovery.messages == len(readings("rc-1", 0, 2.2)) + 1
     after = alarm_msgs(w)[len(before) :]
     escalated = {a["alarm_id"] for a in after if a["state"] == "escalated"}
     assert paging <= escalated  # the paging alarm's chain went on
@@ -232,7 +243,7 @@ def test_restart_publishes_the_downtime_escalation_once_and_nothing_twice(broker
         if a["state"] == "escalated":
             assert a["notify"] == ["bedside-nurse", "charge-nurse"]
     clock.advance(10)
-    with running_service(broker, jpath, w, clock=clock) as svc:
+    with running_service(broker, jpath, w, clock=clock, recovery__snapshot_every_s=every_s) as svc:
         time.sleep(0.5)
         assert svc.stats.recovery.to_publish == []
     assert len(alarm_msgs(w)) == len(before) + len(after)  # the third start said nothing new

@@ -192,3 +192,51 @@ def test_window_sums_do_not_depend_on_when_they_were_asked() -> None:
     for a in range(lo, hi, 11):
         for b in range(a, hi, 17):
             assert asked.sums(a, b) == quiet.sums(a, b)
+
+
+def test_a_kept_series_forgets_old_minutes_and_keeps_its_windows() -> None:
+    """With keep_min (the live service), minutes older than that before the newest are
+    forgotten: the buffer stays bounded, the windows within it keep their volumes, and
+    `first_minute` still says when monitoring began. Invented flow: 1 mL/min for 3 days."""
+    from daemon.engine.series import GROW
+
+    keep = 25 * H
+    kept, full = MinuteSeries(keep), MinuteSeries()
+    t = T0
+    for _ in range(3 * 1440):
+        for s in (kept, full):
+            s.spread(t, t + 60.0, 1.0, MEASURED)
+            s.note_reading(t + 60.0)
+        t += 60.0
+        assert len(kept._vol) <= keep + 3 * GROW
+    end = kept.latest_minute()
+    assert end is not None and kept.first_minute == full.first_minute == M0
+    for length in (60, 6 * H, 24 * H):
+        lo = end + 1 - length
+        assert kept.sums(lo, end + 1).volume_ml == pytest.approx(float(length))
+        assert kept.sums(lo, end + 1).measured_min == full.sums(lo, end + 1).measured_min
+    vol, st = kept.minutes(M0, M0 + 60)  # forgotten: unknown now
+    assert (st == UNKNOWN).all() and (vol == 0).all()
+    assert len(list(kept.completed_hours())) <= 27
+
+
+def test_where_a_kept_series_starts_depends_on_the_data_only() -> None:
+    """Two services fed the same stream, one started a day earlier: once both have
+    forgotten their start, every window sums to the same float (the buffers start on
+    the same grid minute, so the prefix sums round alike)."""
+    import random
+
+    rng = random.Random(3)
+    keep = 25 * H
+    early, late = MinuteSeries(keep), MinuteSeries(keep)
+    t = T0
+    for i in range(4 * 1440):
+        v = rng.random() * 3
+        early.spread(t, t + 60.0, v, MEASURED)
+        if i >= 1440:
+            late.spread(t, t + 60.0, v, MEASURED)
+        t += 60.0
+    assert early._base == late._base
+    end = int(t // 60)
+    for length in (60, 120, 6 * H, 24 * H):
+        assert early.sums(end - length, end) == late.sums(end - length, end)

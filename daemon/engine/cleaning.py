@@ -82,6 +82,13 @@ class CumulativeCleaner:
     until the next reading confirms or refutes them.
     """
 
+    # slotted: a snapshot (snapshot.py) knows its fields from the class
+    __slots__ = (
+        "_fall_detect", "_max_flow_s", "_max_gap", "_min_dt", "_min_fall", "_near_zero",
+        "_noise", "_provisional_n", "_reorder_tol", "_tail_len", "first", "floor_level",
+        "floor_t", "held", "history", "last_change", "provisional", "revised", "series", "tail",
+    )  # fmt: skip
+
     def __init__(self, profile: DeviceProfile, series: MinuteSeries) -> None:
         self.series = series
         p = profile
@@ -406,6 +413,8 @@ class CumulativeCleaner:
 class IntervalCleaner:
     """Each reading is the volume produced in (t - interval, t]; order does not
     matter, overlap does: an interval overlapping an accepted one is refused."""
+
+    __slots__ = ("_ends", "_interval", "_max_flow_s", "last_t", "series")
 
     def __init__(self, profile: DeviceProfile, series: MinuteSeries) -> None:
         self.series = series

@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import bisect
 import heapq
+import math
 import re
+from array import array
 from collections import Counter
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field, replace
@@ -49,8 +51,10 @@ from .windows import measure
 
 M = TypeVar("M", bound=BaseModel)
 
-DEDUP_HORIZON_S = 86400.0
+DEDUP_HORIZON_S = 86400.0  # readings remembered for duplicates: this far behind the newest
+DEDUP_SLACK_S = 3600.0  # ... pruned once the oldest is this much further behind
 DEDUP_MAX = 16_384  # duplicate keys kept per device at most, whatever the device times
+NO_SEQ = math.nan  # a reading without a sequence number (equal to no other)
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
 # Bed ids, ward names and acknowledging users: letters, digits, '-', '_' and '.', up to
 # 64 characters. No spaces, no MQTT separators or wildcards; a site that wants another
@@ -102,9 +106,12 @@ class _Device:
     last_usable: float | None = None
     sent_since: Counter[str] = field(default_factory=Counter)
     bag_ml: float | None = None  # what its bag held at its last usable reading
-    by_time: dict[float, float] = field(default_factory=dict)  # raw device time -> raw value
-    by_seq: dict[int, float] = field(default_factory=dict)  # seq -> raw device time
-    dedup_times: list[float] = field(default_factory=list)  # sorted keys, for pruning
+    # readings remembered for duplicates, by raw device time: sorted times, and per time
+    # the raw value and the seq (NO_SEQ: none); typed arrays, 24 bytes a reading, where
+    # dicts of Python floats took about 170 (a day of a meter every minute: 1,440)
+    dedup_times: array[float] = field(default_factory=lambda: array("d"))
+    dedup_values: array[float] = field(default_factory=lambda: array("d"))
+    dedup_seqs: array[float] = field(default_factory=lambda: array("d"))
     # its family is fixed: it spoke on a bed, or a bed context named the family
     owned: bool = False
     # of its family, kept here: every message or evaluation reads them
@@ -190,6 +197,7 @@ class Engine:
         ack_topic: str | None = None,
         ack_users: Mapping[str, Iterable[str]] | None = None,
         calibration: Mapping[str, Calibration] | None = None,
+        series_keep_s: float | None = None,
     ) -> None:
         self.observe = observe  # told the fate of every meter message (review tools)
         self.profiles = list(profiles)
@@ -217,6 +225,9 @@ class Engine:
         self._unbound_expiry_s = unbound_expiry_s
         self._max_unbound = max_unbound_devices
         self._max_beds = max_beds
+        # a bed's minute series keeps this much before its newest minute (None: all, as
+        # replay and its reports want); the live service keeps the longest rule window
+        self._series_keep_min = None if series_keep_s is None else math.ceil(series_keep_s / 60)
         self._unbound: dict[str, float] = {}  # unbound device -> last message, oldest first
         self.devices_forgotten = 0  # unbound entries expired or pushed out
         self.received_forgotten = 0  # the messages those entries had counted
@@ -444,16 +455,14 @@ class Engine:
 
     def _clean(self, dev: _Device, r: Reading, now: float) -> list[Outcome]:
         t = r.device_time
-        # duplicates first, so a redelivery days later still counts as a duplicate
-        seen_value = dev.by_time.get(t)
-        if seen_value is not None:
-            return [
-                Outcome.DUPLICATE if seen_value == r.raw_value else Outcome.CONFLICTING_DUPLICATE
-            ]
-        if r.seq is not None:
-            seen_t = dev.by_seq.get(r.seq)
-            if seen_t is not None and abs(seen_t - t) <= dev.clock_tolerance_s:
-                return [Outcome.DUPLICATE]
+        # duplicates first, so a redelivery a day later still counts as a duplicate
+        times = dev.dedup_times
+        at = bisect.bisect_left(times, t)
+        if at < len(times) and times[at] == t:
+            same = dev.dedup_values[at] == r.raw_value
+            return [Outcome.DUPLICATE if same else Outcome.CONFLICTING_DUPLICATE]
+        if r.seq is not None and self._seq_seen(dev, float(r.seq), t):
+            return [Outcome.DUPLICATE]
         # which clock to believe
         adjusted: Outcome | None = None
         if t > now + dev.clock_tolerance_s:
@@ -464,7 +473,7 @@ class Engine:
             adjusted = Outcome.STORE_FORWARD
         if dev.latest_t is not None and t < dev.latest_t - dev.reorder_tolerance_s:
             return [Outcome.LATE]
-        self._remember(dev, r)
+        self._remember(dev, r, at)
         assert dev.cleaner is not None
         outcomes = dev.cleaner.feed(t, r)
         # a refused reading must not move the lateness horizon (a held one does)
@@ -479,27 +488,36 @@ class Engine:
             outcomes[-1] = adjusted
         return outcomes
 
-    def _remember(self, dev: _Device, r: Reading) -> None:
-        dev.by_time[r.device_time] = r.raw_value
-        times = dev.dedup_times
-        if not times or r.device_time >= times[-1]:
-            times.append(r.device_time)  # the usual case: in order
+    @staticmethod
+    def _seq_seen(dev: _Device, seq: float, t: float) -> bool:
+        """A remembered reading with this seq and a device time within the clock
+        tolerance of t: the same reading, re-stamped."""
+        times, tol = dev.dedup_times, dev.clock_tolerance_s
+        lo = bisect.bisect_left(times, t - tol)
+        hi = bisect.bisect_right(times, t + tol, lo)
+        seqs = dev.dedup_seqs
+        return any(seqs[i] == seq for i in range(lo, hi))
+
+    @staticmethod
+    def _remember(dev: _Device, r: Reading, at: int) -> None:
+        """Remember the reading at its place `at` in time order; forget, by device time,
+        what lies more than the horizon behind the newest."""
+        times, values, seqs = dev.dedup_times, dev.dedup_values, dev.dedup_seqs
+        seq = NO_SEQ if r.seq is None else float(r.seq)
+        if at == len(times):  # the usual case: in order
+            times.append(r.device_time)
+            values.append(r.raw_value)
+            seqs.append(seq)
         else:
-            bisect.insort(times, r.device_time)
-        if r.seq is not None:
-            dev.by_seq[r.seq] = r.device_time
-        if len(dev.dedup_times) > 4096:  # prune lazily, by device time
-            cutoff = dev.dedup_times[-1] - DEDUP_HORIZON_S
-            k = bisect.bisect_left(dev.dedup_times, cutoff)
+            times.insert(at, r.device_time)
+            values.insert(at, r.raw_value)
+            seqs.insert(at, seq)
+        newest = times[-1]
+        if times[0] < newest - DEDUP_HORIZON_S - DEDUP_SLACK_S or len(times) > DEDUP_MAX:
             # device times far apart (a wild clock) must not keep every key: the oldest
             # go first past DEDUP_MAX
-            k = max(k, len(dev.dedup_times) - DEDUP_MAX)
-            if k:
-                cutoff = dev.dedup_times[k]
-            for old in dev.dedup_times[:k]:
-                dev.by_time.pop(old, None)
-            del dev.dedup_times[:k]
-            dev.by_seq = {s: tt for s, tt in dev.by_seq.items() if tt >= cutoff}
+            k = max(bisect.bisect_left(times, newest - DEDUP_HORIZON_S), len(times) - DEDUP_MAX)
+            del times[:k], values[:k], seqs[:k]
 
     # --- identifiers -----------------------------------------------------------
     def is_identifier(self, text: str) -> bool:
@@ -715,7 +733,8 @@ class Engine:
             ctx = ctx.model_copy(update={"device_ids": kept})
         bed = self.beds.get(bed_id)
         if bed is None:
-            bed = self.beds[bed_id] = BedState(bed_id, ctx, MinuteSeries(), bound_at=now)
+            bed = self.beds[bed_id] = BedState(bed_id, ctx, MinuteSeries(self._series_keep_min),
+                                                      bound_at=now)
         bed.set_context(ctx)
         bed.notices.clear()  # a new context may supply what was missing
         wanted = set(ctx.device_ids)

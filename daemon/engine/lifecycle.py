@@ -250,6 +250,12 @@ class AlarmView:
 
 
 class AlarmBook:
+    # slotted: a snapshot (snapshot.py) knows its fields from the class
+    __slots__ = (
+        "_by_bed", "_dues", "_explain", "_live", "_min_due", "_min_stale", "_now", "_policy",
+        "_slots", "ack_validity_s", "refused",
+    )  # fmt: skip
+
     def __init__(self, policy: EscalationPolicy, ack_validity_s: int = 3600) -> None:
         if ack_validity_s <= 0:
             raise ValueError("ack_validity_s must be positive")
@@ -437,12 +443,17 @@ class AlarmBook:
             rec.evidence = dict(evidence)
         return rec
 
-    def __getstate__(self) -> dict[str, object]:
-        """Pickling (snapshot of a whole engine) resolves the pending words first."""
+    def settle(self) -> None:
+        """Build the words of every live alarm now (they are built lazily, by closures
+        that neither pickle nor snapshot)."""
         for slot in self._live.values():
             if slot.record is not None:
                 self._resolve(slot.record)
-        return {k: getattr(self, k) for k in self.__dict__}
+
+    def __getstate__(self) -> tuple[None, dict[str, object]]:
+        """Pickling (snapshot of a whole engine) resolves the pending words first."""
+        self.settle()
+        return None, {k: getattr(self, k) for k in AlarmBook.__slots__}
 
     def open_rules(self, bed: str) -> dict[str, OpenRule]:
         """Rule id -> (state, activation or onset time, when its condition went away or
