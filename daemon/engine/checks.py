@@ -229,10 +229,8 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
         return NOT_YET
     length = c.window_h * 60
     early = _elapsed_quiet(v, end, length)  # the duration has not elapsed yet
-    base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
     if c.mode == "mean":
         w = measure(v.bed.series, end, length)
-        rate = w.rate_ml_kg_h(kg)
         # the volume at the line over the minutes with data, compared to the tenth of a mL
         cond = (
             early is None
@@ -241,6 +239,8 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
         )
 
         def explain_mean() -> tuple[str, dict[str, Any]]:
+            rate = w.rate_ml_kg_h(kg)
+            base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
             ev = (
                 _weight_evidence(v)
                 | base
@@ -274,6 +274,7 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
     )
 
     def explain_hours() -> tuple[str, dict[str, Any]]:
+        base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
         ev = _weight_evidence(v) | base | {
             "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [half_up(x, 3) for x in rates],
         }  # fmt: skip

@@ -90,6 +90,8 @@ class Evaluator:
         # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
         self._on_output = [p.rule_id for p in self.plans if not p.blind and not p.rule.while_active]
         self._waiting = [p.rule_id for p in self.plans if p.waits]
+        # (rule id, waits, plan): the shortcut's filter reads these at every reading
+        self._keyed = [(p.rule_id, p.waits, p) for p in self.plans]
         self.book = book
 
     @staticmethod
@@ -125,18 +127,26 @@ class Evaluator:
         plans = self.plans
         if shortcut:  # one pass that drops the rules allowed to wait (see above)
             last = end if end is not None else FOREVER
-            plans = [
-                p for p in plans
-                if p.rule_id in opened or arm_due.get(p.rule_id, FOREVER) <= now or not (
-                    input_due.get(p.rule_id, now) > now if p.waits
-                    else quiet.get(p.rule_id, -1) >= last
-                )
-            ]  # fmt: skip
+            qget, iget = quiet.get, input_due.get
+            if arm_due:
+                aget = arm_due.get
+                plans = [
+                    p for rid, waits, p in self._keyed
+                    if rid in opened or aget(rid, FOREVER) <= now or not (
+                        iget(rid, now) > now if waits else qget(rid, -1) >= last
+                    )
+                ]  # fmt: skip
+            else:  # the usual case: no rule armed by episode markers is due
+                plans = [
+                    p for rid, waits, p in self._keyed
+                    if rid in opened
+                    or not (iget(rid, now) > now if waits else qget(rid, -1) >= last)
+                ]  # fmt: skip
             for rid in self._waiting:  # a waiting rule keeps its wake-up
-                wake = input_due.get(rid)
-                if rid in opened or wake is None:
+                wake = iget(rid)
+                if wake is None or wake <= now or wake >= FOREVER or rid in opened:
                     continue
-                if now < wake < FOREVER and (due is None or wake < due):
+                if due is None or wake < due:
                     due = wake
         for rule, spec, plan_stage, check, _, rid, waits in plans:
             if plan_stage != stage:
