@@ -92,6 +92,7 @@ class Evaluator:
         self._waiting = [p.rule_id for p in self.plans if p.waits]
         # (rule id, waits, plan): the shortcut's filter reads these at every reading
         self._keyed = [(p.rule_id, p.waits, p) for p in self.plans]
+        self._keyed_output = [(p.rule_id, p) for p in self.plans if not p.waits]
         self.book = book
 
     @staticmethod
@@ -128,7 +129,15 @@ class Evaluator:
         if shortcut:  # one pass that drops the rules allowed to wait (see above)
             last = end if end is not None else FOREVER
             qget, iget = quiet.get, input_due.get
-            if arm_due:
+            waiting = False  # a rule on inputs alone is to run now
+            for rid in self._waiting:  # a waiting rule keeps its wake-up
+                wake = iget(rid)
+                if wake is None or wake <= now or rid in opened:
+                    waiting = True
+                    continue
+                if wake < FOREVER and (due is None or wake < due):
+                    due = wake
+            if arm_due or waiting:
                 aget = arm_due.get
                 plans = [
                     p for rid, waits, p in self._keyed
@@ -136,18 +145,9 @@ class Evaluator:
                         iget(rid, now) > now if waits else qget(rid, -1) >= last
                     )
                 ]  # fmt: skip
-            else:  # the usual case: no rule armed by episode markers is due
-                plans = [
-                    p for rid, waits, p in self._keyed
-                    if rid in opened
-                    or not (iget(rid, now) > now if waits else qget(rid, -1) >= last)
-                ]  # fmt: skip
-            for rid in self._waiting:  # a waiting rule keeps its wake-up
-                wake = iget(rid)
-                if wake is None or wake <= now or wake >= FOREVER or rid in opened:
-                    continue
-                if due is None or wake < due:
-                    due = wake
+            else:  # the usual case: only rules on the output can be due
+                output = self._keyed_output
+                plans = [p for rid, p in output if rid in opened or qget(rid, -1) < last]
         for rule, spec, plan_stage, check, _, rid, waits in plans:
             if plan_stage != stage:
                 stage = plan_stage
