@@ -123,8 +123,7 @@ class Evaluator:
         quiet, input_due, arm_due = bed.quiet_until, bed.input_due, bed.arm_due
         stage = -1
         changed = False  # an evaluation opened or closed alarms: re-read the book's view
-        opened = book.open_rules(bed_id)  # these must hear every answer
-        suppressor = book.suppressor(bed_id)
+        opened, suppressor = book.open_and_suppressor(bed_id)  # opened: must hear every answer
         plans = self.plans
         if shortcut:  # one pass that drops the rules allowed to wait (see above)
             last = end if end is not None else FOREVER
@@ -152,8 +151,7 @@ class Evaluator:
             if plan_stage != stage:
                 stage = plan_stage
                 if changed:  # an earlier stage opened or closed alarms
-                    opened = book.open_rules(bed_id)
-                    suppressor = book.suppressor(bed_id)
+                    opened, suppressor = book.open_and_suppressor(bed_id)
                     changed = False
             if disabled and rid in disabled:
                 if rid in opened:

@@ -460,6 +460,23 @@ class AlarmBook:
                 out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
         return out
 
+    def open_and_suppressor(self, bed: str) -> tuple[dict[str, OpenRule], str | None]:
+        """open_rules(bed) and suppressor(bed) in one pass (asked at every evaluation)."""
+        out: dict[str, OpenRule] = {}
+        found: tuple[float, str] | None = None
+        for s in self._by_bed.get(bed, {}).values():
+            r = s.record
+            if r is not None:
+                at = r.activated_at if r.activated_at is not None else r.onset
+                out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
+                if (
+                    r.spec.kind is Kind.TECHNICAL
+                    and r.state in _ANNUNCIATED
+                    and (found is None or (r.onset, r.alarm_id) < found)
+                ):
+                    found = (r.onset, r.alarm_id)
+        return out, found[1] if found else None
+
     def suppressor(self, bed: str) -> str | None:
         """The alarm id that suppresses `bed`'s low-output alarms: its earliest
         active, unacknowledged technical alarm, or None."""
