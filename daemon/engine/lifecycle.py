@@ -444,9 +444,10 @@ class AlarmBook:
                 self._resolve(slot.record)
         return {k: getattr(self, k) for k in self.__dict__}
 
-    def any_open(self, bed: str) -> bool:
-        """Whether the bed has a current alarm at all (cheaper than open_rules)."""
-        return bool(self._by_bed.get(bed))
+    def is_open(self, bed: str, rule_id: str) -> bool:
+        """Whether the rule has a current alarm on the bed (cheaper than open_rules)."""
+        slot = self._slots.get((bed, rule_id))
+        return slot is not None and slot.record is not None
 
     def open_rules(self, bed: str) -> dict[str, OpenRule]:
         """Rule id -> (state, activation or onset time, when its condition went away or
