@@ -21,6 +21,7 @@ from typing import Any
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from benchmarks.table import Row, add
 from daemon.rule_files import load_policy, load_rules
 from tests.fuzzing import NAMES, Screen, check, drive, good_stream, hostile_message
 
@@ -95,10 +96,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     print(f"  engine per good-stream message (baseline, best of 3): {per_good * 1e6:6.1f} us")
     print(f"  engine per fuzz message (run time beyond the baseline): {per_fuzz * 1e6:6.1f} us "
           f"({per_fuzz / per_good:.2f} x baseline)")  # fmt: skip
+    short = totals["fuzz"] < args.messages
+    add(Row("fuzz: engine per hostile message", f"{per_fuzz * 1e6:.1f} us",
+            f"{per_good * 1e6:.1f} us per good message", f"{per_fuzz / per_good:.2f} x",
+            f"property holds on >= {args.messages:,} messages",
+            failed is None and not short))  # fmt: skip
     if failed is not None:
         print(f"  PROPERTY FAILED: {failed}")
         return 1
-    short = totals["fuzz"] < args.messages
     print("  property held for every run" + (" (fewer messages than the goal)" if short else ""))
     return 1 if short else 0
 

@@ -30,6 +30,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from benchmarks.table import Row as Table
+from benchmarks.table import add
 from daemon.engine.engine import Engine
 from daemon.engine.profiles import DeviceProfile
 from daemon.profile_files import load_profiles
@@ -227,6 +229,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     with tempfile.TemporaryDirectory() as tmp:
         rows = measure(w, args.repeats, Path(tmp), with_rules=not args.no_rules)
     print(report(rows, check_counts(w), len(w.messages), args.meters, args.repeats))
+    eng, base = rows[0], rows[1]
+    add(Table(f"intake: decode + clean, {args.meters} meters", f"{eng.rate:,.0f} readings/s",
+              f"{base.rate:,.0f}/s {base.path}", f"{eng.seconds / base.seconds:.1f} x the time",
+              f">= {GOAL:,} readings/s", eng.rate >= GOAL))  # fmt: skip
     if args.profile:
         print("\ncProfile of the engine path (sorted by own time):")
         print(profile_engine(w))

@@ -33,6 +33,7 @@ from typing import Any
 
 import numpy as np
 
+from benchmarks.table import Row, add
 from daemon.profile_files import load_profiles
 from daemon.review import report as html_report
 from daemon.review.explain import review
@@ -230,6 +231,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         del lines
         laps = {"plain": plain, "parse": parse, "numpy": np_lap}
         print(_report(args, (readings, meter_messages, messages), made, timing, laps, minutes))
+        full = (args.beds, args.days) == (20, 30)
+        add(Row(f"replay + HTML report, {args.beds} beds x {args.days} d",
+                f"{timing.total.cpu:.1f} s CPU", f"{parse.cpu:.2f} s read+json.loads",
+                f"{timing.total.cpu / parse.cpu:.1f} x", f"< {GOAL_S:.0f} s (20 beds x 30 d)",
+                timing.total.cpu <= WELL_UNDER_S if full else None))  # fmt: skip
         if args.profile:
             print("\ncProfile of replay + report (top 25 by own time):")
             print(_profile(log, where / "report-profiled.html"))

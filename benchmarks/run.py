@@ -1,4 +1,5 @@
-"""`make bench`: every benchmark, one after the other (`python -m benchmarks.run`).
+"""`make bench`: every benchmark, one after the other (`python -m benchmarks.run`),
+then one table of every headline figure beside its baseline and goal.
 
 Benchmarks report throughput beside a baseline measured in the same run; they
 assert nothing and are never part of `make test`.
@@ -19,6 +20,7 @@ from benchmarks import (
     bench_review,
     bench_service,
     bench_takeover,
+    table,
 )
 
 
@@ -30,7 +32,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     print()
     rc = bench_journal.main([]) or rc
     print()
-    rc = bench_replay.main([]) or rc
+    rc = bench_replay.main(["--no-table"]) or rc
     print()
     rc = bench_review.main([]) or rc
     print()
@@ -40,6 +42,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     print()
     rc = bench_board.main([]) or rc
     rc = bench_takeover.main([]) or rc
+    print()
+    print("Summary: each figure beside its baseline (measured in the same run) and its goal")
+    table.print_table()
     return rc
 
 

@@ -229,10 +229,8 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
         return NOT_YET
     length = c.window_h * 60
     early = _elapsed_quiet(v, end, length)  # the duration has not elapsed yet
-    base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
     if c.mode == "mean":
         w = measure(v.bed.series, end, length)
-        rate = w.rate_ml_kg_h(kg)
         # the volume at the line over the minutes with data, compared to the tenth of a mL
         cond = (
             early is None
@@ -241,6 +239,8 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
         )
 
         def explain_mean() -> tuple[str, dict[str, Any]]:
+            rate = w.rate_ml_kg_h(kg)
+            base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
             ev = (
                 _weight_evidence(v)
                 | base
@@ -274,6 +274,7 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
     )
 
     def explain_hours() -> tuple[str, dict[str, Any]]:
+        base = {"threshold_ml_kg_h": c.threshold_ml_kg_h, "mode": c.mode}
         ev = _weight_evidence(v) | base | {
             "windows": [w.to_json() for w in wins], "rates_ml_kg_h": [half_up(x, 3) for x in rates],
         }  # fmt: skip
@@ -472,42 +473,51 @@ def hypovolaemia(c: r.Hypovolaemia, v: BedView) -> Finding:
             else _quiet_below(v, hour.volume_ml, c.hourly_above_ml),
         )  # fmt: skip
     signs: list[str] = []
-    ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}
+    # the evidence is put into words only when read (explain); these are its numbers now
     vit = v.bed.latest_vitals(v.now, c.vitals_max_age_s)
-    due = None
+    due = si = mean = None
     if vit is not None:
-        ev["vitals_time"] = iso(vit.time)
         due = vit.time + c.vitals_max_age_s
         if vit.heart_rate is not None and vit.systolic is not None:
             si = shock_index(vit.heart_rate, vit.systolic)
-            ev["shock_index"] = half_up(si, 2)
             if si >= c.shock_index_at_least:
                 signs.append(f"shock index {num(si, 2)}")
         mean = vit.mean
         if mean is None and vit.systolic is not None and vit.diastolic is not None:
             mean = mean_arterial_pressure(vit.systolic, vit.diastolic)
-        if mean is not None:
-            ev["map_mmhg"] = half_up(mean, 1)
-            if mean < c.map_below_mmhg:
-                signs.append(f"MAP {num(mean)} mmHg")
+        if mean is not None and mean < c.map_below_mmhg:
+            signs.append(f"MAP {num(mean)} mmHg")
         if vit.heart_rate is not None and vit.heart_rate > c.heart_rate_above:
             signs.append(f"heart rate {num(vit.heart_rate)}/min")
     balance_low = False
     kg = _weight(v)
+    net = None
     if kg is not None and v.bed.intake_times:  # balance only when intake is documented
         w = measure(v.bed.series, end, c.balance_window_h * 60, v.bed.residual)
         lo, hi = window_bounds(end, c.balance_window_h * 60)
         net = v.bed.intake_between(lo * 60.0, hi * 60.0) - w.volume_ml
-        ev |= {"net_balance_ml": half_up(net, 1), "balance_ml_kg": half_up(net / kg, 2)}
         balance_low = below(net, c.balance_below_ml_kg * kg)
     what = ", ".join(signs + (["negative fluid balance"] if balance_low else [])) or "no sign"
-    return Finding(
-        bool(signs) or balance_low,
-        _say(
+
+    def explain() -> tuple[str, dict[str, Any]]:
+        ev: dict[str, Any] = {"hour": hour.to_json(), "hourly_above_ml": c.hourly_above_ml}
+        if vit is not None:
+            ev["vitals_time"] = iso(vit.time)
+            if si is not None:
+                ev["shock_index"] = half_up(si, 2)
+            if mean is not None:
+                ev["map_mmhg"] = half_up(mean, 1)
+        if net is not None and kg is not None:
+            ev |= {"net_balance_ml": half_up(net, 1), "balance_ml_kg": half_up(net / kg, 2)}
+        return (
             f"assess volume status (resuscitation per clinician): {_ml(hour.volume_ml)} "
             f"last hour; {what}",
             ev | {"signs": signs, "balance_low": balance_low, "what": what},
-        ),
+        )
+
+    return Finding(
+        bool(signs) or balance_low,
+        explain,
         priority=c.priority_with_sign if signs else None,
         due=due,
     )

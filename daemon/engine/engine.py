@@ -911,6 +911,8 @@ class Engine:
 
     def _holding(self, bed_id: str, now: float) -> tuple[str, ...]:
         """The rules bringing advice whose criterion holds on the bed at `now`."""
+        if not any(self.book.is_open(bed_id, rid) for rid in self._advice_sources):
+            return ()  # the usual case, asked at every evaluation
         opened = self.book.open_rules(bed_id)
         hold = self.advice_policy.criterion_end_hold_s
         return tuple(

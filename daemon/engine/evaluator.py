@@ -90,6 +90,9 @@ class Evaluator:
         # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
         self._on_output = [p.rule_id for p in self.plans if not p.blind and not p.rule.while_active]
         self._waiting = [p.rule_id for p in self.plans if p.waits]
+        # (rule id, waits, plan): the shortcut's filter reads these at every reading
+        self._keyed = [(p.rule_id, p.waits, p) for p in self.plans]
+        self._keyed_output = [(p.rule_id, p) for p in self.plans if not p.waits]
         self.book = book
 
     @staticmethod
@@ -120,30 +123,35 @@ class Evaluator:
         quiet, input_due, arm_due = bed.quiet_until, bed.input_due, bed.arm_due
         stage = -1
         changed = False  # an evaluation opened or closed alarms: re-read the book's view
-        opened = book.open_rules(bed_id)  # these must hear every answer
-        suppressor = book.suppressor(bed_id)
+        opened, suppressor = book.open_and_suppressor(bed_id)  # opened: must hear every answer
         plans = self.plans
         if shortcut:  # one pass that drops the rules allowed to wait (see above)
             last = end if end is not None else FOREVER
-            plans = [
-                p for p in plans
-                if p.rule_id in opened or arm_due.get(p.rule_id, FOREVER) <= now or not (
-                    input_due.get(p.rule_id, now) > now if p.waits
-                    else quiet.get(p.rule_id, -1) >= last
-                )
-            ]  # fmt: skip
+            qget, iget = quiet.get, input_due.get
+            waiting = False  # a rule on inputs alone is to run now
             for rid in self._waiting:  # a waiting rule keeps its wake-up
-                wake = input_due.get(rid)
-                if rid in opened or wake is None:
+                wake = iget(rid)
+                if wake is None or wake <= now or rid in opened:
+                    waiting = True
                     continue
-                if now < wake < FOREVER and (due is None or wake < due):
+                if wake < FOREVER and (due is None or wake < due):
                     due = wake
+            if arm_due or waiting:
+                aget = arm_due.get
+                plans = [
+                    p for rid, waits, p in self._keyed
+                    if rid in opened or aget(rid, FOREVER) <= now or not (
+                        iget(rid, now) > now if waits else qget(rid, -1) >= last
+                    )
+                ]  # fmt: skip
+            else:  # the usual case: only rules on the output can be due
+                output = self._keyed_output
+                plans = [p for rid, p in output if rid in opened or qget(rid, -1) < last]
         for rule, spec, plan_stage, check, _, rid, waits in plans:
             if plan_stage != stage:
                 stage = plan_stage
                 if changed:  # an earlier stage opened or closed alarms
-                    opened = book.open_rules(bed_id)
-                    suppressor = book.suppressor(bed_id)
+                    opened, suppressor = book.open_and_suppressor(bed_id)
                     changed = False
             if disabled and rid in disabled:
                 if rid in opened:

@@ -455,6 +455,11 @@ class AlarmBook:
         self.settle()
         return None, {k: getattr(self, k) for k in AlarmBook.__slots__}
 
+    def is_open(self, bed: str, rule_id: str) -> bool:
+        """Whether the rule has a current alarm on the bed (cheaper than open_rules)."""
+        slot = self._slots.get((bed, rule_id))
+        return slot is not None and slot.record is not None
+
     def open_rules(self, bed: str) -> dict[str, OpenRule]:
         """Rule id -> (state, activation or onset time, when its condition went away or
         None while present) of the bed's current alarms: the cheap question the
@@ -466,6 +471,23 @@ class AlarmBook:
                 at = r.activated_at if r.activated_at is not None else r.onset
                 out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
         return out
+
+    def open_and_suppressor(self, bed: str) -> tuple[dict[str, OpenRule], str | None]:
+        """open_rules(bed) and suppressor(bed) in one pass (asked at every evaluation)."""
+        out: dict[str, OpenRule] = {}
+        found: tuple[float, str] | None = None
+        for s in self._by_bed.get(bed, {}).values():
+            r = s.record
+            if r is not None:
+                at = r.activated_at if r.activated_at is not None else r.onset
+                out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
+                if (
+                    r.spec.kind is Kind.TECHNICAL
+                    and r.state in _ANNUNCIATED
+                    and (found is None or (r.onset, r.alarm_id) < found)
+                ):
+                    found = (r.onset, r.alarm_id)
+        return out, found[1] if found else None
 
     def suppressor(self, bed: str) -> str | None:
         """The alarm id that suppresses `bed`'s low-output alarms: its earliest
