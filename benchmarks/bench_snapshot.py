@@ -42,6 +42,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from benchmarks import table
 from daemon.engine import snapshot
 from daemon.engine.engine import Engine
 from daemon.engine.timefmt import iso
@@ -276,6 +277,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = ap.parse_args(sys.argv[1:] if argv is None else argv)
     print("Restart from a snapshot, and memory per bed (issue 18)")
     result = rows(args.beds, tuple(args.days), verbose=True)
+    for r in result:
+        table.add(table.Row(*r))
     width = max(len(r[0]) for r in result)
     for name, measured, baseline, ratio, goal, met in result:
         verdict = "" if met is None else ("met" if met else "NOT met")

@@ -19,6 +19,7 @@ from benchmarks import (
     bench_replay,
     bench_review,
     bench_service,
+    bench_snapshot,
     bench_takeover,
     table,
 )
@@ -37,6 +38,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rc = bench_review.main([]) or rc
     print()
     rc = bench_service.main([]) or rc
+    print()
+    rc = bench_snapshot.main([]) or rc
     print()
     rc = bench_fuzz.main([]) or rc
     print()
