@@ -8,6 +8,7 @@ the summaries are not checked against any clinical threshold here.
 
 from __future__ import annotations
 
+import threading
 import time
 from collections import Counter
 from pathlib import Path
@@ -251,6 +252,33 @@ def test_an_open_technical_alarm_is_not_raised_again_after_a_restart(tmp_path, s
         raised = [ev for ev in j.events_between(None, None) if ev.kind == "notify_alarm"]
     assert len(raised) == 1
     assert len(servers.mail.mails) == 2  # the alarm and one technical alarm page, no more
+
+
+def test_a_failing_channel_is_raised_once_however_many_threads_find_it_due(tmp_path, servers):
+    """The dispatcher and a channel's sender both check the failure bound; eight checks at
+    once journal one technical alarm, not one each."""
+    path = fresh_journal(tmp_path)
+    n = notifier(path, config(servers.mail.port, servers.hook.url, servers.mllp.port))
+    try:
+        st = n.states["alert-mgr"]
+        with n.lock:  # past the bound of 2 failed attempts
+            st.failures, st.failing_since = 3, time.time() - 60
+        gate = threading.Barrier(8)
+
+        def check() -> None:
+            gate.wait()
+            n.check_channels()
+
+        threads = [threading.Thread(target=check) for _ in range(8)]
+        for th in threads:
+            th.start()
+        for th in threads:
+            th.join(10)
+    finally:
+        n.stop()
+    with SqliteJournal(path) as j:
+        raised = [ev for ev in j.events_between(None, None) if ev.kind == "notify_alarm"]
+    assert len(raised) == 1, [ev.alarm_id for ev in raised]
 
 
 def test_an_acknowledged_alarm_cancels_its_pages_still_waiting(tmp_path, servers):

@@ -108,6 +108,7 @@ class Notifier:
         self.counts: Counter[tuple[str, str]] = Counter()  # (channel, outcome)
         self.latency = Histogram(DELIVERY_BUCKETS)  # event time to confirmation
         self.lock = threading.Lock()  # states, counts, latency
+        self._alarm_lock = threading.Lock()  # raising or resolving a failing-channel alarm
         self._stop = threading.Event()
         self._wake = threading.Event()
         self._channel_wake = {name: threading.Event() for name in self.senders}
@@ -281,22 +282,29 @@ class Notifier:
 
     # --- the failure bound and the failing-channel alarm -------------------------------
     def check_channels(self) -> None:
+        """Raise a failing channel's alarm once. The dispatcher and the channel's own sender
+        both call this: the check, the journaling and the marking are one step under
+        `_alarm_lock` (two threads once both raised it), and a resolve waits for it."""
         now = self.clock()
         for st in self.states.values():
-            with self.lock:
-                since = st.failing_since if st.failing_since is not None else None
-                if st.in_flight_since is not None and st.failures:
-                    since = min(since or now, st.in_flight_since)
-                due = (
-                    st.alarm_id is None
-                    and since is not None
-                    and (
-                        st.failures >= self.cfg.fail_after_attempts
-                        or now - since >= self.cfg.fail_after_s
-                    )
+            with self._alarm_lock:
+                self._check_channel(st, now)
+
+    def _check_channel(self, st: ChannelState, now: float) -> None:
+        with self.lock:
+            since = st.failing_since if st.failing_since is not None else None
+            if st.in_flight_since is not None and st.failures:
+                since = min(since or now, st.in_flight_since)
+            due = (
+                st.alarm_id is None
+                and since is not None
+                and (
+                    st.failures >= self.cfg.fail_after_attempts
+                    or now - since >= self.cfg.fail_after_s
                 )
-            if due:
-                self._raise(st, now)
+            )
+        if due:
+            self._raise(st, now)
 
     def _raise(self, st: ChannelState, now: float) -> None:
         roles = sorted({r.role for r in self.cfg.routes if r.channel == st.name}
@@ -326,6 +334,10 @@ class Notifier:
                       "retained status show the failure")  # fmt: skip
 
     def _resolve(self, st: ChannelState, now: float, reason: str) -> None:
+        with self._alarm_lock:  # an alarm being raised is journaled before it resolves
+            self._resolve_raised(st, now, reason)
+
+    def _resolve_raised(self, st: ChannelState, now: float, reason: str) -> None:
         with self.lock:
             alarm_id, st.alarm_id, st.alarm_since = st.alarm_id, None, None
         if alarm_id is None:
