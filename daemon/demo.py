@@ -369,7 +369,8 @@ def _summary(console: Console, tally: Tally, journal: Path, work: Path) -> None:
         f"{num(bed_days / max(tally.beds, 1) * 24, 1)} h)"
     )
     console.print(
-        f"  acknowledged by the demo nurse: {tally.acks}; advice messages: {tally.advice}"
+        f"  acknowledgements sent by the demo nurse: {tally.acks} (the engine took "
+        f"{tally.events.get('acknowledged', 0)}); advice messages: {tally.advice}"
     )
     console.print(f"  journal: {journal}   (service log: {work / 'service.log'})")
     console.print("  review it:")
