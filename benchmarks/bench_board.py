@@ -30,7 +30,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion, MQTTProtocolVersion
 
-from benchmarks.bench_service import stream
+from benchmarks.bench_service import publish_paced, stream
 from benchmarks.table import Row, add
 from daemon.config import ServiceConfig
 from daemon.local_broker import Mosquitto, mosquitto_binary
@@ -140,14 +140,7 @@ def run(b: Mosquitto, tmp: Path, seconds: float) -> None:
 
     def background() -> None:
         bg = client(b, "bench-board-bg")
-        t0 = time.perf_counter()
-        while not stop.is_set() and sent[0] < len(msgs):
-            due = int((time.perf_counter() - t0) * RATE)
-            while sent[0] < min(due, len(msgs)):
-                topic, payload = msgs[sent[0]]
-                bg.publish(topic, payload, qos=1)
-                sent[0] += 1
-            time.sleep(0.005)
+        publish_paced(bg, msgs, RATE, stop, sent)
         bg.loop_stop()
         bg.disconnect()
 

@@ -65,6 +65,20 @@ def stream(device: str, start: float, hours: float, ml_h: float) -> list[tuple[s
     return [(topic, json.dumps(p).encode()) for _, topic, p in sim.records]
 
 
+def publish_paced(c: mqtt.Client, msgs: Sequence[tuple[str, bytes]], rate: float,
+                  stop: threading.Event, sent: list[int]) -> None:  # fmt: skip
+    """Publish `msgs` at `rate` a second (QoS 1) until all are out or `stop` is set;
+    `sent[0]` counts them, for the caller's measured rate."""
+    t0 = time.perf_counter()
+    while not stop.is_set() and sent[0] < len(msgs):
+        due = int((time.perf_counter() - t0) * rate)
+        while sent[0] < min(due, len(msgs)):
+            topic, payload = msgs[sent[0]]
+            c.publish(topic, payload, qos=1)
+            sent[0] += 1
+        time.sleep(0.005)
+
+
 def client(b: Mosquitto, cid: str) -> mqtt.Client:
     c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=cid, protocol=MQTTProtocolVersion.MQTTv5)
     c.max_inflight_messages_set(1000)
@@ -220,14 +234,7 @@ def bench_latency(b: Mosquitto, tmp: Path, trials: int, seconds_bg_meters: int =
     sent = [0]
 
     def background() -> None:
-        t0 = time.perf_counter()
-        while not stop.is_set() and sent[0] < len(bg_msgs):
-            due = int((time.perf_counter() - t0) * BACKGROUND_RATE)
-            while sent[0] < min(due, len(bg_msgs)):
-                topic, payload = bg_msgs[sent[0]]
-                bg_pub.publish(topic, payload, qos=1)
-                sent[0] += 1
-            time.sleep(0.005)
+        publish_paced(bg_pub, bg_msgs, BACKGROUND_RATE, stop, sent)
 
     bg = threading.Thread(target=background, daemon=True)
     now = time.time()
@@ -321,10 +328,10 @@ def bench_recovery(b: Mosquitto, tmp: Path, beds: int, hours: float) -> None:
     build_s = time.perf_counter() - t
     size = sum(p.stat().st_size for p in (path, path.with_name(path.name + "-wal")) if p.exists())
     t = time.perf_counter()
-    rows = 0
+    read = 0
     with SqliteJournal(path) as j:
         for _ in j.messages_between(start - 3600, None):
-            rows += 1
+            read += 1
     read_s = time.perf_counter() - t
     # first start: the journal holds no snapshot, so the whole window is re-fed; its clean
     # stop journals one, and the second start restores it and feeds only the tail
@@ -341,7 +348,7 @@ def bench_recovery(b: Mosquitto, tmp: Path, beds: int, hours: float) -> None:
         runs.append((rec, up_s, n_beds))
     print(f"(c) restart recovery: {beds} beds x {hours:g} h, {n:,} readings in the journal "
           f"({size / 1e6:.0f} MB, built in {build_s:.0f} s)")  # fmt: skip
-    print(f"    plain read of the journal rows          {read_s:6.2f} s  ({rows:,} rows)")
+    print(f"    plain read of the journal rows          {read_s:6.2f} s  ({read:,} rows)")
     (full, full_up, n_beds), (fast, fast_up, _) = runs
     print(f"    recovery without a snapshot (re-feed)   {full.seconds:6.2f} s  "
           f"({full.messages:,} messages, {n_beds} beds); start until connected {full_up:.2f} s")
