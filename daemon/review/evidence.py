@@ -15,7 +15,7 @@ import numpy as np
 
 from ..engine import rules as r
 from ..engine.bedstate import BedState
-from ..engine.numbers import half_up, num
+from ..engine.numbers import half_up, ml, num, pct
 from ..engine.series import ESTIMATED, MEASURED, UNKNOWN
 from ..engine.timefmt import iso
 from ..engine.windows import (
@@ -268,3 +268,24 @@ def compare(facts: list[WindowFact], evidence: dict[str, Any]) -> list[dict[str,
             {"evidence_key": f.key, "event": theirs, "recomputed": ours, "equal": theirs == ours}
         )
     return out
+
+
+def threshold_words(t: dict[str, Any]) -> str:
+    """What a window is held against, in words (explain's text and the board's bed page)."""
+    parts = []
+    if "rate_ml_kg_h" in t:
+        parts.append(f"{t['comparator']} {num(t['rate_ml_kg_h'], 2)} mL/kg/h at "
+                     f"{num(t['weight_kg'], 1)} kg")  # fmt: skip
+        if "volume_ml" in t:
+            parts.append(f"(= {num(t['volume_ml'], 1)} mL)")
+    elif "intake_share" in t:
+        parts.append(f"intake {ml(t['intake_ml'])}; alarm when intake {t['comparator']} "
+                     f"{pct(t['intake_share'])} of output (output >= "
+                     f"{ml(t['min_output_ml'])})")  # fmt: skip
+    elif "volume_ml" in t:
+        parts.append(f"{t['comparator']} {ml(t['volume_ml'])}")
+    if "minutes_at_least" in t:
+        parts.append(f"for at least {t['minutes_at_least']} min")
+    if "coverage_at_least" in t:
+        parts.append(f"with at least {pct(t['coverage_at_least'])} measured")
+    return " ".join(parts)

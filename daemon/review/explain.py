@@ -30,7 +30,7 @@ from ..engine.timefmt import iso
 from ..errors import UserError
 from ..journal_api import JournalTarget
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
-from .evidence import WindowFact, compare, residual_drains, windows_at
+from .evidence import WindowFact, compare, residual_drains, threshold_words, windows_at
 from .recorder import CODE, OUTCOMES, Recorder, effective_time, run, warn_about
 
 ALARM_ID = re.compile(r"^([^/]+)/([a-z0-9][a-z0-9-]*)/(\d{8}T\d{6}Z)(\.\d+)?$")
@@ -470,26 +470,6 @@ def _when(text: str | None) -> str:
     return "-" if text is None else text[:19].replace("T", " ")
 
 
-def _thr(t: dict[str, Any]) -> str:
-    parts = []
-    if "rate_ml_kg_h" in t:
-        parts.append(f"{t['comparator']} {t['rate_ml_kg_h']:g} mL/kg/h at {t['weight_kg']:g} kg")
-        if "volume_ml" in t:
-            parts.append(f"(= {t['volume_ml']:g} mL)")
-    elif "intake_share" in t:
-        parts.append(
-            f"intake {t['intake_ml']:g} mL; alarm when intake {t['comparator']} "
-            f"{pct(t['intake_share'])} of output (output >= {t['min_output_ml']:g} mL)"
-        )
-    elif "volume_ml" in t:
-        parts.append(f"{t['comparator']} {t['volume_ml']:g} mL")
-    if "minutes_at_least" in t:
-        parts.append(f"for >= {t['minutes_at_least']} min")
-    if "coverage_at_least" in t:
-        parts.append(f"and >= {pct(t['coverage_at_least'])} measured")
-    return " ".join(parts)
-
-
 def text(d: dict[str, Any]) -> list[str]:
     """The explanation as plain lines."""
     rule = d["rule"]
@@ -528,7 +508,7 @@ def text(d: dict[str, Any]) -> list[str]:
                 f"(coverage {w['coverage']:.1%}), estimated {w['estimated_min']}, "
                 f"unknown {w['unknown_min']}"
             )
-            lines.append(f"  {'':<22} threshold {_thr(w['threshold'])}: {mark} its part")
+            lines.append(f"  {'':<22} threshold {threshold_words(w['threshold'])}: {mark} its part")
             if w.get("residual_ml"):
                 lines.append(
                     f"  {'':<22} residual drained: {num(w['residual_ml'])} mL inside, left out "

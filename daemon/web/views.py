@@ -24,7 +24,7 @@ from ..engine.engine import Engine
 from ..engine.lifecycle import AlarmView
 from ..engine.numbers import ml, num, pct, span
 from ..engine.windows import COVERED_FRACTION, Window, measure
-from ..review.evidence import WindowFact, residual_drains, windows_at
+from ..review.evidence import WindowFact, residual_drains, threshold_words, windows_at
 
 PRIORITY_WORDS = {Priority.HIGH: "high", Priority.MEDIUM: "medium", Priority.LOW: "low",
                   Priority.INFO: "info"}  # fmt: skip
@@ -428,26 +428,6 @@ class FactLine:
     minutes: str
     line: str
     meets: bool
-
-
-def threshold_words(t: dict[str, Any]) -> str:
-    """What a window is held against, in words."""
-    parts = []
-    if "rate_ml_kg_h" in t:
-        parts.append(f"{t['comparator']} {num(t['rate_ml_kg_h'], 2)} mL/kg/h at "
-                     f"{num(t['weight_kg'], 1)} kg")  # fmt: skip
-        if "volume_ml" in t:
-            parts.append(f"(= {num(t['volume_ml'], 1)} mL)")
-    elif "intake_share" in t:
-        parts.append(f"intake {ml(t['intake_ml'])}; alarm when intake {t['comparator']} "
-                     f"{pct(t['intake_share'])} of output")  # fmt: skip
-    elif "volume_ml" in t:
-        parts.append(f"{t['comparator']} {ml(t['volume_ml'])}")
-    if "minutes_at_least" in t:
-        parts.append(f"for at least {t['minutes_at_least']} min")
-    if "coverage_at_least" in t:
-        parts.append(f"with at least {pct(t['coverage_at_least'])} measured")
-    return " ".join(parts)
 
 
 def fact_line(f: WindowFact, w: Words) -> FactLine:
