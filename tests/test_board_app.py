@@ -297,3 +297,28 @@ def test_every_advice_the_engine_issues_fits_its_message_model(ward):
     for e in advice:
         msg = AdviceMessage.model_validate(e.body)
         assert msg.kind == e.body["kind"] and msg.pager == e.body["pager"]
+
+
+def test_a_latched_alarm_whose_condition_ended_says_so_until_acknowledged() -> None:
+    """A latched alarm stays on the card after its condition ends (DESIGN §5); the card
+    must not read as if the criterion still held. Invented alarm, no clinical values."""
+    from zoneinfo import ZoneInfo
+
+    from daemon.engine.alarms import Kind, Priority
+    from daemon.engine.lifecycle import AlarmView
+    from daemon.web.views import Words, alarm_line
+
+    t = datetime(2026, 3, 14, 19, 0, tzinfo=UTC).timestamp()  # invented
+
+    def view(state: State, present: bool) -> AlarmView:
+        return AlarmView(
+            "b01/pod-hourly/20260314T190000Z", "b01", "icu-east", "pod-hourly", "invented",
+            Priority.MEDIUM, Kind.PHYSIOLOGICAL, state, 1, t, t, present, None, None, None,
+            None, "invented summary", {},
+        )  # fmt: skip
+
+    words = Words(ZoneInfo("UTC"))
+    ended = alarm_line(view(State.ESCALATED, False), t + 3600, words)
+    assert ended.latched_text == "condition no longer met; stays until acknowledged"
+    assert alarm_line(view(State.ESCALATED, True), t + 3600, words).latched_text == ""
+    assert alarm_line(view(State.ACKNOWLEDGED, False), t + 3600, words).latched_text == ""

@@ -201,6 +201,7 @@ class AlarmLine:
     ackable: bool
     ack_text: str
     suppressed_text: str
+    latched_text: str  # a latched alarm whose condition has ended, waiting for its ack
     technical: bool
 
 
@@ -218,6 +219,8 @@ def alarm_line(a: AlarmView, now: float, w: Words) -> AlarmLine:
         suppressed_text=(f"held back while {a.suppressed_by.split('/')[1]} is open"
                          if a.suppressed_by and a.suppressed_by.count("/") >= 2
                          else f"held back by {a.suppressed_by}" if a.suppressed_by else ""),
+        latched_text=("condition no longer met; stays until acknowledged"
+                      if a.state in ACKABLE and not a.condition_present else ""),
         technical=a.kind is Kind.TECHNICAL,
     )  # fmt: skip
 
