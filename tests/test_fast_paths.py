@@ -122,3 +122,22 @@ def test_a_random_ward_replays_as_checking_every_rule_every_minute(
         return Engine(list(PROFILES.values()), load_rules(), load_policy())
 
     assert _replayed(log, make()) == _replayed(log, _no_shortcut(make()))
+
+
+# --- a ward of the benchmark's kind, to the byte ------------------------------------------
+# sha256 of `hourwatch replay LOG --json --rejects` and `--json --hourly` on the random
+# ward below (10 beds, 27 h: windows past 24 h, oliguria and high output, redeliveries,
+# reorders, bag changes), as main at 27ba89a's engine gave them. As above, a speed change
+# never updates these.
+BENCH_WARD = ("565483e27a12adb0cb24c211aff90aec083388693ed3cd8d212949134b8dc2d1",
+              "afc52b5c0673e171bccc16b03a62d91ec65b69cb712bbc58fce73991b59ac379")  # fmt: skip
+
+
+def test_a_ward_of_the_benchmarks_kind_replays_as_before_the_speed_work(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    log = tmp_path / "ward.jsonl"
+    write_log(log, _ward(10, 27.0, 7, 45.0, 4))
+    events = _digest(capsys, "replay", str(log), "--json", "--rejects")
+    hourly = _digest(capsys, "replay", str(log), "--json", "--hourly")
+    assert (events, hourly) == BENCH_WARD
