@@ -911,8 +911,12 @@ class Engine:
 
     def _holding(self, bed_id: str, now: float) -> tuple[str, ...]:
         """The rules bringing advice whose criterion holds on the bed at `now`."""
-        if not any(self.book.is_open(bed_id, rid) for rid in self._advice_sources):
-            return ()  # the usual case, asked at every evaluation
+        is_open = self.book.is_open
+        for rid in self._advice_sources:  # a loop, not any(...): asked at every evaluation
+            if is_open(bed_id, rid):
+                break
+        else:
+            return ()  # the usual case
         opened = self.book.open_rules(bed_id)
         hold = self.advice_policy.criterion_end_hold_s
         return tuple(

@@ -90,6 +90,7 @@ class Evaluator:
         # the rules whose quiet proofs make the floor (the others cannot be met by a reading)
         self._on_output = [p.rule_id for p in self.plans if not p.blind and not p.rule.while_active]
         self._waiting = [p.rule_id for p in self.plans if p.waits]
+        self._waiting_set = frozenset(self._waiting)
         # (rule id, waits, plan): the shortcut's filter reads these at every reading
         self._keyed = [(p.rule_id, p.waits, p) for p in self.plans]
         self._keyed_output = [(p.rule_id, p) for p in self.plans if not p.waits]
@@ -129,13 +130,22 @@ class Evaluator:
             last = end if end is not None else FOREVER
             qget, iget = quiet.get, input_due.get
             waiting = False  # a rule on inputs alone is to run now
-            for rid in self._waiting:  # a waiting rule keeps its wake-up
-                wake = iget(rid)
-                if wake is None or wake <= now or rid in opened:
-                    waiting = True
-                    continue
-                if wake < FOREVER and (due is None or wake < due):
-                    due = wake
+            first = min(input_due.values(), default=now)
+            if (
+                first > now
+                and input_due.keys() == self._waiting_set
+                and opened.keys().isdisjoint(self._waiting_set)
+            ):  # the usual case: every one waits, for the first wake-up to come
+                if first < FOREVER:
+                    due = first
+            else:
+                for rid in self._waiting:  # a waiting rule keeps its wake-up
+                    wake = iget(rid)
+                    if wake is None or wake <= now or rid in opened:
+                        waiting = True
+                        continue
+                    if wake < FOREVER and (due is None or wake < due):
+                        due = wake
             if arm_due or waiting:
                 aget = arm_due.get
                 plans = [

@@ -192,12 +192,16 @@ class MinuteSeries:
             return
         if n - d <= 16:  # the usual case, a few recent minutes: plain Python is cheaper
             cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
+            vol, state = self._vol, self._state
             v, m, e = cv[d], cm[d], ce[d]
-            for i, (x, st) in enumerate(zip(self._vol[d:n], self._state[d:n], strict=True), d + 1):
-                v += x
-                m += st == MEASURED
-                e += st == ESTIMATED
-                cv[i], cm[i], ce[i] = v, m, e
+            for i in range(d, n):  # indexed: slicing the arrays would copy them
+                v += vol[i]
+                st = state[i]
+                if st == MEASURED:
+                    m += 1
+                elif st == ESTIMATED:
+                    e += 1
+                cv[i + 1], cm[i + 1], ce[i + 1] = v, m, e
             self._dirty = n
             return
         # Summed left to right from the previous prefix, exactly as the loop above,

@@ -92,16 +92,15 @@ def measure(series: MinuteSeries, end_minute: int, length_min: int, residual: Sp
     """The window's sums; volume drained in the `residual` minute ranges [lo, hi) (the
     bladder's retained content after relief) is left out of the volume and reported."""
     lo, hi = window_bounds(end_minute, length_min)
-    s = series.sums(lo, hi)
+    vol, meas, est = series.sums(lo, hi)
     if not residual:
-        return Window(end_minute, length_min, s.volume_ml, s.measured_min, s.estimated_min)
+        return Window(end_minute, length_min, vol, meas, est)
     held = 0.0
     for a, b in residual:
         a, b = max(a, lo), min(b, hi)
         if a < b:
             held += series.sums(a, b).volume_ml
-    return Window(end_minute, length_min, max(0.0, s.volume_ml - held), s.measured_min,
-                  s.estimated_min, held)  # fmt: skip
+    return Window(end_minute, length_min, max(0.0, vol - held), meas, est, held)
 
 
 def hours_ending(
