@@ -192,11 +192,11 @@ class MinuteSeries:
             return
         if n - d <= 16:  # the usual case, a few recent minutes: plain Python is cheaper
             cv, cm, ce = self._cum_vol, self._cum_meas, self._cum_est
-            vol, state = self._vol, self._state
+            minute_vol, minute_state = self._vol, self._state
             v, m, e = cv[d], cm[d], ce[d]
             for i in range(d, n):  # indexed: slicing the arrays would copy them
-                v += vol[i]
-                st = state[i]
+                v += minute_vol[i]
+                st = minute_state[i]
                 if st == MEASURED:
                     m += 1
                 elif st == ESTIMATED:
