@@ -810,3 +810,31 @@ def test_review_shows_readings_taken_back_as_artefacts() -> None:
     assert "bag_change" not in codes
     assert [str(o) for _, o in rec.traces[10:12]] == ["artefact_dropped"] * 2
     assert codes.count("accepted") == 18
+
+
+@pytest.mark.parametrize("name", CUMULATIVE)
+def test_a_late_reading_while_a_return_to_the_level_waits_changes_nothing(name: str) -> None:
+    """Two zero readings (taken as an emptying, still undoable), then the meter back on
+    its level (held: the emptying may never have happened), then a reading delayed from
+    before the second zero. The late one is refused, not the emptying's undo: the next
+    reading on the level takes the emptying back and the bag's volume stays what the
+    patient made. (Before, the late reading made the emptying final and the next one
+    raised an AssertionError in the cleaner.) Invented glitch on an invented flow."""
+    m = Meter(PROFILES[name])
+    p = period(name)
+    truth = _glitch_stream(name, m, {10: 0.0, 11: 0.0}, 13)  # 12: back on the level
+    late_t, late_v = T0 + 11 * p - 1, truth[11][1]
+    assert m.send(late_t, late_v, recv=T0 + 12 * p + 2) == [
+        RejectedInput(T0 + 12 * p + 2, m.payload(late_t, late_v, seq=999)[0], m.device,
+                      Outcome.LATE, "older than the reorder tolerance")
+    ]  # fmt: skip
+    step = per_reading(name, GLITCH_FLOW_ML_H)
+    for i in range(13, 20):  # the meter goes on from its level
+        m.send(T0 + i * p, 400.0 + i * step)
+    out = m.outcomes()
+    assert "bag_change" not in out and "bag_change_inferred" not in out
+    assert "spike_confirmed" not in out
+    assert out.get("late") == 1 and out.get("artefact_dropped") == 2
+    assert m.total() == pytest.approx(
+        19 * step, abs=2 * grams_rounding(name) + 1e-6
+    )  # what the patient made from the first reading to the last

@@ -56,18 +56,24 @@ def isotonic_fit(values: list[float], floor: float) -> list[float]:
 
     Clipping the unconstrained fit is the exact solution with a lower bound.
     """
+    # The block being built is kept in locals (s, c) and pushed once it stops pooling:
+    # the same comparisons and additions as pooling it on the stack, in the same order
+    # (ps * c > s * pc, then ps + s), so every fit is the same to the last bit.
     sums: list[float] = []
     counts: list[int] = []
     for v in values:
-        sums.append(v)
-        counts.append(1)
-        while len(sums) > 1 and sums[-2] * counts[-1] > sums[-1] * counts[-2]:
-            s, c = sums.pop(), counts.pop()
-            sums[-1] += s
-            counts[-1] += c
+        s, c = v, 1
+        while sums and sums[-1] * c > s * counts[-1]:
+            s = sums.pop() + s
+            c = counts.pop() + c
+        sums.append(s)
+        counts.append(c)
     out: list[float] = []
     for s, c in zip(sums, counts, strict=True):
-        out.extend([max(floor, s / c)] * c)
+        if c == 1:
+            out.append(max(floor, s))
+        else:
+            out.extend([max(floor, s / c)] * c)
     return out
 
 
@@ -138,6 +144,12 @@ class CumulativeCleaner:
         last_t = self.last_t
         assert last_t is not None
         if t < last_t:
+            held = self.held
+            if held is not None and held[2] == RETURN:
+                # a reading back on the level before a jump or fall waits for the next
+                # one to say the jump or fall never happened: it must stay undoable,
+                # which matters more than a reading that predates it
+                return [Outcome.LATE]
             self.provisional = None  # the tail changes under it: keep what is known
             return [self._insert(t, r)]
         held = self.held
