@@ -264,7 +264,7 @@ def renamed_field(doc: dict[str, Any]) -> None:
     layout hash recomputed, so only the class check can tell)."""
     for entry in doc["classes"]:
         if entry[0] == "daemon.engine.series:MinuteSeries":
-            entry[1] = [f if f != "_vol" else "_volume" for f in entry[1]]
+            entry[1] = [f if f != "_vol_nl" else "_volume" for f in entry[1]]
     doc["layout"] = snapshot._digest([doc["classes"], sorted(doc["extra"].items())])
 
 

@@ -7,21 +7,24 @@ else derives window edges.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 from .numbers import half_up
-from .series import MinuteSeries
+from .series import NL_PER_ML, MinuteSeries, nanolitres
 from .timefmt import iso
 
 COVERED_FRACTION = 0.9  # a window is covered when >= 90% of its minutes are measured
+_TENTH_NL = NL_PER_ML // 10
+_HALF_TENTH_NL = _TENTH_NL // 2
 
 
 def tenths(ml: float) -> int:
     """A volume in whole tenths of a millilitre (half up). Volumes are compared with
     thresholds at this resolution (DESIGN §3), so float noise in a rolling sum can never
-    turn "equal to the threshold" into "above it"."""
-    return math.floor(ml * 10.0 + 0.5)
+    turn "equal to the threshold" into "above it". Decided on the volume in whole
+    nanolitres, as the series counts it: 200.05 mL is 2001 tenths, however the float
+    that carries it happens to round."""
+    return (nanolitres(ml) + _HALF_TENTH_NL) // _TENTH_NL
 
 
 def above(ml: float, threshold: float, strictly: bool = True) -> bool:
