@@ -1,5 +1,6 @@
 """Intake's fast paths (issue 18) give what the checked paths give, to the last bit: the
-decoder's plain path for a family's usual message.
+decoder's plain path for a family's usual message, and replay's log reader, which reads the
+usual line without building a record.
 
 A fast path may only be faster: every generated input here, well formed or not, must
 come out of it exactly as it comes out of the checked path (same reading, or the same
@@ -11,7 +12,11 @@ ALL DATA HERE IS INVENTED (generated payloads, made-up meters and times).
 
 from __future__ import annotations
 
+import json
 import math
+import tempfile
+from collections.abc import Iterable
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -20,6 +25,7 @@ from hypothesis import strategies as st
 
 from daemon.engine import decode as decode_module
 from daemon.engine.decode import Decoder
+from daemon.logfile import BadLine, Message, _plain, as_messages, read_log, read_messages
 from tests.conftest import PROFILES
 
 DEVICE = "rc-0101"  # invented
@@ -165,3 +171,129 @@ def test_long_times_are_not_remembered() -> None:
     p = {"device_id": DEVICE, "time": long, "volume_ml": 1.0}
     assert repr(dec.decode(DEVICE, p)) == repr(_checked("reference-cumulative").decode(DEVICE, p))
     assert dec._times == {}
+
+
+# --- the log reader: replay's messages against the model's records -----------------------
+def _both(raw: bytes) -> tuple[list[str], list[str]]:
+    """What read_messages and read_log (as messages) make of a log holding `raw`."""
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "log.jsonl"
+        path.write_bytes(raw)
+        return _shown(read_messages(path)), _shown(as_messages(read_log(path)))
+
+
+def _shown(items: Iterable[Message | BadLine]) -> list[str]:
+    # repr: the time's float to the last bit, 1 and 1.0 apart, the payload's key order
+    return [repr(item) if isinstance(item, BadLine) else repr((*item, type(item[3])))
+            for item in items]  # fmt: skip
+
+
+_DIGITS = st.text("0123456789", min_size=1, max_size=30)
+_json_numbers = st.one_of(
+    st.integers(), st.integers(-(2**80), 2**80), st.floats(allow_nan=False, allow_infinity=False),
+    st.builds(lambda a, b, e: f"{a}.{b}e{e}", _DIGITS, _DIGITS, st.integers(-400, 400)),
+    st.sampled_from(["-0", "-0.0", "1E2", "1e400", "-1e400", "NaN", "Infinity", "4.9e-324",
+                     "18446744073709551616", "-9223372036854775809", "01", "1.", ".5"]),
+)  # fmt: skip
+
+
+def _num(x: Any) -> str:
+    return x if isinstance(x, str) else json.dumps(x)
+
+
+_json_values = st.recursive(
+    st.one_of(st.none().map(json.dumps), st.booleans().map(json.dumps), _json_numbers.map(_num),
+              st.text(max_size=10).map(json.dumps)),
+    lambda inner: st.one_of(
+        st.lists(inner, max_size=3).map(lambda xs: "[" + ",".join(xs) + "]"),
+        st.lists(st.tuples(st.text(max_size=4), inner), max_size=3).map(
+            lambda kv: "{" + ",".join(f"{json.dumps(k)}:{v}" for k, v in kv) + "}"),
+    ),
+    max_leaves=8,
+)  # fmt: skip
+_fixed_form = "{:04d}-{:02d}-{:02d}T{:02d}:{:02d}:{:02d}{}Z".format
+_log_times = st.one_of(
+    st.builds(  # the form the plain path reads, a real date and time (usually)
+        _fixed_form, st.integers(1, 9999), st.integers(1, 12), st.integers(1, 28),
+        st.integers(0, 23), st.integers(0, 59), st.integers(0, 59),
+        st.one_of(st.just(""), st.text("0123456789", min_size=1, max_size=6).map(".{}".format)),
+    ),
+    st.builds(  # the same form, any digits in it
+        _fixed_form, st.integers(0, 9999), st.integers(0, 13), st.integers(0, 32),
+        st.integers(0, 25), st.integers(0, 60), st.integers(0, 61),
+        st.one_of(st.just(""), st.text("0123456789", max_size=8).map(".{}".format)),
+    ),
+    st.sampled_from(["2026-03-14T02:00:00.123+00:00", "2026-03-14T02:00:00", "2026-03-14",
+                     "2026-03-14 02:00:00Z", "2026-03-14t02:00:00z", "2026-03-14T02:00:00,5Z",
+                     "2026-03-14T02:00Z", "20260314T020000Z", "2026-03-14T02:00:00.1234567Z",
+                     "2026-03-14T02:00:00.+1:0Z", "2026-03-14T02:00:00.12Z4Z", "1700000000",
+                     "2026-03-14T02:00:00\u0661Z", "2026-03-14T02:00:00.\u0661Z",
+                     "\uff12\uff10\uff12\uff16-03-14T02:00:00Z", "2026-03-14T02:00:00.5Z",
+                     "2026-03-14T0200:00.5Z", "2026-03-14T02:0000.50Z", "2026-0314T02:00:00.5Z",
+                     "2026-03-14T02:00:00.5ZZ", "2026-03-14T02:00:00.-5Z", "2026-02-29T00:00:00Z",
+                     "2024-02-29T00:00:00Z", "0000-01-01T00:00:00Z", "2026-03-14T24:00:00Z"]),
+    st.text(max_size=28),
+).map(json.dumps)  # fmt: skip
+_topics = st.one_of(
+    st.just("meters/rc-0101/volume"),
+    st.text(max_size=12),
+    st.just("x" * 512),
+    st.just("x" * 513),
+    st.just("é" * 512),
+).map(json.dumps)
+
+
+@st.composite
+def _log_lines(draw: st.DrawFn) -> bytes:
+    fields = [
+        ("time", draw(_log_times)),
+        ("topic", draw(_topics)),
+        ("payload", draw(st.one_of(_json_values, st.text(max_size=8).map(json.dumps)))),
+    ]
+    kind = draw(st.integers(0, 9))
+    if kind == 1:  # a key twice, either value last
+        k = draw(st.integers(0, 2))
+        fields.insert(draw(st.integers(0, 3)), (fields[k][0], draw(_json_values)))
+    elif kind == 2:  # a key missing
+        del fields[draw(st.integers(0, 2))]
+    elif kind == 3:  # an extra key
+        fields.append((draw(st.sampled_from(["extra", "Time", "payload "])), "1"))
+    elif kind == 4:  # a value of another type
+        k = draw(st.integers(0, 2))
+        fields[k] = (fields[k][0], draw(_json_values))
+    text = "{" + ", ".join(f"{json.dumps(k)}: {v}" for k, v in draw(st.permutations(fields))) + "}"
+    if kind == 5:  # not an object
+        text = draw(st.one_of(_json_values, st.just(f"[{text}]")))
+    raw = text.encode()
+    if kind == 6:  # bytes cut, or bytes that are not UTF-8, or a byte-order mark
+        cut = draw(st.integers(0, len(raw)))
+        raw = draw(st.sampled_from([raw[:cut], raw[:cut] + b"\xff" + raw[cut:],
+                                    raw[:cut] + b"\xed\xa0\x80" + raw[cut:], b"\xef\xbb\xbf" + raw,
+                                    raw + b"\x00", raw[:cut] + b"\n" + raw[cut:]]))  # fmt: skip
+    elif kind == 7:
+        raw = draw(st.sampled_from([b"", b"   ", b"\t\r", b" " + raw + b" \r", raw + b"x"]))
+    return raw
+
+
+@settings(max_examples=200)
+@given(lines=st.lists(_log_lines(), min_size=1, max_size=8))
+def test_replay_reads_every_line_as_the_model_does(lines: list[bytes]) -> None:
+    fast, checked = _both(b"\n".join(lines) + b"\n")
+    assert fast == checked
+
+
+@pytest.mark.parametrize("depth", [1, 100, 126, 127, 128, 129, 150, 199, 200, 201, 255, 256, 300])
+def test_deep_payloads_are_read_as_the_model_does(depth: int) -> None:
+    nested = "[" * depth + "]" * depth
+    line = '{"time": "2026-03-14T02:00:00Z", "topic": "t", "payload": {"a": ' + nested + "}}"
+    fast, checked = _both(line.encode())
+    assert fast == checked
+
+
+def test_the_usual_line_takes_the_plain_path() -> None:
+    """So the property above compares two readers, not one reader with itself."""
+    line = (b'{"time": "2026-03-14T02:00:00.250Z", "topic": "meters/rc-0101/volume", '
+            b'"payload": {"volume_ml": 1.5, "seq": 123456789012345678901234567890}}')  # fmt: skip
+    assert _plain(7, line) == (7, 1773453600.25, "meters/rc-0101/volume",
+                            {"volume_ml": 1.5, "seq": 123456789012345678901234567890})  # fmt: skip
+    assert _plain(7, line.replace(b".250Z", b".250+00:00")) is None  # the model reads offsets
