@@ -118,12 +118,10 @@ def _plain(n: int, raw: bytes) -> Message | None:
         return None
     if type(text) is not str:
         return None
-    k = len(text)
+    form, k = text[4:20:3], len(text)  # the separators: "--T::" then "Z", or "." and digits
     if not (
-        (k == 20 or (22 <= k <= 27 and text[19] == "."))
-        and text[-1] == "Z" and text[10] == "T" and text[4] == text[7] == "-"
-        and text[13] == text[16] == ":"
-    ):  # fmt: skip
+        (form == "--T::Z" and k == 20) or (form == "--T::." and 22 <= k <= 27 and text[-1] == "Z")
+    ):
         return None  # any other form of time, offsets included: the model's parser
     try:  # with the form fixed, fromisoformat takes only digits where they must be
         t = datetime.fromisoformat(text).timestamp()

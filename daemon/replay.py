@@ -63,6 +63,7 @@ def drive_messages(
                 on_effects(effects)
 
     next_wakeup, advance, step = engine.next_wakeup, engine.advance, engine.step_at
+    count = 0  # messages stepped, put in the result at the end
     for item in messages:
         if isinstance(item, BadLine):
             result.bad_lines.append(item)
@@ -78,7 +79,8 @@ def drive_messages(
         effects = step(topic, payload, t)
         if effects:
             emit(effects)
-        result.messages += 1
+        count += 1
+    result.messages = count
     if until is not None:
         emit(engine.advance(until))
     return result

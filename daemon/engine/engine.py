@@ -287,7 +287,7 @@ class Engine:
     def step_at(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         """`step` at epoch seconds (replay's clock)."""
         effects = self._step(topic, payload, t_now)
-        return self._finish(effects) if effects else effects
+        return self._finish(effects) if effects else []  # a list of the caller's own
 
     def _step(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         route = self._route_cache.get(topic)
