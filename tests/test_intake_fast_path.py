@@ -16,6 +16,7 @@ import json
 import math
 import tempfile
 from collections.abc import Iterable
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -25,7 +26,11 @@ from hypothesis import strategies as st
 
 from daemon.engine import decode as decode_module
 from daemon.engine.decode import Decoder
+from daemon.engine.engine import Engine
 from daemon.logfile import BadLine, Message, _plain, as_messages, read_log, read_messages
+from daemon.replay import replay_file
+from daemon.rule_files import load_policy, load_rules
+from simulator.meterlog import MeterFaults, context_record, simulate, write_log
 from tests.conftest import PROFILES
 
 DEVICE = "rc-0101"  # invented
@@ -297,3 +302,40 @@ def test_the_usual_line_takes_the_plain_path() -> None:
     assert _plain(7, line) == (7, 1773453600.25, "meters/rc-0101/volume",
                             {"volume_ml": 1.5, "seq": 123456789012345678901234567890})  # fmt: skip
     assert _plain(7, line.replace(b".250Z", b".250+00:00")) is None  # the model reads offsets
+
+
+# --- replay on messages against replay on records ----------------------------------------
+def test_replay_of_messages_gives_what_replay_of_records_gives(tmp_path: Path) -> None:
+    """A simulated ward (invented flows) with bad and unusual lines among its own: every
+    effect, bad line and count alike whether replay builds the records or not."""
+    prof = PROFILES["reference-cumulative"]
+    start = datetime(2026, 3, 14, tzinfo=UTC).timestamp()  # invented
+    records: list[Any] = []
+    for b in range(3):
+        dev = f"rc-{b:03d}"
+        records.append(context_record(start - 60, f"bed-{b}", "ward-r", [dev]))
+        s = simulate(prof, dev, datetime.fromtimestamp(start, UTC), 6.0,
+                     lambda m, b=b: 20.0 + 40 * b + 10 * math.sin(m / 50),
+                     MeterFaults(noise_sd_ml=1.0, duplicate_p=0.05, reorder_p=0.05,
+                                 bag_change_every_s=2 * 3600 + 61 * b), seed=b)  # fmt: skip
+        records += s.records
+    log = tmp_path / "ward.jsonl"
+    write_log(log, records)
+    lines = log.read_bytes().splitlines()
+    odd = [b"", b"not json", b'{"time": "2026-03-14T01:00:00+01:00", "topic": "meters/rc-000/'
+           b'volume", "payload": {"device_id": "rc-000", "time": "2026-03-14T00:00:30Z", '
+           b'"volume_ml": 5, "seq": 99999}}', b'{"time": "2026-03-14T00:00:00Z", "topic": ""}',
+           b'{"time": "2026-03-13T23:00:00Z", "topic": "meters/rc-001/volume", "payload": "x"}']
+    for k, line in enumerate(odd):  # fmt: skip
+        lines.insert(100 + 200 * k, line)
+    log.write_bytes(b"\n".join(lines) + b"\n")
+
+    def replayed(wrap: Any) -> tuple[list[str], list[BadLine], int, int]:
+        engine = Engine(list(PROFILES.values()), load_rules(), load_policy())
+        r = replay_file(log, engine, warn=None, wrap=wrap)
+        shown = [json.dumps(e.to_json()) for e in r.effects if hasattr(e, "to_json")]
+        return shown, r.bad_lines, r.messages, r.clock_went_back
+
+    messages, records_ = replayed(None), replayed(lambda items: items)
+    assert messages == records_
+    assert messages[1] and messages[3]  # bad lines, and a receive time gone back, in both
