@@ -20,8 +20,8 @@ from .engine.outcomes import Outcome
 from .engine.profiles import DeviceProfile
 from .engine.timefmt import iso
 from .journal_api import JournalTarget
-from .logfile import BadLine, LogRecord
-from .sources import open_source
+from .logfile import BadLine, LogRecord, Message, as_messages
+from .sources import open_messages, open_source
 
 Records = Iterator[tuple[int, LogRecord] | BadLine]
 BENCH_WARD = "bench"  # the ward of the temporary beds of --bind
@@ -43,6 +43,16 @@ def drive(
     until: float | None = None,
 ) -> ReplayResult:
     """Feed records in file order; fire wake-ups due before each one."""
+    return drive_messages(engine, as_messages(records), on_effects, until)
+
+
+def drive_messages(
+    engine: Engine,
+    messages: Iterable[Message | BadLine],
+    on_effects: Callable[[list[Effect]], None] | None = None,
+    until: float | None = None,
+) -> ReplayResult:
+    """`drive` for messages (line, receive time, topic, payload)."""
     result = ReplayResult(engine)
     now = float("-inf")
 
@@ -52,13 +62,13 @@ def drive(
             if on_effects:
                 on_effects(effects)
 
-    next_wakeup, advance, step = engine.next_wakeup, engine.advance, engine.step
-    for item in records:
+    next_wakeup, advance, step = engine.next_wakeup, engine.advance, engine.step_at
+    count = 0  # messages stepped, put in the result at the end
+    for item in messages:
         if isinstance(item, BadLine):
             result.bad_lines.append(item)
             continue
-        _, rec = item
-        t = rec.time.timestamp()
+        _, t, topic, payload = item
         if t < now:  # receive times must not go backwards; keep the clock monotone
             result.clock_went_back += 1
             t = now
@@ -66,10 +76,11 @@ def drive(
         if wake is not None and wake <= t:  # most messages come before any wake-up
             emit(advance(t))
         now = t
-        effects = step(rec.topic, rec.payload, t)
+        effects = step(topic, payload, t)
         if effects:
             emit(effects)
-        result.messages += 1
+        count += 1
+    result.messages = count
     if until is not None:
         emit(engine.advance(until))
     return result
@@ -86,8 +97,10 @@ def replay_file(
     """`wrap` sees the records on their way in (adds bench beds, follows lines)."""
     if not isinstance(engine, Engine):
         engine = Engine(engine)
-    records = open_source(path)
-    result = drive(engine, wrap(records) if wrap else records, on_effects, until)
+    if wrap is None:  # nothing needs the records themselves
+        result = drive_messages(engine, open_messages(path), on_effects, until)
+    else:
+        result = drive(engine, wrap(open_source(path)), on_effects, until)
     if warn == "stderr":  # looked up now, so a redirected stderr is honoured
         warn = sys.stderr
     if warn is not None:

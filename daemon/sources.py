@@ -9,7 +9,7 @@ from pathlib import Path
 from .errors import UserError
 from .journal import is_sqlite, journal_items
 from .journal_api import JournalTarget, PgUrl
-from .logfile import BadLine, LogRecord, read_log
+from .logfile import BadLine, LogRecord, Message, as_messages, read_log, read_messages
 
 
 def open_source(path: JournalTarget) -> Iterator[tuple[int, LogRecord] | BadLine]:
@@ -27,6 +27,14 @@ def open_source(path: JournalTarget) -> Iterator[tuple[int, LogRecord] | BadLine
     if is_sqlite(path):
         return journal_items(path)
     return read_log(path)
+
+
+def open_messages(path: JournalTarget) -> Iterator[Message | BadLine]:
+    """open_source's records as messages (line, receive time, topic, payload); a log
+    file's read without building its records."""
+    if isinstance(path, PgUrl) or not path.is_file() or is_sqlite(path):
+        return as_messages(open_source(path))
+    return read_messages(path)
 
 
 def require(source: JournalTarget, what: str = "file") -> JournalTarget:

@@ -174,9 +174,11 @@ def run(args: argparse.Namespace) -> int:
     )
     bench = bench_beds(bound, args.weight, engine.prefix) if bound else None
 
-    def wrap(records: Records) -> Records:
+    def follow(records: Records) -> Records:
         records = bench(records) if bench else records
         return rejects.records(records) if rejects else records
+
+    wrap = follow if bench or rejects else None  # None: replay need not build records
 
     out = sys.stdout
     if args.hourly:

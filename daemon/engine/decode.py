@@ -30,6 +30,9 @@ Payload = bytes | str | dict[str, Any] | list[Any]
 
 _MISSING = object()
 _JSON = json.JSONDecoder().decode  # str only: skips json.loads' encoding sniffing
+_EXACT_INT = 2**53  # ints up to this size survive the checked path's float() unchanged
+TIME_MEMO = 4096  # device times remembered per family (then forgotten all at once)
+TIME_MEMO_LEN = 40  # ... each at most this long: a hostile payload must not fill memory
 
 
 @dataclass(slots=True)  # not frozen: one per message, and frozen init costs 5x
@@ -178,6 +181,10 @@ class Decoder:
         self._semantics = v.semantics
         self._min = profile.limits.min_ml
         self._max = profile.limits.max_ml
+        self._plain = _plain_keys(profile)
+        # device times read by the plain path: the meters of a ward mostly report on the
+        # same minutes, so most of a message's time text was read for another meter
+        self._times: dict[str, float] = {}
 
     def _parse(self, payload: Payload) -> Any | Rejected:
         marked = withheld_reason(payload, DECODE_REJECTIONS)
@@ -265,6 +272,10 @@ class Decoder:
         return head
 
     def decode(self, topic_device: str, payload: Payload) -> Reading | Rejected:
+        if self._plain is not None and type(payload) is dict:
+            reading = self._decode_plain(topic_device, payload, *self._plain)
+            if reading is not None:
+                return reading
         obj = self._parse(payload)
         if isinstance(obj, Rejected):
             obj.device_id = topic_device
@@ -364,6 +375,47 @@ class Decoder:
             flag = flag or (raw_flag is not _MISSING and _truthy(raw_flag))
         return Reading(device_id, device_time, volume_ml, seq, flag, value)
 
+    def _decode_plain(
+        self, device: str, obj: dict[str, Any], device_key: str | None, time_key: str,
+        volume_key: str, seq_key: str | None,
+    ) -> Reading | None:  # fmt: skip
+        """The usual message of a family `_plain_keys` allows, read without the general
+        accessors; None for anything unusual, which `decode`'s checked path then reads
+        again and, if it is bad, says why. The same reading as the checked path."""
+        if device_key is not None:
+            named = obj.get(device_key)
+            if type(named) is not str or named.strip() != device:
+                return None
+        raw_time = obj.get(time_key)
+        if type(raw_time) is not str:
+            return None
+        times = self._times
+        device_time = times.get(raw_time)
+        if device_time is None:
+            try:
+                device_time = parse_iso(raw_time)
+            except TimeError:
+                return None
+            if len(raw_time) <= TIME_MEMO_LEN:
+                if len(times) >= TIME_MEMO:
+                    times.clear()
+                times[raw_time] = device_time
+        raw_volume = obj.get(volume_key)
+        value = raw_volume if type(raw_volume) is float else _number(raw_volume)
+        if value is None or not math.isfinite(value):
+            return None
+        volume_ml = value * self._default_scale
+        if not (self._min <= volume_ml <= self._max):
+            return None
+        seq: int | None = None
+        if seq_key is not None:
+            raw_seq = obj.get(seq_key, _MISSING)
+            if raw_seq is not _MISSING:
+                if type(raw_seq) is not int or not -_EXACT_INT <= raw_seq <= _EXACT_INT:
+                    return None
+                seq = raw_seq
+        return Reading(device, device_time, volume_ml, seq, False, value)
+
     def status_code(self, payload: Payload) -> str | None:
         """The status code a payload carries, as sent (the probe counts them)."""
         if self._get_status is None:
@@ -412,6 +464,25 @@ class Decoder:
                                 f"{exc.reason}; as {meant} it would be a date: "
                                 "check time.format") from None  # fmt: skip
             raise
+
+
+def _plain_keys(profile: DeviceProfile) -> tuple[str | None, str, str, str | None] | None:
+    """(device id, time, volume, seq) keys of a family whose usual message `decode` may
+    read on its plain path: a JSON object with these at its top level, an ISO time
+    without an offset field, a volume in a fixed unit, no status and no bag-change flag.
+    None for any other family."""
+    f = profile.fields
+    if (profile.payload.encoding is not Encoding.JSON
+            or profile.time.format is not TimeFormat.ISO8601
+            or profile.volume.semantics is Semantics.BAG_WEIGHT
+            or any(x is not None for x in (f.utc_offset, f.status, f.unit, f.bag_change_flag))):
+        return None  # fmt: skip
+    keys = [None if k is None else str(k) for k in (f.device_id, f.time, f.volume, f.seq)]
+    if any(k is not None and "." in k for k in keys):
+        return None  # a nested field: the general accessors walk the path
+    device_key, time_key, volume_key, seq_key = keys
+    assert time_key is not None and volume_key is not None
+    return device_key, time_key, volume_key, seq_key
 
 
 def _in_epoch_range(raw: Any, scale: float) -> bool:

@@ -282,16 +282,23 @@ class Engine:
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
         """One inbound message, received at `now`."""
-        return self._finish(self._step(topic, payload, as_epoch(now)))
+        return self.step_at(topic, payload, as_epoch(now))
+
+    def step_at(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
+        """`step` at epoch seconds (replay's clock)."""
+        effects = self._step(topic, payload, t_now)
+        return self._finish(effects) if effects else []  # a list of the caller's own
 
     def _step(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
+        route = self._route_cache.get(topic)
+        if route:  # a meter topic heard before (bed and ack topics are never in the cache)
+            return self._meter_message(topic, route[1], route[0], payload, t_now, route[2])
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
             return self._ack(topic, None, payload, t_now)
         if topic.startswith(self._ack_users):
             return self._ack(topic, topic[len(self._ack_users) :], payload, t_now)
-        route = self._route_cache.get(topic)
         if route is None:
             route = self._route(topic)
         if route:
@@ -495,8 +502,7 @@ class Engine:
         times, tol = dev.dedup_times, dev.clock_tolerance_s
         lo = bisect.bisect_left(times, t - tol)
         hi = bisect.bisect_right(times, t + tol, lo)
-        seqs = dev.dedup_seqs
-        return any(seqs[i] == seq for i in range(lo, hi))
+        return seq in dev.dedup_seqs[lo:hi]  # by ==: seq is never NO_SEQ (NaN)
 
     @staticmethod
     def _remember(dev: _Device, r: Reading, at: int) -> None:
