@@ -401,3 +401,23 @@ def test_a_held_reading_of_a_meter_that_leaves_its_bed_is_still_counted() -> Non
     q = m.engine.quality()["rc-1"]
     assert q["held"] == 0 and q["outcomes"] == {"accepted": 5, "artefact_dropped": 1}
     assert q["received"] == 6
+
+
+@pytest.mark.parametrize("name", sorted(PROFILES))
+@pytest.mark.parametrize("huge", [1e27, -1e30, 1.7e308])
+def test_a_reading_too_large_to_round_is_out_of_range(name: str, huge: float) -> None:
+    """A volume of 1e27 mL or more once raised decimal.InvalidOperation while the decoder
+    wrote its refusal ("... mL outside physical range"): an exception where an outcome was
+    due, and a replay that stopped on the line. Every family refuses it with a reason."""
+    m = Meter(PROFILES[name])
+    out = m.send(T0, huge)
+    assert [e.reason for e in out if isinstance(e, RejectedInput)] == [Outcome.OUT_OF_RANGE]
+    assert m.outcomes() == {"out_of_range": 1}
+
+
+def test_half_up_leaves_a_whole_float_as_it_is() -> None:
+    from daemon.engine.numbers import half_up, num
+
+    for x in (2.0**52, 1e27, -1e30, 1.7e308):
+        assert half_up(x, 0) == half_up(x, 6) == x
+    assert num(1e27, 1) == f"{1e27:.1f}"

@@ -12,12 +12,13 @@ import math
 from decimal import ROUND_HALF_UP, Decimal
 
 _STEPS = tuple(Decimal(1).scaleb(-d) for d in range(7))
+_WHOLE = 2.0**52  # every float this large is an integer
 
 
 def half_up(value: float, digits: int = 0) -> float:
     """`value` rounded half away from zero to `digits` decimals (0-6)."""
-    if not math.isfinite(value):
-        return value
+    if not math.isfinite(value) or abs(value) >= _WHOLE:
+        return value  # a whole number already (and too long for the decimal context)
     return float(Decimal(repr(value)).quantize(_STEPS[digits], rounding=ROUND_HALF_UP))
 
 
