@@ -38,7 +38,9 @@ from __future__ import annotations
 
 import math
 import time
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 from .engine import snapshot
 from .engine.alarms import AlarmEvent
@@ -200,22 +202,29 @@ def _read_events(journal: Journal, since: float | None) -> _Journaled:
     return out
 
 
+# what the shell snapshots beside the engine: name -> loader of the saved value
+Extras = Mapping[str, Callable[[Any], None]]
+
+
 def _load_snapshot(engine: Engine, journal: Journal, floor: float | None,
-                   ignored: list[str]) -> StoredSnapshot | None:  # fmt: skip
-    """The newest snapshot the engine could load (loaded into it), or None."""
+                   ignored: list[str], extras: Extras) -> StoredSnapshot | None:  # fmt: skip
+    """The newest snapshot the engine could load (loaded into it, its extras handed to
+    their loaders), or None."""
     for snap in journal.snapshots():
         what = f"snapshot {snap.id} of {iso(snap.taken_at)}"
         if floor is not None and snap.taken_at < floor:
             ignored.append(f"{what}: older than the journal's retention")
             continue
-        try:
-            snapshot.restore(engine, snap.body)  # leaves the engine untouched if it fails
+        try:  # leaves the engine untouched if it fails
+            found = snapshot.restore(engine, snap.body, sorted(extras))
         except snapshot.Mismatch as exc:
             ignored.append(f"{what}: {exc}")
             continue
         except snapshot.Corrupt as exc:
             ignored.append(f"{what}: damaged: {exc}")
             continue
+        for name, load in extras.items():  # before the tail: it adds to them
+            load(found[name])
         return snap
     return None
 
@@ -285,16 +294,19 @@ def recover(
     prefix: str,
     max_lookback_s: float | None = None,
     use_snapshots: bool = True,
+    extras: Extras | None = None,
 ) -> Recovery:
     """Rebuild `engine` from the journal (see the module text): from its newest readable
     snapshot and the messages after it, or else by a full re-feed. The re-feed starts at
     now - window_s, or earlier: `guard_s` (the longest rule window) before the onset of
     the oldest alarm episode the journal says is still open, so that episode is rebuilt
-    with its own id and escalation clock. Never further back than `max_lookback_s`."""
+    with its own id and escalation clock. Never further back than `max_lookback_s`.
+    `extras`: loaders of what the shell snapshots beside the engine (see snapshot.take),
+    by name; a snapshot is used only if it holds every one."""
     started = time.perf_counter()
     floor = now - max_lookback_s if max_lookback_s is not None else None
     ignored: list[str] = []
-    snap = _load_snapshot(engine, journal, floor, ignored) if use_snapshots else None
+    snap = _load_snapshot(engine, journal, floor, ignored, extras or {}) if use_snapshots else None
     if snap is not None:
         rec = Recovery(snap.taken_at, now, snapshots_ignored=ignored)
         _from_snapshot(engine, journal, snap, now, window_s, rec)

@@ -87,6 +87,7 @@ BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its
 # minutes of output kept per bed: the rule windows, and the board's last 24 h and the hour
 # being filled (daemon/web/board.py); older minutes are forgotten (bounded memory)
 SERIES_KEEP_S = 25 * 3600.0
+BOARD_MARKS = "board_marks"  # the board's bag changes, in the engine's snapshots
 HOUSEKEEPING_S = 0.25  # the worker wakes at least this often
 HOUSEKEEPING_EVERY_S = 0.05  # timeouts, retained state and status at most this often
 PRUNE_EVERY_S = 600.0
@@ -248,8 +249,10 @@ class Service:
         self.clock_rate = clock_rate
         self.prefix = cfg.topic_prefix
         self.log = structlog.get_logger("hourwatch")
-        # the ward board (daemon/web): bag changes seen, and which beds changed
+        # the ward board (daemon/web): bag changes seen, and which beds changed; the
+        # bag changes travel in the engine's snapshots (a restart shows those before it)
         self.marks = ReadingMarks()
+        self._board_marks = bool(cfg.board.listen)
         self.changes = ChangeFeed()
         profiles = load_profiles(cfg.profiles)
         self.rules = load_rules(cfg.rules)
@@ -272,7 +275,7 @@ class Service:
                 max_unbound_devices=lim.max_unbound_devices,
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
                 ack_users=cfg.ack.users or None, calibration=load_devices(cfg.devices),
-                observe=self.marks.observe if cfg.board.listen else None,  # the board's bag changes
+                observe=self.marks.observe if self._board_marks else None,  # bag changes
                 series_keep_s=max(self.window_s, SERIES_KEEP_S),  # bounded memory per bed
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
@@ -431,6 +434,7 @@ class Service:
             rec = recover(
                 self.engine, journal, now, self.window_s, self.guard_s, self.prefix,
                 max_lookback_s=self.cfg.journal.retention_days * 86400.0,
+                extras={BOARD_MARKS: self.marks.load} if self._board_marks else None,
             )  # fmt: skip
             self._now = max(now, rec.last_message_time or now)
             self._last_message_id = rec.last_message_id or 0
@@ -755,7 +759,8 @@ class Service:
             if at == self._snapshot_at or not math.isfinite(self._now):
                 return  # nothing new since the last one
             try:
-                captured = snapshot.take_captured(self.engine)
+                extra = {BOARD_MARKS: self.marks.state()} if self._board_marks else None
+                captured = snapshot.take_captured(self.engine, extra)
             except Exception:  # a state the walker cannot carry: restarts re-feed instead
                 self.log.error("snapshot_failed", exc_info=True)
                 return

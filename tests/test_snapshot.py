@@ -41,6 +41,7 @@ from daemon.engine.series import MinuteSeries
 from daemon.journal import SqliteJournal
 from daemon.recovery import recover
 from daemon.service import journal_row
+from daemon.web.marks import ReadingMarks
 from tests import fuzzing
 from tests.broker import broker, running_service  # noqa: F401  (the fixture)
 from tests.ruletools import POLICY, PROFILES, RULES, event_lines
@@ -229,6 +230,43 @@ def test_restart_from_snapshot_and_tail_equals_a_full_re_feed(tmp_path, where) -
     after_a = feed(a, rest) + a.advance(END)
     assert event_lines(after_a) == event_lines(feed(b, rest) + b.advance(END))
     assert outputs(a) == outputs(b)
+
+
+def test_the_boards_bag_changes_travel_in_the_snapshot(tmp_path) -> None:
+    """The board's bag-change marks are the shell's, seen through the engine's observer: a
+    restart from a snapshot taken with them shows the same bag changes as a full re-feed
+    (before, only those in the journal's tail); a snapshot without them, or one taken with
+    them read by a shell that keeps none, is refused for a full re-feed, never misread."""
+    msgs = messages()
+    s = int(len(msgs) * 0.65)  # after the scenario's bag change at 23:00 (a 3-hour bag)
+    k = s + 90
+    live, live_engine = ReadingMarks(), Engine(PROFILES.values(), RULES, POLICY)
+    live_engine.observe = live.observe
+    with SqliteJournal(tmp_path / "j.db") as j:
+        for i, (t, topic, p) in enumerate(msgs[:k], start=1):
+            (mid,) = j.append_messages([(t, topic, payload(p), 1)])
+            eff = live_engine.advance(t) + live_engine.step(topic, payload(p), t)
+            j.append_events([journal_row(e) for e in eff])
+            if i == s:
+                j.save_snapshot(t, mid, snapshot.take(live_engine, {"marks": live.state()}))
+    now = msgs[k - 1][0] + 1200.0
+
+    def restart(use: bool, extras: bool = True) -> tuple[Any, ReadingMarks]:
+        marks = ReadingMarks()
+        engine = Engine(PROFILES.values(), RULES, POLICY, observe=marks.observe)
+        with SqliteJournal(tmp_path / "j.db") as j:
+            rec = recover(engine, j, now, 30 * DAY, DAY, "hourwatch", use_snapshots=use,
+                          extras={"marks": marks.load} if extras else None)  # fmt: skip
+        return rec, marks
+
+    fast, a = restart(True)
+    full, b = restart(False)
+    assert fast.snapshot_id == 1 and full.snapshot_id is None
+    assert a.bags == b.bags == live.bags and a._held == b._held == live._held
+    marked = [t for ts in live.bags.values() for t in ts]
+    assert marked and min(marked) < msgs[s - 1][0]  # some before the snapshot
+    other, _ = restart(True, extras=False)
+    assert other.snapshot_id is None and "other state attributes" in other.snapshots_ignored[0]
 
 
 def test_effects_lost_in_a_crash_after_the_snapshot_are_published(tmp_path) -> None:

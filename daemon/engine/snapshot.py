@@ -42,7 +42,7 @@ import sys
 import zlib
 from array import array
 from collections import Counter, deque
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -483,28 +483,38 @@ def config_fingerprint(engine: Engine) -> str:
     return _digest(parts)
 
 
-def take(engine: Engine) -> bytes:
+EXTRA = "extra:"  # state keys of what the shell keeps beside the engine (its observer's)
+
+
+def take(engine: Engine, extra: Mapping[str, object] | None = None) -> bytes:
     """The engine's state as snapshot bytes."""
-    return take_captured(engine).pack()
+    return take_captured(engine, extra).pack()
 
 
-def take_captured(engine: Engine) -> Captured:
+def take_captured(engine: Engine, extra: Mapping[str, object] | None = None) -> Captured:
     """The engine's state encoded, for `pack()` later (the service captures under the
-    engine's lock and compresses outside it)."""
+    engine's lock and compresses outside it). `extra`: named plain data the shell keeps
+    in step with the engine (what its observer saw), restored with it or not at all."""
     engine.book.settle()  # alarm words built lazily are built now: closures do not travel
     state = {k: getattr(engine, k) for k in state_names(engine)}
+    for name, value in (extra or {}).items():
+        state[EXTRA + name] = value
     return capture(state, links(engine), config_fingerprint(engine),
-                   {ENGINE_CLASS: state_names(engine)})  # fmt: skip
+                   {ENGINE_CLASS: sorted(state)})  # fmt: skip
 
 
-def restore(engine: Engine, blob: bytes) -> None:
-    """Put a snapshot's state into `engine`, freshly built from the same configuration.
-    Mismatch or Corrupt leave the engine untouched."""
-    names = state_names(engine)
+def restore(engine: Engine, blob: bytes, extra: Sequence[str] = ()) -> dict[str, Any]:
+    """Put a snapshot's state into `engine`, freshly built from the same configuration,
+    and return the `extra` it was taken with, by name; a snapshot taken with other
+    extras is a Mismatch (a full re-feed rebuilds them). Mismatch or Corrupt leave the
+    engine untouched."""
+    names = sorted(state_names(engine) + [EXTRA + n for n in extra])
     state = decode(blob, links(engine), config_fingerprint(engine), {ENGINE_CLASS: names})
     if not isinstance(state, dict) or sorted(state) != names:
         raise Corrupt("the engine's state attributes are not all there")
+    extras = {k[len(EXTRA) :]: state.pop(k) for k in names if k.startswith(EXTRA)}
     for k, v in state.items():
         setattr(engine, k, v)
     engine.evaluator.book = engine.book  # the evaluator (configuration) asks the book
+    return extras
 

@@ -68,6 +68,28 @@ class ReadingMarks:
         if marks and t in marks:
             marks.remove(t)
 
+    def state(self) -> dict[str, object]:
+        """What a snapshot keeps (plain data), so a restart from it shows the bag changes
+        before it as a full re-feed would."""
+        return {"bags": {bed: list(ts) for bed, ts in self.bags.items()},
+                "held": dict(self._held)}  # fmt: skip
+
+    def load(self, state: object) -> None:
+        """Back from `state()`; what is not of its shape is left out (a snapshot is
+        checked whole before this, so that would be a bug of ours, not a misreading)."""
+        self.bags.clear()
+        self._held.clear()
+        if not isinstance(state, dict):
+            return
+        bags, held = state.get("bags"), state.get("held")
+        for bed, ts in (bags.items() if isinstance(bags, dict) else ()):
+            if isinstance(bed, str) and isinstance(ts, list):
+                times = sorted(float(t) for t in ts if isinstance(t, (int, float)))
+                self.bags[bed] = deque(times[-MAX_PER_BED:], maxlen=MAX_PER_BED)
+        for dev, t in (held.items() if isinstance(held, dict) else ()):
+            if isinstance(dev, str) and isinstance(t, (int, float)):
+                self._held[dev] = float(t)
+
     def bag_changes(self, bed: str, since: float) -> list[float]:
         marks = list(self.bags.get(bed, ()))
         return marks[bisect.bisect_left(marks, since) :]
