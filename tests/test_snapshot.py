@@ -425,6 +425,33 @@ def test_the_service_logs_an_ignored_snapshot_and_re_feeds(broker, tmp_path):  #
     assert not [e for e in logs if e["event"] == "snapshot_ignored"]
 
 
+def test_a_service_with_the_board_keeps_its_bag_changes_over_a_restart(broker, tmp_path):  # noqa: F811
+    """The service's own wiring: its stop's snapshot holds the board's bag changes and the
+    next start shows them. Invented bed: 90 minutes of readings, a bag emptied at 45."""
+    from simulator.meterlog import MeterFaults, constant, simulate
+    from tests.broker import publish_all, publisher
+
+    path = tmp_path / "j.db"
+    start = datetime.fromtimestamp(time.time() - 5400, UTC)
+    sim = simulate(PROFILES["reference-cumulative"], "rc-0909", start, 1.5, constant(80.0),
+                   MeterFaults(bag_change_every_s=2700.0), seed=9)  # fmt: skip
+    with running_service(broker, path, board__listen="127.0.0.1:0") as svc:
+        pub = publisher(broker, "marks-feed")
+        publish_all(pub, [("hourwatch/beds/b09/context",
+                           {"ward": "icu-east", "device_ids": ["rc-0909"]})])  # fmt: skip
+        publish_all(pub, [(t, p) for _, t, p in sim.records])
+        pub.disconnect()
+        deadline = time.monotonic() + 10
+        while not svc.marks.bags.get("b09") and time.monotonic() < deadline:
+            time.sleep(0.05)
+        before = svc.marks.state()
+    assert before["bags"], "the bag change was seen"
+    with running_service(broker, path, board__listen="127.0.0.1:0") as svc:
+        assert svc.stats.recovery is not None and svc.stats.recovery.snapshot_id is not None
+        assert svc.stats.recovery.messages == 0  # nothing after the stop's snapshot
+        assert svc.marks.state() == before
+
+
 # --- round trip on random states --------------------------------------------------------
 @st.composite
 def random_run(draw: st.DrawFn) -> tuple[fuzzing.GoodStream, list[Any], int]:
