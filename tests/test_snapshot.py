@@ -442,9 +442,16 @@ def test_a_service_with_the_board_keeps_its_bag_changes_over_a_restart(broker, t
         publish_all(pub, [(t, p) for _, t, p in sim.records])
         pub.disconnect()
         deadline = time.monotonic() + 10
-        while not svc.marks.bags.get("b09") and time.monotonic() < deadline:
+
+        def received() -> int:
+            with svc.lock:
+                dev = svc.engine.devices.get("rc-0909")
+                return 0 if dev is None else dev.quality.received
+
+        while received() < len(sim.records) and time.monotonic() < deadline:
             time.sleep(0.05)
-        before = svc.marks.state()
+        with svc.lock:
+            before = svc.marks.state()
     assert before["bags"], "the bag change was seen"
     with running_service(broker, path, board__listen="127.0.0.1:0") as svc:
         assert svc.stats.recovery is not None and svc.stats.recovery.snapshot_id is not None
