@@ -48,9 +48,9 @@ from daemon.engine.engine import Engine
 from daemon.engine.timefmt import iso
 from daemon.journal import SqliteJournal
 from daemon.profile_files import load_profiles
-from daemon.recovery import longest_window_s, recover
+from daemon.recovery import SERIES_KEEP_S, longest_window_s, recover
 from daemon.rule_files import load_advice, load_policy, load_rules
-from daemon.service import SERIES_KEEP_S, journal_row
+from daemon.service import journal_row
 from simulator.meterlog import constant, simulate
 
 PROFILES = load_profiles()

@@ -100,6 +100,17 @@ def longest_window_s(rules: list[RuleDef]) -> float:
     return max((rule_window_s(r) for r in rules if r.enabled), default=24 * HOUR)
 
 
+# minutes of output an engine keeps per bed in the service and in a timeline replay: the
+# rule windows, and the board's last 24 h and the hour being filled (daemon/web/board.py);
+# older minutes are forgotten (bounded memory). Window sums are exact (whole nanolitres),
+# so what an engine keeps never changes its events (tests/test_live_replay.py).
+SERIES_KEEP_S = 25 * 3600.0
+
+
+def series_keep_s(rules: list[RuleDef], margin_s: float = 0.0) -> float:
+    return max(longest_window_s(rules) + margin_s, SERIES_KEEP_S)
+
+
 class _LatestContexts(BedFilter):
     """Keeps every message in range, and remembers the newest context per bed topic
     from before the range (the journal hands those to `see`)."""

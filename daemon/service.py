@@ -68,7 +68,7 @@ from .notify.settings import check_notify, policy_roles
 from .notify.store import open_store
 from .profile_files import load_devices, load_profiles
 from .publisher import Outbox, Outgoing
-from .recovery import Recovery, longest_window_s, recover
+from .recovery import Recovery, longest_window_s, recover, series_keep_s
 from .rule_files import load_advice, load_policy, load_rules
 from .shard import WardShard
 from .web.live import ChangeFeed
@@ -84,9 +84,6 @@ OutboundOf = AlarmMessage | AdviceMessage | RejectedMessage
 BATCH_MAX_311 = 16
 BATCH_MAX_CAP = 256
 BATCH_WAIT_S = 0.020  # upper bound on how long a received message waits for its batch
-# minutes of output kept per bed: the rule windows, and the board's last 24 h and the hour
-# being filled (daemon/web/board.py); older minutes are forgotten (bounded memory)
-SERIES_KEEP_S = 25 * 3600.0
 BOARD_MARKS = "board_marks"  # the board's bag changes, in the engine's snapshots
 HOUSEKEEPING_S = 0.25  # the worker wakes at least this often
 HOUSEKEEPING_EVERY_S = 0.05  # timeouts, retained state and status at most this often
@@ -276,7 +273,7 @@ class Service:
                 ack_topic=f"{self.prefix}/ack/{{user}}" if cfg.ack.per_user_topic else None,
                 ack_users=cfg.ack.users or None, calibration=load_devices(cfg.devices),
                 observe=self.marks.observe if self._board_marks else None,  # bag changes
-                series_keep_s=max(self.window_s, SERIES_KEEP_S),  # bounded memory per bed
+                series_keep_s=series_keep_s(self.rules, cfg.recovery.margin_s),
             )  # fmt: skip
         except ValueError as exc:  # e.g. ack.users names a role the policy does not
             raise UserError(f"ack.users: {exc}") from None

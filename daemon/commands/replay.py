@@ -26,6 +26,7 @@ from ..errors import UserError
 from ..hourly import hourly_json, hourly_text, quality_text
 from ..journal_api import target
 from ..profile_files import load_devices, load_profiles
+from ..recovery import series_keep_s
 from ..replay import Records, RejectLog, bench_beds, replay_file
 from ..rule_files import load_advice, load_policy, load_rules
 from ..sources import require
@@ -162,15 +163,19 @@ def run(args: argparse.Namespace) -> int:
     if args.report:
         return _report(args, until, comparison=None)
     profiles = load_profiles(args.profiles)
+    rules = load_rules(args.rules)
     rejects = RejectLog() if args.rejects else None
     engine = Engine(
         profiles,
-        load_rules(args.rules),
+        rules,
         load_policy(args.rules),
         observe=rejects.observe if rejects else None,
         advice_policy=load_advice(args.rules),
         timezone=_zone(args.timezone),
         calibration=load_devices(args.devices),
+        # the timeline needs no old minutes (--hourly lists every hour): kept as the
+        # service keeps them, so a year replays in the memory of a day
+        series_keep_s=None if args.hourly else series_keep_s(rules),
     )
     bench = bench_beds(bound, args.weight, engine.prefix) if bound else None
 
