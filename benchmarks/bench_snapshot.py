@@ -48,7 +48,7 @@ from daemon.engine.engine import Engine
 from daemon.engine.timefmt import iso
 from daemon.journal import SqliteJournal
 from daemon.profile_files import load_profiles
-from daemon.recovery import SERIES_KEEP_S, longest_window_s, recover
+from daemon.recovery import longest_window_s, recover, series_keep_s
 from daemon.rule_files import load_advice, load_policy, load_rules
 from daemon.service import journal_row
 from simulator.meterlog import constant, simulate
@@ -73,7 +73,7 @@ Row = tuple[str, str, str, str, str, bool | None]
 def engine() -> Engine:
     """As the service builds it (its series keep what the rules and the board read)."""
     return Engine(PROFILES, RULES, POLICY, advice_policy=ADVICE,
-                  series_keep_s=max(WINDOW_S, SERIES_KEEP_S))  # fmt: skip
+                  series_keep_s=series_keep_s(RULES, WINDOW_S - GUARD_S))  # fmt: skip
 
 
 def ward(beds: int, start: float) -> list[tuple[float, str, bytes]]:

@@ -462,18 +462,12 @@ class AlarmBook:
 
     def open_rules(self, bed: str) -> dict[str, OpenRule]:
         """Rule id -> (state, activation or onset time, when its condition went away or
-        None while present) of the bed's current alarms: the cheap question the
-        evaluator asks every minute."""
-        out: dict[str, OpenRule] = {}
-        for s in self._by_bed.get(bed, {}).values():
-            r = s.record
-            if r is not None:
-                at = r.activated_at if r.activated_at is not None else r.onset
-                out[r.spec.rule_id] = (r.state, at, None if r.present else r.cleared_at or at)
-        return out
+        None while present) of the bed's current alarms."""
+        return self.open_and_suppressor(bed)[0]
 
     def open_and_suppressor(self, bed: str) -> tuple[dict[str, OpenRule], str | None]:
-        """open_rules(bed) and suppressor(bed) in one pass (asked at every evaluation)."""
+        """open_rules(bed) and suppressor(bed), found in one pass over the bed's alarms:
+        the question the evaluator asks every minute."""
         out: dict[str, OpenRule] = {}
         found: tuple[float, str] | None = None
         for s in self._by_bed.get(bed, {}).values():
@@ -492,17 +486,7 @@ class AlarmBook:
     def suppressor(self, bed: str) -> str | None:
         """The alarm id that suppresses `bed`'s low-output alarms: its earliest
         active, unacknowledged technical alarm, or None."""
-        found: tuple[float, str] | None = None
-        for s in self._by_bed.get(bed, {}).values():
-            r = s.record
-            if (
-                r is not None
-                and r.spec.kind is Kind.TECHNICAL
-                and r.state in _ANNUNCIATED
-                and (found is None or (r.onset, r.alarm_id) < found)
-            ):
-                found = (r.onset, r.alarm_id)
-        return found[1] if found else None
+        return self.open_and_suppressor(bed)[1]
 
     # --- snapshot ------------------------------------------------------------
     def snapshot(self) -> dict[str, object]:

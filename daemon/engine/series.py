@@ -107,8 +107,8 @@ class MinuteSeries:
         keep = self.keep_min
         if keep is not None:
             # forget what lies more than keep_min before the newest minute written, on a
-            # grid of GROW minutes: where the buffer starts (and so how its prefix sums
-            # round) then depends on the data, not on how the buffer happened to grow
+            # grid of GROW minutes: where the buffer starts then depends on the data, not
+            # on how the buffer happened to grow (a snapshot's buffer is a re-feed's)
             target = min((hi - keep) // GROW * GROW, lo)
             if target - self._base >= GROW:
                 self._forget(target - self._base)
