@@ -40,6 +40,8 @@ START = datetime(2026, 3, 14, tzinfo=UTC)  # invented
 # before the speed work (main at 8cf6e44). A change that means to change alarms updates
 # these with the reason in its commit; a speed change never does. (ward-night: the example
 # log lost its last lab line after 8cf6e44; the digest is 8cf6e44's engine on the new log.)
+# pod-physiological and ward-night: a resolved labs reminder's words changed from
+# "due  (last: )" to "every result is up to date"; nothing else.
 GOLDEN = {
     "blocked-catheter": ("34390f01a592aad99c92e0b5f297cffbddb7ffa4d051d1b901813180d80a54a3",
                          "3fb2143963954aee57efa7eeadd0a5749acc4c44376c6c8523dce3cc2f0af0e3"),
@@ -51,11 +53,11 @@ GOLDEN = {
                  "fa0f31570e7dac69ace9a7b893c58fb858615053a5043b31721078f1b644526f"),
     "pod-pathological": ("6113ca0d71683917a653f788a37ae60b939f1c400c771bc969f8d48688a8f6cb",
                          "dfcd68a8959e03744506465d4f50134f57553a7c9d8225b49df56ce0cc0ee1a1"),
-    "pod-physiological": ("adb51d333ae3f6d136812453935990b5ad3c94fb5f6d5978e0b1ebd403f710e1",
+    "pod-physiological": ("b3eee1096f6ffa53b5b3573267620bc5d5d7224e4ec0e8d6577056135c979370",
                           "d128112bc8ea45525dd14a0b7e2cee450c4a8f50e2f89789ae97b32e9ea30549"),
     "ward-demo": ("f7334b11ac4f6315a039ba533414f46a2cb44140f72c6687d94cfe795caf7d62",
                   "3a3047fdf88823e70e6bc096f22ecaa19ca03d5a0af44d8558fbec670c01846f"),
-    "ward-night": ("0fea706da1557eaad6b6a43dbec6a0fd1474edc060ab13ea365779fae2942144",
+    "ward-night": ("02e834a2377ea806507ba99d1bc5f50d0945d5a23203cc78749182ce13954ae8",
                    "2aa47a5b7891ae0f3e60fc917aa82a236068a16e91b1af90fe15c770058a5de5"),
 }  # fmt: skip
 

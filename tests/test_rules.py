@@ -658,6 +658,8 @@ def test_labs_due_every_4_hours_while_pod_is_open() -> None:
     bed.labs(t_labs, **ALL_LABS)
     done = w.first("labs-due", State.RESOLVED)
     assert done is not None and done.time == t_labs
+    # the resolved page says so, not "due  (last: )"
+    assert done.summary == "check serum electrolytes and creatinine: every result is up to date"
     w.advance(t_labs + 4 * HOUR + 1.0)
     again = [e for e in w.alarms("labs-due") if e.state is State.ACTIVE]
     assert [e.time for e in again] == [due, t_labs + 4 * HOUR]

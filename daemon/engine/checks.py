@@ -623,16 +623,16 @@ def reminder(c: r.Reminder, v: BedView) -> Finding:
     waiting = [t for a, t in due_at.items() if t > v.now]
 
     def explain() -> tuple[str, dict[str, Any]]:
+        facts = {"due": overdue, "every_s": c.every_s,
+                 "last": {a: None if t is None else iso(t) for a, t in last.items()}}  # fmt: skip
+        if not overdue:  # the words of a resolved reminder: nothing is due any more
+            return f"{c.task}: every result is up to date", facts
         names = ", ".join(LAB_WORDS[a][1] for a in overdue)
         latest = "; ".join(
             f"{LAB_WORDS[a][1]} {'never' if last[a] is None else v.clock(last[a] or 0.0)}"
             for a in overdue
         )
-        return (
-            f"{c.task}: due {names} (last: {latest})",
-            {"due": overdue, "every_s": c.every_s,
-             "last": {a: None if t is None else iso(t) for a, t in last.items()}},
-        )  # fmt: skip
+        return f"{c.task}: due {names} (last: {latest})", facts
 
     return Finding(bool(overdue), explain, due=min(waiting) if waiting else None)
 
