@@ -85,7 +85,8 @@ def test_low_sodium_holds_the_hypotonic_rate_and_pages_the_physician() -> None:
     low = w.first("sodium-low")
     assert low is not None and low.priority is Priority.MEDIUM
     assert "icu-physician" in low.notify and "bedside-nurse" in low.notify  # at tier 0
-    assert "hypotonic replacement order is on file" in low.summary
+    assert "hypotonic replacement order on file: physician to review it" in low.summary
+    assert "physician to review it" in low.pager()  # a short pager drops the details first
     assert "0.45% NaCl" not in low.pager()
     after = [a for a in w.advice() if a.time >= at(2, minutes=5)]
     assert after and all(a.advice.kind is AdviceKind.HELD_SODIUM for a in after)

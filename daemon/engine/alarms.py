@@ -9,6 +9,7 @@ lifecycle. What a person reads for each state is STATE_WORDS, and nothing else.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
@@ -95,11 +96,11 @@ class AlarmEvent:
     def pager(self) -> str:
         """One plain line for a pager, at most PAGER_MAX characters: bed, state and
         priority, what (the title up to its colon), the key numbers, for an open
-        high-output alarm what the advice says, and always the caution. The numbers
-        are shortened first; the bed, what, the advice and the caution always fit."""
-        what = (self.title or self.rule).split(":")[0]
+        high-output alarm what the advice says, and always the caution. Only the numbers
+        are shortened (see `shorten`); the bed, what, the advice and the caution always fit."""
+        what = pager_what(self.title or self.rule, self.state)
         when = f"{self.clock} " if self.clock else ""
-        head = f"{when}{self.bed} {STATE_WORDS[self.state]} {self.priority}: {what}"
+        head = _ascii(f"{when}{self.bed} {STATE_WORDS[self.state]} {self.priority}: {what}")
         tail = ""
         if self.holding_back:
             tail = f" Holding back: {', '.join(self.holding_back)}."
@@ -107,14 +108,10 @@ class AlarmEvent:
             words = self.advice.get("pager")
             if isinstance(words, str) and words:
                 tail += f" {words}"
-        tail += f" {PAGER_CAUTION}"
-        text = _ascii(f"{head}. {self.summary}.{tail}")
-        if len(text) <= PAGER_MAX:
-            return text
-        head, tail = _ascii(head), _ascii(tail)
-        room = PAGER_MAX - len(head) - len(tail) - 5  # '. ' and the ellipsis
+        tail = _ascii(f"{tail} {PAGER_CAUTION}")
+        room = PAGER_MAX - len(head) - len(tail) - 3  # '. ' and the summary's '.'
         if room >= 10:
-            return f"{head}. {_ascii(self.summary)[:room].rstrip()}...{tail}"
+            return f"{head}. {shorten(_ascii(self.summary), room)}.{tail}"
         return f"{head[: PAGER_MAX - len(tail) - 1]}.{tail}"
 
     def to_json(self) -> dict[str, object]:
@@ -161,6 +158,41 @@ _ASCII = str.maketrans({"–": "-", "—": "-", "…": "...", "≥": ">=", "≤"
 
 def _ascii(text: str) -> str:
     return text.translate(_ASCII).encode("ascii", "replace").decode("ascii")
+
+
+ENDED = frozenset({State.RESOLVED, State.INACTIVE})
+_MET = " criterion met"
+
+
+def pager_what(title: str, state: State) -> str:
+    """What a page is about: the title up to its colon. Once the alarm has ended, a
+    title that says a criterion is met says it is no longer met: a RESOLVED page must
+    not read as the criterion holding."""
+    what = title.split(":")[0]
+    if state in ENDED and what.endswith(_MET):
+        return f"{what[: -len(' met')]} no longer met"
+    return what
+
+
+_DETAIL = re.compile(r" ?\([^()]*\)")  # a bracketed detail: a threshold, the basis
+
+
+def shorten(summary: str, room: int) -> str:
+    """The summary in at most `room` characters: whole; else without its bracketed
+    details (the full message and the board keep them); else cut after the last whole
+    clause, or failing that word, that fits, with an ellipsis. Never mid-word: a
+    number cut short reads as another number."""
+    if len(summary) <= room:
+        return summary
+    bare = _DETAIL.sub("", summary)
+    if len(bare) <= room:
+        return bare
+    cut = bare[: room - 2]  # room for '..' (the line's '.' follows)
+    for sep in ("; ", ", ", " "):
+        i = cut.rfind(sep)
+        if i >= room // 3:  # a clause boundary that keeps most of the text
+            return f"{cut[:i].rstrip(' ;,:')}.."
+    return f"{cut.rstrip()}.."
 
 
 # The pager line's own caution: the page is a prompt for the clinician, not an order.

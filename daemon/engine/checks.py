@@ -154,7 +154,8 @@ def hourly_above(c: r.HourlyAbove, v: BedView) -> Finding:
     def explain() -> tuple[str, dict[str, Any]]:
         vols = ", ".join(_vol(w.volume_ml, c.threshold_ml_h) for w in wins)
         return (
-            f"last {len(wins)} h: {vols} mL ({'>' if gt else '>='} {c.threshold_ml_h:g} each)",
+            f"last {len(wins)} h: {vols} mL "
+            f"(alarm {'above' if gt else 'at or above'} {c.threshold_ml_h:g} each)",
             {"windows": [w.to_json() for w in wins], "threshold_ml_h": c.threshold_ml_h,
              "comparator": c.comparator},
         )  # fmt: skip
@@ -195,7 +196,7 @@ def volume_above(c: r.VolumeAbove, v: BedView) -> Finding:
         cond,
         lambda: (
             f"{_vol(w.volume_ml, c.threshold_ml)} mL in {num(length / 60, 1)} h "
-            f"(> {c.threshold_ml:g})",
+            f"(alarm above {c.threshold_ml:g})",
             {"window": w.to_json(), "threshold_ml": c.threshold_ml},
         ),
         quiet_until=None if cond else _quiet_below(v, w.volume_ml, c.threshold_ml),
@@ -252,7 +253,7 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
                 return f"window only {pct(w.coverage)} measured", ev
             return (
                 f"{_rate(rate, c.threshold_ml_kg_h)} mL/kg/h over {c.window_h} h "
-                f"(< {c.threshold_ml_kg_h:g}; {_ml(w.volume_ml)}, {kg:g} kg, "
+                f"(alarm below {c.threshold_ml_kg_h:g}; {_ml(w.volume_ml)}, {kg:g} kg, "
                 f"{num(w.known_min / 60, 1)} h with data)",
                 ev,
             )
@@ -282,9 +283,9 @@ def rate_below(c: r.RateBelow, v: BedView) -> Finding:
             return f"monitored for {_monitored(v, end)} of the {c.window_h} h", ev
         if not covered:
             return "not every hour in the window is measured", ev
-        return (
-            f"every hour of the last {c.window_h} h below {c.threshold_ml_kg_h:g} mL/kg/h "
-            f"(highest {num(max(rates), 2)})",
+        return (  # words true whether the criterion holds or has ended
+            f"highest hour {num(max(rates), 2)} mL/kg/h in the last {c.window_h} h "
+            f"(alarm when every hour is below {c.threshold_ml_kg_h:g})",
             ev,
         )
 
@@ -308,7 +309,7 @@ def volume_below(c: r.VolumeBelow, v: BedView) -> Finding:
         if not w.covered:
             return f"window only {pct(w.coverage)} measured", ev
         return (
-            f"{_vol(scaled, c.threshold_ml)} mL in {c.window_h} h (< {c.threshold_ml:g}; "
+            f"{_vol(scaled, c.threshold_ml)} mL in {c.window_h} h (alarm below {c.threshold_ml:g}; "
             f"{num(w.known_min / 60, 1)} h with data)",
             ev,
         )
@@ -449,7 +450,7 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
         word = "below" if c.direction == "below" else "above"
         return (
             f"intake {_ml(intake)} = {pct(share)} of output {_ml(w.volume_ml)} in "
-            f"{c.window_h} h ({'<' if word == 'below' else '>'} {pct(c.ratio)})",
+            f"{c.window_h} h (alarm {word} {pct(c.ratio)})",
             ev | {"intake_share": half_up(share, 3)},
         )
 
@@ -509,9 +510,10 @@ def hypovolaemia(c: r.Hypovolaemia, v: BedView) -> Finding:
                 ev["map_mmhg"] = half_up(mean, 1)
         if net is not None and kg is not None:
             ev |= {"net_balance_ml": half_up(net, 1), "balance_ml_kg": half_up(net / kg, 2)}
+        # what to do is the title's; the signs come first, so a short pager keeps them
+        signed = what if signs or balance_low else "no sign of hypovolaemia"  # or ending
         return (
-            f"assess volume status (resuscitation per clinician): {_ml(hour.volume_ml)} "
-            f"last hour; {what}",
+            f"{signed}; {_ml(hour.volume_ml)} last hour",
             ev | {"signs": signs, "balance_low": balance_low, "what": what},
         )
 
@@ -556,13 +558,14 @@ def _lab_limit(c: r.LabAbove | r.LabBelow, v: BedView, above: bool) -> Finding:
     def explain() -> tuple[str, dict[str, Any]]:
         word = "above" if above else "below"
         age = num((v.now - t) / 3600, 1)
-        text = f"{name} {x:g} {unit} at {v.clock(t)}, {age} h ago (alarm {word} {c.threshold:g})"
+        # the age and the line in brackets: a short pager keeps the value and what to do
+        text = f"{name} {x:g} {unit} at {v.clock(t)} ({age} h ago; alarm {word} {c.threshold:g})"
         ev: dict[str, Any] = {"analyte": c.analyte, "value": x, "time": iso(t),
                               "threshold": c.threshold}  # fmt: skip
         order = v.bed.context.replacement
         if isinstance(c, r.LabBelow) and c.review_hypotonic_order and order is not None \
                 and v.hypotonic(order.fluid):  # fmt: skip
-            text += "; a hypotonic replacement order is on file: physician to review it"
+            text += "; hypotonic replacement order on file: physician to review it"
             ev["hypotonic_order_on_file"] = True
         return text, ev
 
