@@ -100,7 +100,7 @@ class AlarmEvent:
         are shortened (see `shorten`); the bed, what, the advice and the caution always fit."""
         what = pager_what(self.title or self.rule, self.state)
         when = f"{self.clock} " if self.clock else ""
-        head = _ascii(f"{when}{self.bed} {STATE_WORDS[self.state]} {self.priority}: {what}")
+        head = ascii_text(f"{when}{self.bed} {STATE_WORDS[self.state]} {self.priority}: {what}")
         tail = ""
         if self.holding_back:
             tail = f" Holding back: {', '.join(self.holding_back)}."
@@ -108,10 +108,10 @@ class AlarmEvent:
             words = self.advice.get("pager")
             if isinstance(words, str) and words:
                 tail += f" {words}"
-        tail = _ascii(f"{tail} {PAGER_CAUTION}")
+        tail = ascii_text(f"{tail} {PAGER_CAUTION}")
         room = PAGER_MAX - len(head) - len(tail) - 3  # '. ' and the summary's '.'
         if room >= 10:
-            return f"{head}. {shorten(_ascii(self.summary), room)}.{tail}"
+            return f"{head}. {shorten(ascii_text(self.summary), room)}.{tail}"
         return f"{head[: PAGER_MAX - len(tail) - 1]}.{tail}"
 
     def to_json(self) -> dict[str, object]:
@@ -156,7 +156,7 @@ _ASCII = str.maketrans({"–": "-", "—": "-", "…": "...", "≥": ">=", "≤"
                         "µ": "u", "°": " deg"})  # fmt: skip
 
 
-def _ascii(text: str) -> str:
+def ascii_text(text: str) -> str:
     return text.translate(_ASCII).encode("ascii", "replace").decode("ascii")
 
 

@@ -33,7 +33,15 @@ from typing import Any
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
 from pydantic import ValidationError
 
-from ..engine.alarms import ALARM_CAUTION, PAGER_CAUTION, PAGER_MAX, STATE_WORDS, State
+from ..engine.alarms import (
+    ALARM_CAUTION,
+    PAGER_CAUTION,
+    PAGER_MAX,
+    STATE_WORDS,
+    State,
+    ascii_text,
+    shorten,
+)
 from ..engine.timefmt import iso
 from ..errors import UserError
 from ..health import Histogram, exposition
@@ -356,8 +364,7 @@ class Notifier:
         word = STATE_WORDS[State(state)]  # the one table of state words
         head = f"hourwatch {word} {self.cfg.technical_priority}: technical: "
         room = TECH_PAGER_MAX - len(head) - len(TECH_CAUTION) - 2
-        text = summary if len(summary) <= room else summary[: room - 3].rstrip() + "..."
-        pager = f"{head}{text}. {TECH_CAUTION}"
+        pager = f"{head}{shorten(ascii_text(summary), room)}. {TECH_CAUTION}"  # as an alarm's
         return {
             "schema": SCHEMA, "time": iso(now), "alarm_id": alarm_id, "channel": st.name,
             "channel_kind": st.kind, "kind": "technical", "priority": self.cfg.technical_priority,
