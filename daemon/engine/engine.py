@@ -282,7 +282,8 @@ class Engine:
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
         """One inbound message, received at `now`."""
-        return self.step_at(topic, payload, as_epoch(now))
+        effects = self._step(topic, payload, as_epoch(now))  # step_at, one call less
+        return self._finish(effects) if effects else []
 
     def step_at(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         """`step` at epoch seconds (replay's clock)."""
@@ -408,27 +409,28 @@ class Engine:
                                      (), labels)  # fmt: skip
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
+        cleaner, bed_id = dev.cleaner, dev.bed  # a cleaner is made for a meter on a bed
         outcomes = self._clean(dev, result, now)
-        sanity.cleaned(now, result.device_time, result.volume_ml, outcomes[-1])
-        revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
-        if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
+        last = outcomes[-1]
+        sanity.cleaned(now, result.device_time, result.volume_ml, last)
+        revised = cleaner.take_revised() if isinstance(cleaner, CumulativeCleaner) else []
+        if last in COUNTED_IN_SERIES:  # a usable reading: the meter sees
             dev.last_usable = now
             if dev.sent_since:
                 dev.sent_since.clear()
             dev.bag_ml = result.volume_ml
         else:
-            dev.sent_since[outcomes[-1]] += 1
-        if dev.bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
+            dev.sent_since[last] += 1
+        bed = self.beds[bed_id] if bed_id is not None else None
+        if bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
-            self.beds[dev.bed].forget_quiet()
+            bed.forget_quiet()
         if self.observe is not None:
-            self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
+            self.observe(ReadingTrace(now, topic, device_id, bed_id, result.device_time,
                                       result.volume_ml, result.seq, tuple(outcomes),
                                       tuple(revised), labels))  # fmt: skip
-        effects: list[Effect] = []
-        if dev.bed is not None:
-            effects += self._after_reading(self.beds[dev.bed], now)
+        effects = self._after_reading(bed, now) if bed is not None else []
         counts = dev.quality.counts
         for _, was in revised:  # counted before; an artefact after all
             counts[was] -= 1
@@ -464,11 +466,13 @@ class Engine:
         t = r.device_time
         # duplicates first, so a redelivery a day later still counts as a duplicate
         times = dev.dedup_times
-        at = bisect.bisect_left(times, t)
-        if at < len(times) and times[at] == t:
+        n = len(times)
+        # the usual reading is newer than every one remembered: no search for its place
+        at = n if not n or times[-1] < t else bisect.bisect_left(times, t)
+        if at < n and times[at] == t:
             same = dev.dedup_values[at] == r.raw_value
             return [Outcome.DUPLICATE if same else Outcome.CONFLICTING_DUPLICATE]
-        if r.seq is not None and self._seq_seen(dev, float(r.seq), t):
+        if r.seq is not None and self._seq_seen(dev, float(r.seq), t, at):
             return [Outcome.DUPLICATE]
         # which clock to believe
         adjusted: Outcome | None = None
@@ -496,12 +500,13 @@ class Engine:
         return outcomes
 
     @staticmethod
-    def _seq_seen(dev: _Device, seq: float, t: float) -> bool:
+    def _seq_seen(dev: _Device, seq: float, t: float, at: int) -> bool:
         """A remembered reading with this seq and a device time within the clock
-        tolerance of t: the same reading, re-stamped."""
+        tolerance of t: the same reading, re-stamped. `at` is t's place in the
+        remembered times (bisect_left): the window's ends lie either side of it."""
         times, tol = dev.dedup_times, dev.clock_tolerance_s
-        lo = bisect.bisect_left(times, t - tol)
-        hi = bisect.bisect_right(times, t + tol, lo)
+        lo = bisect.bisect_left(times, t - tol, 0, at)
+        hi = bisect.bisect_right(times, t + tol, at)
         return seq in dev.dedup_seqs[lo:hi]  # by ==: seq is never NO_SEQ (NaN)
 
     @staticmethod
@@ -839,6 +844,8 @@ class Engine:
 
     def _after_reading(self, bed: BedState, now: float) -> list[Effect]:
         """Rules on windows change only when the latest minute moves on."""
+        if not self.rules:
+            return []  # an intake-only engine (replay without rules, the probe)
         latest = bed.series.latest_minute()
         prev = bed.last_eval_minute
         if latest is None or latest == prev:
