@@ -178,7 +178,7 @@ def test_the_usual_message_takes_the_plain_path() -> None:
     dec = Decoder(PROFILES["reference-cumulative"])
     p = {"device_id": DEVICE, "time": "2026-03-14T02:00:00Z", "volume_ml": 412.5, "seq": 1042}
     assert dec._plain is not None
-    assert dec._decode_plain(DEVICE, p, *dec._plain) is not None
+    assert dec._decode_plain(DEVICE, p) is not None
     assert dec._times == {"2026-03-14T02:00:00Z": 1773453600.0}
 
 

@@ -294,7 +294,7 @@ class Decoder:
             obj.device_id = topic_device
             return obj
         if self._plain is not None:  # a JSON family: obj is a dict
-            reading = self._decode_plain(topic_device, obj, *self._plain)
+            reading = self._decode_plain(topic_device, obj)
             if reading is not None:
                 return reading
 
@@ -392,13 +392,12 @@ class Decoder:
             flag = flag or (raw_flag is not _MISSING and _truthy(raw_flag))
         return Reading(device_id, device_time, volume_ml, seq, flag, value)
 
-    def _decode_plain(
-        self, device: str, obj: dict[str, Any], device_key: str | None, time_key: str,
-        volume_key: str, seq_key: str | None,
-    ) -> Reading | None:  # fmt: skip
+    def _decode_plain(self, device: str, obj: dict[str, Any]) -> Reading | None:
         """The usual message of a family `_plain_keys` allows, read without the general
         accessors; None for anything unusual, which `decode`'s checked path then reads
         again and, if it is bad, says why. The same reading as the checked path."""
+        assert self._plain is not None
+        device_key, time_key, volume_key, seq_key = self._plain
         if device_key is not None:
             named = obj.get(device_key)
             if type(named) is not str or named.strip() != device:
