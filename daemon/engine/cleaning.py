@@ -70,10 +70,12 @@ def isotonic_fit(values: list[float], floor: float) -> list[float]:
         counts.append(c)
     out: list[float] = []
     for s, c in zip(sums, counts, strict=True):
+        level = s if c == 1 else s / c
+        level = level if level > floor else floor  # max(floor, level), without the call
         if c == 1:
-            out.append(max(floor, s))
+            out.append(level)
         else:
-            out.extend([max(floor, s / c)] * c)
+            out.extend([level] * c)
     return out
 
 
@@ -159,7 +161,8 @@ class CumulativeCleaner:
         if held is not None:
             out.append(self._settle_held(t, r))
         out.append(self._next(t, r))
-        self._count(t, out[-1])
+        if self.provisional is not None:  # else nothing to count it against
+            self._count(t, out[-1])
         return out
 
     def _before_held(self, t: float, r: Reading) -> list[Outcome]:
@@ -207,7 +210,9 @@ class CumulativeCleaner:
         return Outcome.SPIKE_HELD
 
     def _implausible(self, t0: float, v0: float, t1: float, v1: float) -> bool:
-        dt = max(t1 - t0, self._min_dt)
+        dt = t1 - t0
+        if dt < self._min_dt:  # max(), without the call
+            dt = self._min_dt
         return (v1 - v0 - self._noise) > self._max_flow_s * dt
 
     def _continues(self, t0: float, v0: float, t1: float, v1: float) -> bool:
