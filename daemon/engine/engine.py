@@ -55,6 +55,7 @@ DEDUP_HORIZON_S = 86400.0  # readings remembered for duplicates: this far behind
 DEDUP_SLACK_S = 3600.0  # ... pruned once the oldest is this much further behind
 DEDUP_MAX = 16_384  # duplicate keys kept per device at most, whatever the device times
 NO_SEQ = math.nan  # a reading without a sequence number (equal to no other)
+SEQ_LOOKBACK = 8  # remembered readings searched first for a seq's window (then all)
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
 # Bed ids, ward names and acknowledging users: letters, digits, '-', '_' and '.', up to
 # 64 characters. No spaces, no MQTT separators or wildcards; a site that wants another
@@ -282,7 +283,8 @@ class Engine:
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
         """One inbound message, received at `now`."""
-        effects = self._step(topic, payload, as_epoch(now))  # step_at, one call less
+        t_now = now if type(now) is float else as_epoch(now)  # epoch seconds: as they are
+        effects = self._step(topic, payload, t_now)  # step_at, one call less
         return self._finish(effects) if effects else []
 
     def step_at(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
@@ -293,7 +295,8 @@ class Engine:
     def _step(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         route = self._route_cache.get(topic)
         if route:  # a meter topic heard before (bed and ack topics are never in the cache)
-            return self._meter_message(topic, route[1], route[0], payload, t_now, route[2])
+            decoder, device_id, labels = route
+            return self._meter_message(topic, device_id, decoder, payload, t_now, labels)
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
@@ -485,16 +488,17 @@ class Engine:
         if dev.latest_t is not None and t < dev.latest_t - dev.reorder_tolerance_s:
             return [Outcome.LATE]
         self._remember(dev, r, at)
-        assert dev.cleaner is not None
-        outcomes = dev.cleaner.feed(t, r)
+        cleaner = dev.cleaner
+        assert cleaner is not None
+        outcomes = cleaner.feed(t, r)
         # a refused reading must not move the lateness horizon (a held one does)
         if outcomes[-1] not in _REFUSED and (dev.latest_t is None or t > dev.latest_t):
             dev.latest_t = t
-        bed = self.beds[dev.bed] if dev.bed else None
-        newest = dev.cleaner.last_t
-        if bed is not None and newest is not None:
-            # the newest reading in the series: this one, or a held one it let in
-            bed.series.note_reading(newest)
+        newest = cleaner.last_t
+        if newest is not None:
+            # the newest reading in the series (its bed's: see _attach): this one, or
+            # a held one it let in
+            cleaner.series.note_reading(newest)
         if adjusted is not None and outcomes[-1] is Outcome.ACCEPTED:
             outcomes[-1] = adjusted
         return outcomes
@@ -505,7 +509,11 @@ class Engine:
         tolerance of t: the same reading, re-stamped. `at` is t's place in the
         remembered times (bisect_left): the window's ends lie either side of it."""
         times, tol = dev.dedup_times, dev.clock_tolerance_s
-        lo = bisect.bisect_left(times, t - tol, 0, at)
+        # the window's start usually lies a few readings before t: search there first
+        start = at - SEQ_LOOKBACK
+        if start <= 0 or times[start] >= t - tol:
+            start = 0
+        lo = bisect.bisect_left(times, t - tol, start, at)
         hi = bisect.bisect_right(times, t + tol, at)
         return seq in dev.dedup_seqs[lo:hi]  # by ==: seq is never NO_SEQ (NaN)
 
