@@ -443,7 +443,7 @@ class Engine:
             effects.append(RejectedInput(now, topic, device_id, Outcome.ARTEFACT_DROPPED,
                                          _DETAIL_REVERTED))  # fmt: skip
         for o in outcomes:
-            if o is Outcome.SPIKE_HELD:
+            if o is _HELD:
                 continue  # pending: counted when the next reading settles it
             counts[o] += 1
             if o not in _SILENT:
@@ -1075,6 +1075,9 @@ class Engine:
         return out
 
 
+# Read for every reading: a module name is several times cheaper than an Enum class
+# attribute (the enum's metaclass defines __getattr__, so Outcome.X is never cached).
+_HELD = Outcome.SPIKE_HELD
 _NOT_IN_SERIES = frozenset(
     {
         Outcome.SPIKE_HELD,
