@@ -475,7 +475,8 @@ class Engine:
         if at < n and times[at] == t:
             same = dev.dedup_values[at] == r.raw_value
             return [Outcome.DUPLICATE if same else Outcome.CONFLICTING_DUPLICATE]
-        if r.seq is not None and self._seq_seen(dev, float(r.seq), t, at):
+        seq = NO_SEQ if r.seq is None else float(r.seq)
+        if r.seq is not None and self._seq_seen(dev, seq, t, at):
             return [Outcome.DUPLICATE]
         # which clock to believe
         adjusted: Outcome | None = None
@@ -487,7 +488,7 @@ class Engine:
             adjusted = Outcome.STORE_FORWARD
         if dev.latest_t is not None and t < dev.latest_t - dev.reorder_tolerance_s:
             return [Outcome.LATE]
-        self._remember(dev, r, at)
+        self._remember(dev, r, seq, at)
         cleaner = dev.cleaner
         assert cleaner is not None
         outcomes = cleaner.feed(t, r)
@@ -518,11 +519,10 @@ class Engine:
         return seq in dev.dedup_seqs[lo:hi]  # by ==: seq is never NO_SEQ (NaN)
 
     @staticmethod
-    def _remember(dev: _Device, r: Reading, at: int) -> None:
-        """Remember the reading at its place `at` in time order; forget, by device time,
-        what lies more than the horizon behind the newest."""
+    def _remember(dev: _Device, r: Reading, seq: float, at: int) -> None:
+        """Remember the reading (its seq as a float, or NO_SEQ) at its place `at` in time
+        order; forget, by device time, what lies more than the horizon behind the newest."""
         times, values, seqs = dev.dedup_times, dev.dedup_values, dev.dedup_seqs
-        seq = NO_SEQ if r.seq is None else float(r.seq)
         if at == len(times):  # the usual case: in order
             times.append(r.device_time)
             values.append(r.raw_value)
