@@ -24,6 +24,9 @@ JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval i
 # to near zero (an emptying if the next reading continues from it), and a reading back
 # on the level before a recent jump or fall (that jump or fall was an artefact).
 SPIKE, FALL, EMPTY, RETURN = "spike", "fall", "empty", "return"
+# The outcomes of nearly every reading, as module names: Outcome.X is a slow lookup
+# (the enum's metaclass defines __getattr__, so it is never cached)
+_ACCEPTED, _NOISE_FALL = Outcome.ACCEPTED, Outcome.NOISE_FALL
 
 
 @dataclass(slots=True)
@@ -307,11 +310,11 @@ class CumulativeCleaner:
             self.tail.append(_Point(t, v, v, v - level, True))
             state = MEASURED if t - prev_t <= self._max_gap else ESTIMATED
             self._put(prev_t, t, v - level, state)
-            outcome = Outcome.ACCEPTED
+            outcome = _ACCEPTED
         else:
             self.tail.append(_Point(t, v))
             self._refit()
-            outcome = Outcome.NOISE_FALL
+            outcome = _NOISE_FALL
         if len(self.tail) > self._tail_len:
             self._freeze()
         return outcome
