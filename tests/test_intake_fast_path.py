@@ -127,6 +127,18 @@ def test_the_plain_path_reads_every_payload_as_the_checked_path(payloads: list[A
         assert _read(fast, p) == _read(checked, p)
 
 
+@settings(max_examples=300)
+@given(payloads=st.lists(_payloads, min_size=1, max_size=12), text=st.booleans())
+def test_the_plain_path_reads_every_payload_sent_as_json_text_as_the_checked_path(
+    payloads: list[Any], text: bool
+) -> None:
+    """As a meter sends it: bytes (or text) that decode parses before either path reads it."""
+    fast, checked = Decoder(PROFILES["reference-cumulative"]), _checked("reference-cumulative")
+    for p in payloads:
+        raw = json.dumps(p) if text else json.dumps(p).encode()
+        assert _read(fast, raw) == _read(checked, raw)
+
+
 @given(payloads=st.lists(_payloads, min_size=1, max_size=30))
 def test_forgetting_remembered_times_changes_nothing(payloads: list[Any]) -> None:
     fast, checked = Decoder(PROFILES["reference-cumulative"]), _checked("reference-cumulative")
@@ -166,8 +178,16 @@ def test_the_usual_message_takes_the_plain_path() -> None:
     dec = Decoder(PROFILES["reference-cumulative"])
     p = {"device_id": DEVICE, "time": "2026-03-14T02:00:00Z", "volume_ml": 412.5, "seq": 1042}
     assert dec._plain is not None
-    assert dec._decode_plain(DEVICE, p, *dec._plain) is not None
+    assert dec._decode_plain(DEVICE, p) is not None
     assert dec._times == {"2026-03-14T02:00:00Z": 1773453600.0}
+
+
+def test_the_usual_message_as_bytes_takes_the_plain_path() -> None:
+    dec = Decoder(PROFILES["reference-cumulative"])
+    raw = b'{"device_id": "rc-0101", "time": "2026-03-14T02:05:00Z", "volume_ml": 1.5}'
+    checked = _checked("reference-cumulative")
+    assert repr(dec.decode(DEVICE, raw)) == repr(checked.decode(DEVICE, raw))
+    assert dec._times == {"2026-03-14T02:05:00Z": 1773453900.0}  # remembered: the plain path
 
 
 def test_long_times_are_not_remembered() -> None:
@@ -278,6 +298,35 @@ def _log_lines(draw: st.DrawFn) -> bytes:
     elif kind == 7:
         raw = draw(st.sampled_from([b"", b"   ", b"\t\r", b" " + raw + b" \r", raw + b"x"]))
     return raw
+
+
+def _parsed(parse: Any, text: str) -> str:
+    try:
+        return repr(parse(text))
+    except Exception as exc:
+        return f"raised {type(exc).__name__}"
+
+
+@settings(max_examples=300)
+@given(
+    text=st.one_of(
+        _json_values,
+        st.tuples(_json_values, st.sampled_from(["", " ", "\n", "x", "}", "{}", ",1"]),
+                  st.sampled_from(["", " ", "\t"])).map(lambda x: x[2] + x[0] + x[1]),
+        st.text(max_size=12).map("{".__add__),
+    )
+)
+def test_the_scanner_reads_json_text_as_the_decoder_does(text: str) -> None:
+    """decode's shortcut for an object with nothing around it: the same value, or the
+    same kind of refusal, as json's own decoder."""
+    assert _parsed(decode_module._json_text, text) == _parsed(decode_module._JSON, text)
+
+
+@pytest.mark.parametrize("text", ['{"a": }', '{"a": [}', '{"a": [1,]}', '{"a": x', "{",
+                                  '{"a":1,}', '{"a": 1} ', '{"a": 1}x', " {}", "{}", '{"a": NaN}'])
+def test_the_scanner_refuses_bad_json_as_the_decoder_does(text: str) -> None:
+    # the scanner alone says a missing value by StopIteration: it must not escape
+    assert _parsed(decode_module._json_text, text) == _parsed(decode_module._JSON, text)
 
 
 @settings(max_examples=200)

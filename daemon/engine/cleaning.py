@@ -24,6 +24,9 @@ JITTER_SHARE = 0.1  # interval meters: overlap up to this share of an interval i
 # to near zero (an emptying if the next reading continues from it), and a reading back
 # on the level before a recent jump or fall (that jump or fall was an artefact).
 SPIKE, FALL, EMPTY, RETURN = "spike", "fall", "empty", "return"
+# The outcomes of nearly every reading, as module names: Outcome.X is a slow lookup
+# (the enum's metaclass defines __getattr__, so it is never cached)
+_ACCEPTED, _NOISE_FALL = Outcome.ACCEPTED, Outcome.NOISE_FALL
 
 
 @dataclass(slots=True)
@@ -70,10 +73,12 @@ def isotonic_fit(values: list[float], floor: float) -> list[float]:
         counts.append(c)
     out: list[float] = []
     for s, c in zip(sums, counts, strict=True):
+        level = s if c == 1 else s / c
+        level = level if level > floor else floor  # max(floor, level), without the call
         if c == 1:
-            out.append(max(floor, s))
+            out.append(level)
         else:
-            out.extend([max(floor, s / c)] * c)
+            out.extend([level] * c)
     return out
 
 
@@ -159,7 +164,8 @@ class CumulativeCleaner:
         if held is not None:
             out.append(self._settle_held(t, r))
         out.append(self._next(t, r))
-        self._count(t, out[-1])
+        if self.provisional is not None:  # else nothing to count it against
+            self._count(t, out[-1])
         return out
 
     def _before_held(self, t: float, r: Reading) -> list[Outcome]:
@@ -207,7 +213,9 @@ class CumulativeCleaner:
         return Outcome.SPIKE_HELD
 
     def _implausible(self, t0: float, v0: float, t1: float, v1: float) -> bool:
-        dt = max(t1 - t0, self._min_dt)
+        dt = t1 - t0
+        if dt < self._min_dt:  # max(), without the call
+            dt = self._min_dt
         return (v1 - v0 - self._noise) > self._max_flow_s * dt
 
     def _continues(self, t0: float, v0: float, t1: float, v1: float) -> bool:
@@ -302,11 +310,11 @@ class CumulativeCleaner:
             self.tail.append(_Point(t, v, v, v - level, True))
             state = MEASURED if t - prev_t <= self._max_gap else ESTIMATED
             self._put(prev_t, t, v - level, state)
-            outcome = Outcome.ACCEPTED
+            outcome = _ACCEPTED
         else:
             self.tail.append(_Point(t, v))
             self._refit()
-            outcome = Outcome.NOISE_FALL
+            outcome = _NOISE_FALL
         if len(self.tail) > self._tail_len:
             self._freeze()
         return outcome

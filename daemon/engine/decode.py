@@ -29,7 +29,10 @@ from .timefmt import EPOCH_MAX_S, TimeError, parse_epoch, parse_iso
 Payload = bytes | str | dict[str, Any] | list[Any]
 
 _MISSING = object()
-_JSON = json.JSONDecoder().decode  # str only: skips json.loads' encoding sniffing
+_DECODER = json.JSONDecoder()
+_JSON = _DECODER.decode  # str only: skips json.loads' encoding sniffing
+# the decoder's own scanner (C): one value from an index (not in the type stubs)
+_SCAN: Callable[[str, int], tuple[Any, int]] = _DECODER.scan_once  # type: ignore[attr-defined]
 _EXACT_INT = 2**53  # ints up to this size survive the checked path's float() unchanged
 TIME_MEMO = 4096  # device times remembered per family (then forgotten all at once)
 TIME_MEMO_LEN = 40  # ... each at most this long: a hostile payload must not fill memory
@@ -129,6 +132,20 @@ def _text_number(value: Any) -> float | None:
     return f if math.isfinite(f) else None
 
 
+def _json_text(text: str) -> Any:
+    """`_JSON(text)`. The usual meter message, an object with nothing around it, is read
+    by the decoder's scanner alone: `_JSON` would also look for blanks before and after
+    it. Bad JSON raises what `_JSON` raises; anything else `_JSON` reads."""
+    if text[:1] == "{":
+        try:
+            obj, end = _SCAN(text, 0)
+        except StopIteration:  # a value missing inside it: `_JSON` says so as an error
+            return _JSON(text)
+        if end == len(text):
+            return obj
+    return _JSON(text)
+
+
 def _shown(value: Any) -> str:
     return repr(value)[:64]
 
@@ -187,12 +204,12 @@ class Decoder:
         self._times: dict[str, float] = {}
 
     def _parse(self, payload: Payload) -> Any | Rejected:
+        if self._json and isinstance(payload, dict):
+            return payload  # an object already (replay's log): never a withheld marker
         marked = withheld_reason(payload, DECODE_REJECTIONS)
         if marked is not None:
             return Rejected(marked, "payload withheld")
         if self._json:
-            if isinstance(payload, dict):
-                return payload
             if isinstance(payload, bytes):
                 try:
                     payload = payload.decode("utf-8")
@@ -201,7 +218,7 @@ class Decoder:
             if not isinstance(payload, str):
                 return Rejected(Outcome.BAD_PAYLOAD, "JSON payload is not an object")
             try:
-                obj = _JSON(payload)
+                obj = _json_text(payload)
             except (ValueError, RecursionError):
                 return Rejected(Outcome.BAD_PAYLOAD, "payload is not JSON")
             if not isinstance(obj, dict):
@@ -272,14 +289,14 @@ class Decoder:
         return head
 
     def decode(self, topic_device: str, payload: Payload) -> Reading | Rejected:
-        if self._plain is not None and type(payload) is dict:
-            reading = self._decode_plain(topic_device, payload, *self._plain)
-            if reading is not None:
-                return reading
         obj = self._parse(payload)
         if isinstance(obj, Rejected):
             obj.device_id = topic_device
             return obj
+        if self._plain is not None:  # a JSON family: obj is a dict
+            reading = self._decode_plain(topic_device, obj)
+            if reading is not None:
+                return reading
 
         device_id = topic_device
         if self._get_device is not None:
@@ -375,13 +392,12 @@ class Decoder:
             flag = flag or (raw_flag is not _MISSING and _truthy(raw_flag))
         return Reading(device_id, device_time, volume_ml, seq, flag, value)
 
-    def _decode_plain(
-        self, device: str, obj: dict[str, Any], device_key: str | None, time_key: str,
-        volume_key: str, seq_key: str | None,
-    ) -> Reading | None:  # fmt: skip
+    def _decode_plain(self, device: str, obj: dict[str, Any]) -> Reading | None:
         """The usual message of a family `_plain_keys` allows, read without the general
         accessors; None for anything unusual, which `decode`'s checked path then reads
         again and, if it is bad, says why. The same reading as the checked path."""
+        assert self._plain is not None
+        device_key, time_key, volume_key, seq_key = self._plain
         if device_key is not None:
             named = obj.get(device_key)
             if type(named) is not str or named.strip() != device:

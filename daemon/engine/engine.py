@@ -55,6 +55,7 @@ DEDUP_HORIZON_S = 86400.0  # readings remembered for duplicates: this far behind
 DEDUP_SLACK_S = 3600.0  # ... pruned once the oldest is this much further behind
 DEDUP_MAX = 16_384  # duplicate keys kept per device at most, whatever the device times
 NO_SEQ = math.nan  # a reading without a sequence number (equal to no other)
+SEQ_LOOKBACK = 8  # remembered readings searched first for a seq's window (then all)
 ADVICE_FRESH_S = 2 * 3600.0  # older advice is not attached to a page
 # Bed ids, ward names and acknowledging users: letters, digits, '-', '_' and '.', up to
 # 64 characters. No spaces, no MQTT separators or wildcards; a site that wants another
@@ -282,7 +283,9 @@ class Engine:
     # --- inbound -------------------------------------------------------------
     def step(self, topic: str, payload: Payload, now: datetime | float) -> list[Effect]:
         """One inbound message, received at `now`."""
-        return self.step_at(topic, payload, as_epoch(now))
+        t_now = now if type(now) is float else as_epoch(now)  # epoch seconds: as they are
+        effects = self._step(topic, payload, t_now)  # step_at, one call less
+        return self._finish(effects) if effects else []
 
     def step_at(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         """`step` at epoch seconds (replay's clock)."""
@@ -292,7 +295,8 @@ class Engine:
     def _step(self, topic: str, payload: Payload, t_now: float) -> list[Effect]:
         route = self._route_cache.get(topic)
         if route:  # a meter topic heard before (bed and ack topics are never in the cache)
-            return self._meter_message(topic, route[1], route[0], payload, t_now, route[2])
+            decoder, device_id, labels = route
+            return self._meter_message(topic, device_id, decoder, payload, t_now, labels)
         if topic.startswith(self._bed_topic):
             return self._bed_message(topic, payload, t_now)
         if topic == self._ack_topic:
@@ -408,27 +412,28 @@ class Engine:
                                      (), labels)  # fmt: skip
                 self.observe(trace)
             return [RejectedInput(now, topic, device_id, Outcome.UNBOUND, "device not on any bed")]
+        cleaner, bed_id = dev.cleaner, dev.bed  # a cleaner is made for a meter on a bed
         outcomes = self._clean(dev, result, now)
-        sanity.cleaned(now, result.device_time, result.volume_ml, outcomes[-1])
-        revised = dev.cleaner.take_revised() if isinstance(dev.cleaner, CumulativeCleaner) else []
-        if outcomes[-1] in COUNTED_IN_SERIES:  # a usable reading: the meter sees
+        last = outcomes[-1]
+        sanity.cleaned(now, result.device_time, result.volume_ml, last)
+        revised = cleaner.take_revised() if isinstance(cleaner, CumulativeCleaner) else []
+        if last in COUNTED_IN_SERIES:  # a usable reading: the meter sees
             dev.last_usable = now
             if dev.sent_since:
                 dev.sent_since.clear()
             dev.bag_ml = result.volume_ml
         else:
-            dev.sent_since[outcomes[-1]] += 1
-        if dev.bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
+            dev.sent_since[last] += 1
+        bed = self.beds[bed_id] if bed_id is not None else None
+        if bed is not None and (revised or not _PLAIN.issuperset(outcomes)):
             # volume beyond the plain per-minute bound, or moved between minutes:
             # no rule may rely on having proved itself quiet
-            self.beds[dev.bed].forget_quiet()
+            bed.forget_quiet()
         if self.observe is not None:
-            self.observe(ReadingTrace(now, topic, device_id, dev.bed, result.device_time,
+            self.observe(ReadingTrace(now, topic, device_id, bed_id, result.device_time,
                                       result.volume_ml, result.seq, tuple(outcomes),
                                       tuple(revised), labels))  # fmt: skip
-        effects: list[Effect] = []
-        if dev.bed is not None:
-            effects += self._after_reading(self.beds[dev.bed], now)
+        effects = self._after_reading(bed, now) if bed is not None else []
         counts = dev.quality.counts
         for _, was in revised:  # counted before; an artefact after all
             counts[was] -= 1
@@ -438,7 +443,7 @@ class Engine:
             effects.append(RejectedInput(now, topic, device_id, Outcome.ARTEFACT_DROPPED,
                                          _DETAIL_REVERTED))  # fmt: skip
         for o in outcomes:
-            if o is Outcome.SPIKE_HELD:
+            if o is _HELD:
                 continue  # pending: counted when the next reading settles it
             counts[o] += 1
             if o not in _SILENT:
@@ -464,11 +469,14 @@ class Engine:
         t = r.device_time
         # duplicates first, so a redelivery a day later still counts as a duplicate
         times = dev.dedup_times
-        at = bisect.bisect_left(times, t)
-        if at < len(times) and times[at] == t:
+        n = len(times)
+        # the usual reading is newer than every one remembered: no search for its place
+        at = n if not n or times[-1] < t else bisect.bisect_left(times, t)
+        if at < n and times[at] == t:
             same = dev.dedup_values[at] == r.raw_value
             return [Outcome.DUPLICATE if same else Outcome.CONFLICTING_DUPLICATE]
-        if r.seq is not None and self._seq_seen(dev, float(r.seq), t):
+        seq = NO_SEQ if r.seq is None else float(r.seq)
+        if r.seq is not None and self._seq_seen(dev, seq, t, at):
             return [Outcome.DUPLICATE]
         # which clock to believe
         adjusted: Outcome | None = None
@@ -480,36 +488,41 @@ class Engine:
             adjusted = Outcome.STORE_FORWARD
         if dev.latest_t is not None and t < dev.latest_t - dev.reorder_tolerance_s:
             return [Outcome.LATE]
-        self._remember(dev, r, at)
-        assert dev.cleaner is not None
-        outcomes = dev.cleaner.feed(t, r)
+        self._remember(dev, r, seq, at)
+        cleaner = dev.cleaner
+        assert cleaner is not None
+        outcomes = cleaner.feed(t, r)
         # a refused reading must not move the lateness horizon (a held one does)
         if outcomes[-1] not in _REFUSED and (dev.latest_t is None or t > dev.latest_t):
             dev.latest_t = t
-        bed = self.beds[dev.bed] if dev.bed else None
-        newest = dev.cleaner.last_t
-        if bed is not None and newest is not None:
-            # the newest reading in the series: this one, or a held one it let in
-            bed.series.note_reading(newest)
+        newest = cleaner.last_t
+        if newest is not None:
+            # the newest reading in the series (its bed's: see _attach): this one, or
+            # a held one it let in
+            cleaner.series.note_reading(newest)
         if adjusted is not None and outcomes[-1] is Outcome.ACCEPTED:
             outcomes[-1] = adjusted
         return outcomes
 
     @staticmethod
-    def _seq_seen(dev: _Device, seq: float, t: float) -> bool:
+    def _seq_seen(dev: _Device, seq: float, t: float, at: int) -> bool:
         """A remembered reading with this seq and a device time within the clock
-        tolerance of t: the same reading, re-stamped."""
+        tolerance of t: the same reading, re-stamped. `at` is t's place in the
+        remembered times (bisect_left): the window's ends lie either side of it."""
         times, tol = dev.dedup_times, dev.clock_tolerance_s
-        lo = bisect.bisect_left(times, t - tol)
-        hi = bisect.bisect_right(times, t + tol, lo)
+        # the window's start usually lies a few readings before t: search there first
+        start = at - SEQ_LOOKBACK
+        if start <= 0 or times[start] >= t - tol:
+            start = 0
+        lo = bisect.bisect_left(times, t - tol, start, at)
+        hi = bisect.bisect_right(times, t + tol, at)
         return seq in dev.dedup_seqs[lo:hi]  # by ==: seq is never NO_SEQ (NaN)
 
     @staticmethod
-    def _remember(dev: _Device, r: Reading, at: int) -> None:
-        """Remember the reading at its place `at` in time order; forget, by device time,
-        what lies more than the horizon behind the newest."""
+    def _remember(dev: _Device, r: Reading, seq: float, at: int) -> None:
+        """Remember the reading (its seq as a float, or NO_SEQ) at its place `at` in time
+        order; forget, by device time, what lies more than the horizon behind the newest."""
         times, values, seqs = dev.dedup_times, dev.dedup_values, dev.dedup_seqs
-        seq = NO_SEQ if r.seq is None else float(r.seq)
         if at == len(times):  # the usual case: in order
             times.append(r.device_time)
             values.append(r.raw_value)
@@ -839,6 +852,8 @@ class Engine:
 
     def _after_reading(self, bed: BedState, now: float) -> list[Effect]:
         """Rules on windows change only when the latest minute moves on."""
+        if not self.rules:
+            return []  # an intake-only engine (replay without rules, the probe)
         latest = bed.series.latest_minute()
         prev = bed.last_eval_minute
         if latest is None or latest == prev:
@@ -1060,6 +1075,9 @@ class Engine:
         return out
 
 
+# Read for every reading: a module name is several times cheaper than an Enum class
+# attribute (the enum's metaclass defines __getattr__, so Outcome.X is never cached).
+_HELD = Outcome.SPIKE_HELD
 _NOT_IN_SERIES = frozenset(
     {
         Outcome.SPIKE_HELD,

@@ -135,29 +135,27 @@ class MinuteSeries:
     def spread(self, t0: float, t1: float, volume: float, state: int) -> None:
         """Attribute `volume` evenly over (t0, t1]; a zero-length span lands in t1's minute."""
         if t1 <= t0:
-            m = math.floor(t1 / 60.0)
-            i = self._slot(m, m)
-            self._vol_nl[i] += nanolitres(volume)
-            if self._state[i] < state:
-                self._state[i] = state
-            return
-        m0 = math.floor(t0 / 60.0)
-        m1 = math.ceil(t1 / 60.0) - 1  # last minute with positive overlap
+            m0 = m1 = math.floor(t1 / 60.0)
+        else:
+            m0 = math.floor(t0 / 60.0)
+            m1 = math.ceil(t1 / 60.0) - 1  # last minute with positive overlap
         i0 = self._slot(m0, m1)
         vol, st = self._vol_nl, self._state
+        # round(x * NL_PER_ML) is nanolitres(x), written out: this runs for every reading
         if m0 == m1:
-            vol[i0] += nanolitres(volume)
+            vol[i0] += round(volume * NL_PER_ML)
             if st[i0] < state:
                 st[i0] = state
             return
         i1 = i0 + (m1 - m0)
         rate = volume / (t1 - t0)
         # first and last minutes are partial, the ones between are whole
-        vol[i0] += nanolitres(rate * ((m0 + 1) * 60.0 - t0))
-        vol[i1] += nanolitres(rate * (t1 - m1 * 60.0))
-        whole = nanolitres(rate * 60.0)
-        for i in range(i0 + 1, i1):
-            vol[i] += whole
+        vol[i0] += round(rate * ((m0 + 1) * 60.0 - t0) * NL_PER_ML)
+        vol[i1] += round(rate * (t1 - m1 * 60.0) * NL_PER_ML)
+        if i1 > i0 + 1:
+            whole = round(rate * 60.0 * NL_PER_ML)
+            for i in range(i0 + 1, i1):
+                vol[i] += whole
         for i in range(i0, i1 + 1):
             if st[i] < state:
                 st[i] = state
