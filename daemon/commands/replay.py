@@ -232,6 +232,8 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
 
     profiles = load_profiles(args.profiles)
     rules = load_rules(args.rules)
+    if args.plots is not None:  # before the replay, which may take a while
+        _writable_folder(args.plots)
     rv = review(
         args.log,
         profiles,
@@ -254,7 +256,10 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
     def bar(items: list[BedPicture]) -> Iterator[BedPicture]:
         return with_progress(items, len(items), "plots", sys.stderr, every=1)
 
-    text = html_report.render(inp, progress=bar, plots_dir=args.plots)
+    try:
+        text = html_report.render(inp, progress=bar, plots_dir=args.plots)
+    except OSError as exc:  # a plot file that cannot be written
+        raise UserError(f"{args.plots}: cannot write a plot: {exc.strerror}") from None
     try:
         html_report.write(args.report, text)
     except OSError as exc:
@@ -266,6 +271,13 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
         f"{raised} alarm(s) raised.\n{CAUTION}"
     )
     return 0
+
+
+def _writable_folder(folder: Path) -> None:
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"{folder}: cannot make the plots folder: {exc.strerror}") from None
 
 
 def _compare(args: argparse.Namespace, until: float | None) -> int:
