@@ -5,6 +5,8 @@ a reader cannot use, readings left out of an explanation). All data is invented
 
 from __future__ import annotations
 
+import json
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import pytest
@@ -28,3 +30,66 @@ def test_a_plots_folder_that_cannot_be_made_is_one_line_and_exit_2(
     err = capsys.readouterr().err
     assert rc == 2
     assert len(err.strip().splitlines()) == 1 and "plots" in err, err
+
+
+def _faulty_meter_night(path: Path) -> Path:
+    """INVENTED: one bed on a nested-telemetry meter (120-s period) that reports normally
+    for 30 min, then sends only fault status messages for 16 min, then recovers."""
+    t0 = datetime(2026, 3, 14, 6, 0, tzinfo=UTC)  # invented
+    lines = [
+        {
+            "time": _iso(t0 - timedelta(minutes=1)),
+            "topic": "hourwatch/beds/bed-f1/context",
+            "payload": {
+                "schema": 1,
+                "ward": "review-test",
+                "device_ids": ["nt-f101"],
+                "weight_kg": 80.0,
+                "weight_basis": "actual",
+            },
+        }
+    ]
+    for n in range(0, 31):
+        t = t0 + timedelta(minutes=2 * n)
+        fault = 15 <= n < 23
+        lines.append(
+            {
+                "time": _iso(t),
+                "topic": "bedside/nt-f101/telemetry",
+                "payload": {
+                    "hdr": {"ts_ms": int(t.timestamp() * 1000), "dev": "nt-f101", "n": n + 1},
+                    "uo": {"cum": round(0.002 * n, 4), "unit": "L"},  # 60 mL/h, invented
+                    "status": {"state": "fault" if fault else "run", "bag_swap": False},
+                },
+            }
+        )
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    return path
+
+
+def _iso(t: datetime) -> str:
+    return t.strftime("%Y-%m-%dT%H:%M:%S.000Z")
+
+
+def _alarm_ids(log: Path, capsys: pytest.CaptureFixture[str], rule: str) -> list[str]:
+    assert main(["replay", str(log), "--json"]) == 0
+    rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    return sorted({r["alarm_id"] for r in rows if r.get("type") == "alarm" and r["rule"] == rule})
+
+
+def test_evidence_without_a_window_reads_as_plain_words_not_python_reprs(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    log = _faulty_meter_night(tmp_path / "faulty.jsonl")
+    ids = _alarm_ids(log, capsys, "meter-offline")
+    assert len(ids) == 1
+    assert main(["explain", str(log), ids[0]]) == 0
+    text = capsys.readouterr().out
+    assert "device_fault" in text
+    assert "<Outcome." not in text, text
+    out = tmp_path / "faulty.html"
+    assert main(["replay", str(log), "--report", str(out)]) == 0
+    capsys.readouterr()
+    page = out.read_text(encoding="utf-8")
+    assert "device_fault" in page
+    assert "&lt;Outcome." not in page and "<Outcome." not in page

@@ -8,6 +8,7 @@ beside the numbers the alarm event carried; they must be the same.
 
 from __future__ import annotations
 
+import json
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -466,6 +467,13 @@ def _suppression(rule: RuleDef | None, m: Moment, ep: Episode) -> dict[str, Any]
 # --- text ------------------------------------------------------------------------
 
 
+def evidence_value(v: Any) -> str:
+    """An evidence value as the JSON output gives it: an event from a log holds the
+    engine's enums (a Python repr would show `<Outcome.DEVICE_FAULT: ...>`), one read
+    back from a journal plain strings; both read the same."""
+    return v if isinstance(v, str) else json.dumps(v, ensure_ascii=False, default=str)
+
+
 def _when(text: str | None) -> str:
     return "-" if text is None else text[:19].replace("T", " ")
 
@@ -540,7 +548,7 @@ def text(d: dict[str, Any]) -> list[str]:
     else:
         lines.append("Evidence (this rule looks at no output window):")
         for k, v in d["event_evidence"].items():
-            lines.append(f"  {k}: {v}")
+            lines.append(f"  {k}: {evidence_value(v)}")
     lines.append("")
     readings = d.get("readings")
     if readings is not None:
