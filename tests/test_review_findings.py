@@ -12,7 +12,11 @@ from pathlib import Path
 import pytest
 
 from daemon.cli import main
-from tests.reviewtools import write_night
+from daemon.engine.timefmt import iso
+from daemon.profile_files import load_profiles
+from daemon.review.explain import explain
+from daemon.rule_files import load_policy, load_rules
+from tests.reviewtools import alarm_events, first_active, write_night
 
 
 @pytest.fixture(scope="module")
@@ -93,3 +97,46 @@ def test_evidence_without_a_window_reads_as_plain_words_not_python_reprs(
     page = out.read_text(encoding="utf-8")
     assert "device_fault" in page
     assert "&lt;Outcome." not in page and "<Outcome." not in page
+
+
+def _half_minute_night(path: Path) -> Path:
+    """INVENTED: one bed after a relieved obstruction, a reference-cumulative meter whose
+    clock reads half a minute past each minute, a steady 600 mL/h (10 mL a reading)."""
+    t0 = datetime(2026, 3, 14, 6, 0, 30, tzinfo=UTC)  # invented
+    relieved = _iso(t0 - timedelta(hours=2))
+    ctx = {
+        "ward": "review-test",
+        "device_ids": ["rc-h101"],
+        "weight_kg": 80.0,
+        "weight_basis": "actual",
+        "episodes": [{"kind": "obstruction_relieved", "at": relieved}],
+    }
+    lines = [{"time": _iso(t0 - timedelta(minutes=2)), "topic": "hourwatch/beds/bed-h1/context",
+              "payload": ctx}]  # fmt: skip
+    for n in range(150):
+        t = t0 + timedelta(minutes=n)
+        reading = {"time": _iso(t), "volume_ml": 10.0 * n, "device_id": "rc-h101", "seq": n + 1}
+        lines.append({"time": _iso(t), "topic": "meters/rc-h101/volume", "payload": reading})
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    return path
+
+
+def test_the_reading_that_completed_the_window_is_listed_among_those_that_fed_it(
+    tmp_path: Path,
+) -> None:
+    # A window (from, to] ends at the minute before the newest reading, and the volume
+    # between the reading before `to` and the newest one is spread over the minutes up
+    # to it: the newest reading (the one that made the alarm fire) fed the window's last
+    # half minute, and a reader of "the readings that fed these windows" needs it. So
+    # did the reading just after the older window's end.
+    log = _half_minute_night(tmp_path / "half.jsonl")
+    event = first_active(alarm_events(log), "bed-h1", "pod-hourly")
+    d = explain(log, event.alarm_id, load_profiles(), load_rules(), load_policy())
+    older, newest = d["windows"]
+    by_time = {r["time_used"]: r for r in d["readings"]}
+    trigger = by_time.get(iso(event.time))
+    assert trigger is not None, sorted(by_time)[-3:]
+    assert trigger["counted"] and trigger["time_used"] > newest["to"]
+    assert newest["label"] in trigger["windows"]
+    after_older = min(t for t in by_time if t > older["to"])
+    assert older["label"] in by_time[after_older]["windows"]

@@ -8,6 +8,7 @@ beside the numbers the alarm event carried; they must be the same.
 
 from __future__ import annotations
 
+import bisect
 import json
 import re
 from collections.abc import Callable
@@ -363,14 +364,30 @@ def _event_json(e: AlarmEvent) -> dict[str, Any]:
 
 
 def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict[str, Any]]:
-    """Readings of the bed's meters that fall inside the evaluated windows (or, for a
-    rule without windows, in the hour before the moment), with their outcome."""
+    """Readings of the bed's meters that fed the evaluated windows (or, for a rule
+    without windows, in the hour before the moment), with their outcome.
+
+    A counted reading fed every window its volume was spread over: from the meter's
+    counted reading before it to its own time (DESIGN §3), so the first reading after
+    a window's end fed the window's last minutes. Any other reading is listed where its
+    time falls."""
     traces = m.traces or []
     spans = [f.span for f in m.windows] if m.windows else [(m.time - 3600.0, m.time)]
+    counted: dict[str, list[float]] = {}
+    for tr, outcome in traces:
+        if outcome in COUNTED:
+            counted.setdefault(tr.device_id, []).append(effective_time(tr))
+    for times in counted.values():
+        times.sort()
     out: list[dict[str, Any]] = []
     for i, (tr, outcome) in enumerate(traces):
         t = effective_time(tr)
-        inside = [f.label for f in m.windows if f.span[0] < t <= f.span[1]]
+        t0 = t
+        if outcome in COUNTED and m.windows:
+            times = counted[tr.device_id]
+            k = bisect.bisect_left(times, t)
+            t0 = times[k - 1] if k > 0 else t
+        inside = [f.label for f in m.windows if _fed(f.span, t0, t)]
         if not inside and not any(a < t <= b for a, b in spans):
             continue
         later = final[i][1] if i < len(final) else outcome
@@ -393,6 +410,12 @@ def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict
             row["also_settled_previous_as"] = str(tr.outcomes[0])
         out.append(row)
     return out
+
+
+def _fed(span: tuple[float, float], t0: float, t: float) -> bool:
+    """Does a reading spread over (t0, t] (a point when t0 == t) reach window (a, b]?"""
+    a, b = span
+    return a < t <= b if t0 >= t else t0 < b and a < t
 
 
 def explanation(rv: Review, ep: Episode, with_readings: bool = False) -> dict[str, Any]:
