@@ -140,3 +140,21 @@ def test_the_reading_that_completed_the_window_is_listed_among_those_that_fed_it
     assert newest["label"] in trigger["windows"]
     after_older = min(t for t in by_time if t > older["to"])
     assert older["label"] in by_time[after_older]["windows"]
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [
+        ["replay", "postgresql://"],
+        ["replay", "postgresql://x@[::1"],
+        ["explain", "postgresql://hourwatch@db:5432", "bed-1/pod-hourly/20260314T083825Z"],
+        ["export", "postgresql://", "--from", "2026-03-14T00:00Z", "--to", "2026-03-15T00:00Z"],
+    ],
+)
+def test_a_malformed_postgresql_url_is_one_line_and_exit_2(
+    argv: list[str], capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    # (the URL is not echoed: it might carry a password)
+    assert len(err.strip().splitlines()) == 1 and "journal" in err, err
