@@ -158,3 +158,16 @@ def test_a_malformed_postgresql_url_is_one_line_and_exit_2(
     err = capsys.readouterr().err
     # (the URL is not echoed: it might carry a password)
     assert len(err.strip().splitlines()) == 1 and "journal" in err, err
+
+
+def test_a_binary_file_given_as_the_log_is_one_line_and_exit_2(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # a program or an image, not a log: thousands of "line N: skipped: not JSON" would
+    # bury the one thing to say
+    blob = tmp_path / "night.jsonl"
+    blob.write_bytes(b"\x7fELF\x02\x01\x01\x00" + bytes(range(256)) * 400)
+    for argv in (["replay", str(blob)], ["replay", str(blob), "--hourly", "--json"]):
+        assert main(argv) == 2
+        err = capsys.readouterr().err
+        assert len(err.strip().splitlines()) == 1 and "binary" in err, err
