@@ -14,9 +14,19 @@ import pytest
 from daemon.cli import main
 from daemon.engine.timefmt import iso
 from daemon.profile_files import load_profiles
+from daemon.review.acks import AckCarrier
+from daemon.review.episodes import episodes
 from daemon.review.explain import explain
+from daemon.review.recorder import replay_alarms
+from daemon.rule_files import BUNDLED as BUNDLED_RULES
 from daemon.rule_files import load_policy, load_rules
-from tests.reviewtools import alarm_events, first_active, write_night
+from tests.reviewtools import (
+    ACK_BY,
+    alarm_events,
+    first_active,
+    raised_pod_threshold,
+    write_night,
+)
 
 
 @pytest.fixture(scope="module")
@@ -171,3 +181,29 @@ def test_a_binary_file_given_as_the_log_is_one_line_and_exit_2(
         assert main(argv) == 2
         err = capsys.readouterr().err
         assert len(err.strip().splitlines()) == 1 and "binary" in err, err
+
+
+def test_a_what_if_applies_the_recorded_acknowledgement_to_its_own_alarm(
+    night: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The invented night's nurse acknowledges bed-sev's pod-hourly alarm 20 min after it
+    # fires (tests/reviewtools.py). With the threshold raised to 250 mL/h (an invented
+    # what-if; the default 200 is Halbgewachs & Domes, Can Fam Physician 2015) the same
+    # alarm starts 5 min later under another id; the acknowledgement must still stop it,
+    # or B counts escalations the nurse had stopped and a higher threshold looks like
+    # more pages.
+    raised = raised_pod_threshold(tmp_path, 250)
+    assert main(["replay", str(night), "--compare", str(raised), "--json"]) == 0
+    c = json.loads(capsys.readouterr().out)
+    assert c["recorded_acks"]["a"] == {"carried": 0, "unmatched": 0}
+    assert c["recorded_acks"]["b"] == {"carried": 1, "unmatched": 0}
+    rec, _ = replay_alarms(
+        night, load_profiles(), load_rules(raised), load_policy(raised), acks=AckCarrier()
+    )
+    sev = [e for e in episodes(rec.events) if e.bed == "bed-sev" and e.rule == "pod-hourly"]
+    assert len(sev) == 1 and [a.by for a in sev[0].acks] == [ACK_BY]
+    # the rule set against itself: nothing is carried, the night replays as recorded
+    assert main(["replay", str(night), "--compare", str(BUNDLED_RULES), "--json"]) == 0
+    same = json.loads(capsys.readouterr().out)
+    assert same["recorded_acks"]["b"] == {"carried": 0, "unmatched": 0}
+    assert same["differences"] == 0

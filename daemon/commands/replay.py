@@ -283,6 +283,7 @@ def _writable_folder(folder: Path) -> None:
 def _compare(args: argparse.Namespace, until: float | None) -> int:
     from ..review import compare as what_if
     from ..review import verdicts
+    from ..review.acks import AckCarrier
     from ..review.episodes import episodes
     from ..review.recorder import replay_alarms, warn_about
 
@@ -301,6 +302,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
     adv_b = load_advice(args.compare) if args.compare else adv_a
     sides = (("A", prof_a, rules_a, pol_a, adv_a, label_a),
              ("B", prof_b, rules_b, pol_b, adv_b, label_b))  # fmt: skip
+    carriers = {"a": AckCarrier(), "b": AckCarrier()}
     for name, prof, rules, pol, adv, label in sides:
         rec, res = replay_alarms(
             args.log,
@@ -311,6 +313,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
             label=f"replay {name}",
             until=until,
             advice=adv,
+            acks=carriers[name.lower()],
         )
         warn_about(res, args.log, sys.stderr if name == "A" else None)
         bound = {b: s.bound_at for b, s in res.engine.beds.items()}
@@ -322,6 +325,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
         print(f"{store}: annotations not read: {exc}", file=sys.stderr)
         anns = []
     c = what_if.compare(runs[0], runs[1], anns)
+    c["recorded_acks"] = {k: v.counts() for k, v in carriers.items()}
     lines = what_if.text(c)
     if args.json:
         sys.stdout.write(json.dumps(c) + "\n")
