@@ -121,8 +121,13 @@ def _half_minute_night(path: Path) -> Path:
         "weight_basis": "actual",
         "episodes": [{"kind": "obstruction_relieved", "at": relieved}],
     }
-    lines = [{"time": _iso(t0 - timedelta(minutes=2)), "topic": "hourwatch/beds/bed-h1/context",
-              "payload": ctx}]  # fmt: skip
+    lines = [
+        {
+            "time": _iso(t0 - timedelta(minutes=2)),
+            "topic": "hourwatch/beds/bed-h1/context",
+            "payload": ctx,
+        }
+    ]
     for n in range(150):
         t = t0 + timedelta(minutes=n)
         reading = {"time": _iso(t), "volume_ml": 10.0 * n, "device_id": "rc-h101", "seq": n + 1}
@@ -207,3 +212,61 @@ def test_a_what_if_applies_the_recorded_acknowledgement_to_its_own_alarm(
     same = json.loads(capsys.readouterr().out)
     assert same["recorded_acks"]["b"] == {"carried": 0, "unmatched": 0}
     assert same["differences"] == 0
+
+
+def _balance_night(path: Path) -> Path:
+    """INVENTED: one 70 kg bed with no episode marker, a steady 400 mL/h on a
+    reference-cumulative meter, and one documented 100 mL intake: the 6-h fluid balance
+    falls below -15 mL/kg while the hour stays above 200 mL."""
+    t0 = datetime(2026, 3, 14, 6, 0, 30, tzinfo=UTC)  # invented
+    ctx = {
+        "ward": "review-test",
+        "device_ids": ["rc-v101"],
+        "weight_kg": 70.0,
+        "weight_basis": "actual",
+    }
+    lines = [
+        {
+            "time": _iso(t0 - timedelta(minutes=2)),
+            "topic": "hourwatch/beds/bed-v1/context",
+            "payload": ctx,
+        }
+    ]
+    for n in range(4 * 60):
+        t = t0 + timedelta(minutes=n)
+        reading = {
+            "time": _iso(t),
+            "volume_ml": round(400 / 60 * n, 1),
+            "device_id": "rc-v101",
+            "seq": n + 1,
+        }
+        lines.append({"time": _iso(t), "topic": "meters/rc-v101/volume", "payload": reading})
+    intake = {"time": _iso(t0 + timedelta(minutes=30)), "volume_ml": 100, "fluid": "0.9% NaCl"}
+    lines.append(
+        {
+            "time": _iso(t0 + timedelta(minutes=31)),
+            "topic": "hourwatch/beds/bed-v1/intake",
+            "payload": intake,
+        }
+    )
+    lines.sort(key=lambda x: str(x["time"]))
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    return path
+
+
+def test_explain_text_shows_the_evidence_beside_the_windows(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # hypovolaemia-risk fired on the fluid balance (alarm below -15 mL/kg over 6 h:
+    # Hourwatch's own threshold, alert_rules/hypovolaemia-risk.toml): the balance that
+    # decided it is in the event's evidence, and a reviewer reading the text must see it
+    log = _balance_night(tmp_path / "balance.jsonl")
+    ids = _alarm_ids(log, capsys, "hypovolaemia-risk")
+    assert len(ids) == 1
+    assert main(["explain", str(log), ids[0], "--json"]) == 0
+    ev = json.loads(capsys.readouterr().out)["event_evidence"]
+    assert ev["balance_low"] and ev["balance_ml_kg"] < -15.0
+    assert main(["explain", str(log), ids[0]]) == 0
+    text = capsys.readouterr().out
+    assert f"net_balance_ml: {ev['net_balance_ml']}" in text, text
+    assert f"balance_ml_kg: {ev['balance_ml_kg']}" in text

@@ -490,6 +490,13 @@ def _suppression(rule: RuleDef | None, m: Moment, ep: Episode) -> dict[str, Any]
 # --- text ------------------------------------------------------------------------
 
 
+def _window_like(v: Any) -> bool:
+    """A window of the event's evidence (shown above, recomputed), or a list of them."""
+    if isinstance(v, list):
+        return bool(v) and all(_window_like(x) for x in v)
+    return isinstance(v, dict) and "length_min" in v
+
+
 def evidence_value(v: Any) -> str:
     """An evidence value as the JSON output gives it: an event from a log holds the
     engine's enums (a Python repr would show `<Outcome.DEVICE_FAULT: ...>`), one read
@@ -568,6 +575,12 @@ def text(d: dict[str, Any]) -> list[str]:
                         f"    {row['evidence_key']}: event {row['event']} "
                         f"recomputed {row['recomputed']}"
                     )
+        # what the windows do not show (a fluid balance, vital signs, a rate), as the
+        # event holds it
+        rest = {k: v for k, v in d["event_evidence"].items() if not _window_like(v)}
+        if rest:
+            lines.append("  the alarm event's other evidence:")
+            lines += [f"    {k}: {evidence_value(v)}" for k, v in rest.items()]
     else:
         lines.append("Evidence (this rule looks at no output window):")
         for k, v in d["event_evidence"].items():
