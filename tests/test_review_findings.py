@@ -270,3 +270,17 @@ def test_explain_text_shows_the_evidence_beside_the_windows(
     text = capsys.readouterr().out
     assert f"net_balance_ml: {ev['net_balance_ml']}" in text, text
     assert f"balance_ml_kg: {ev['balance_ml_kg']}" in text
+
+
+def test_an_until_before_the_last_message_is_said_not_silently_ignored(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # --until runs the clock on past the last line; given a time inside the log it did
+    # nothing, silently, and a reviewer asking for the night "until 07:00" got all of it
+    log = _half_minute_night(tmp_path / "half.jsonl")  # 06:00:30 .. 08:29:30, invented
+    for extra in ([], ["--hourly"], ["--compare", str(BUNDLED_RULES)]):
+        assert main(["replay", str(log), "--until", "2026-03-14T07:00:00Z", *extra]) == 0
+        err = capsys.readouterr().err
+        assert "--until" in err and "before the last message" in err, (extra, err)
+    assert main(["replay", str(log), "--until", "2026-03-14T09:00:00Z"]) == 0
+    assert "--until" not in capsys.readouterr().err

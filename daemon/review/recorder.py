@@ -30,7 +30,7 @@ from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
 from ..journal_api import JournalTarget
 from ..logfile import BadLine, LogRecord
-from ..replay import ReplayResult, drive
+from ..replay import ReplayResult, drive, until_words
 from ..sources import open_source
 
 if TYPE_CHECKING:
@@ -297,6 +297,8 @@ def warn_about(
             "line before; replayed at the earlier line's time",
             file=stream,
         )
+    if result.until_before_end:
+        print(until_words(path, *result.until_before_end), file=stream)
 
 
 def replay_alarms(
