@@ -284,3 +284,49 @@ def test_an_until_before_the_last_message_is_said_not_silently_ignored(
         assert "--until" in err and "before the last message" in err, (extra, err)
     assert main(["replay", str(log), "--until", "2026-03-14T09:00:00Z"]) == 0
     assert "--until" not in capsys.readouterr().err
+
+
+def _silent_meter_night(path: Path) -> Path:
+    """INVENTED: one bed on a reference-cumulative meter (60-s period) that reports for
+    an hour at 60 mL/h and then falls silent: the log ends with the last reading."""
+    t0 = datetime(2026, 3, 14, 6, 0, 30, tzinfo=UTC)  # invented
+    ctx = {
+        "ward": "review-test",
+        "device_ids": ["rc-s101"],
+        "weight_kg": 80.0,
+        "weight_basis": "actual",
+    }
+    lines = [
+        {
+            "time": _iso(t0 - timedelta(minutes=2)),
+            "topic": "hourwatch/beds/bed-s1/context",
+            "payload": ctx,
+        }
+    ]
+    for n in range(61):
+        t = t0 + timedelta(minutes=n)
+        reading = {"time": _iso(t), "volume_ml": float(n), "device_id": "rc-s101", "seq": n + 1}
+        lines.append({"time": _iso(t), "topic": "meters/rc-s101/volume", "payload": reading})
+    path.write_text("".join(json.dumps(x) + "\n" for x in lines))
+    return path
+
+
+def test_an_alarm_raised_after_the_last_message_can_be_explained_and_annotated(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # `replay --until` lists the meter-offline alarm that falls due after the log's last
+    # line (a silent meter: the very alarm a reviewer of a night is asked about), so
+    # explain and annotate must be able to reach it too
+    log = _silent_meter_night(tmp_path / "silent.jsonl")
+    until = "2026-03-14T08:00:00Z"
+    assert main(["replay", str(log), "--until", until, "--json"]) == 0
+    rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    ids = sorted({r["alarm_id"] for r in rows if r.get("rule") == "meter-offline"})
+    assert len(ids) == 1
+    # without --until it is not there: the refusal says what to add
+    assert main(["explain", str(log), ids[0]]) == 2
+    assert "--until" in capsys.readouterr().err
+    assert main(["explain", str(log), ids[0], "--until", until]) == 0
+    assert "Rule meter-offline" in capsys.readouterr().out
+    assert main(["annotate", str(log), ids[0], "--actionable", "no", "--until", until]) == 0
+    assert "not actionable" in capsys.readouterr().out

@@ -46,7 +46,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.add_argument("--hourly", action="store_true", help="print completed clock-hour totals")
     r.add_argument("--json", action="store_true", help="one JSON object per line")
     r.add_argument(
-        "--until", default=None, help="run the clock on to this ISO-8601 time after the last line"
+        "--until", default=None, help=UNTIL_HELP
     )
     r.add_argument(
         "--report",
@@ -108,6 +108,19 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.set_defaults(run=run)
 
 
+UNTIL_HELP = "run the clock on to this ISO-8601 time after the last line"
+
+
+def until_arg(text: str | None) -> float | None:
+    """--until: an ISO-8601 time with its offset, as epoch seconds."""
+    if not text:
+        return None
+    try:
+        return parse_iso(text)
+    except TimeError as exc:
+        raise UserError(f"--until: {exc}") from None
+
+
 def _zone(name: str) -> tzinfo:
     try:
         return zone_info(name)
@@ -141,12 +154,7 @@ def run(args: argparse.Namespace) -> int:
     require(args.log, "log file")
     if args.plots and not args.report:
         raise UserError("--plots needs --report")
-    until = None
-    if args.until:
-        try:
-            until = parse_iso(args.until)
-        except TimeError as exc:
-            raise UserError(f"--until: {exc}") from None
+    until = until_arg(args.until)
     if args.weight is not None and not 0 < args.weight <= 400:
         raise UserError("--weight: a body weight in kg, above 0 and at most 400")
     if args.weight is not None and not args.bind:

@@ -28,7 +28,7 @@ from ..engine.numbers import half_up, num, pct
 from ..engine.outcomes import COUNTED_IN_SERIES, Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef, canonical_alarm_id
-from ..engine.timefmt import iso
+from ..engine.timefmt import iso, parse_iso
 from ..errors import UserError
 from ..journal_api import JournalTarget
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
@@ -307,6 +307,7 @@ def explain(
     policy: EscalationPolicy,
     progress: TextIO | None = None,
     advice: AdvicePolicy = DEFAULT_POLICY,
+    until: float | None = None,
 ) -> dict[str, Any]:
     alarm_id = canonical_alarm_id(alarm_id)  # an old rule id names the same alarm
     bed, _ = parse_alarm_id(alarm_id)
@@ -320,15 +321,30 @@ def explain(
         progress=progress,
         label="explain",
         advice=advice,
+        until=until,
     )
     ep = next((e for e in rv.episodes if e.alarm_id == alarm_id), None)
     if ep is None:
         raised = sum(1 for e in rv.episodes if e.raised)
         raise UserError(
             f"no alarm {alarm_id!r} in {path} under these rules ({raised} alarm(s) raised; "
-            "`hourwatch replay` lists their ids)"
+            f"`hourwatch replay` lists their ids){after_the_end(alarm_id, rv.recorder, until)}"
         )
     return explanation(rv, ep, with_readings=True)
+
+
+def after_the_end(alarm_id: str, recorder: Recorder, until: float | None) -> str:
+    """A hint for an alarm id not found: its onset lies after the last message, where
+    only a clock run on with --until reaches (a silent meter's alarm, for one)."""
+    m = ALARM_ID.match(alarm_id)
+    last = recorder.last_time
+    if m is None or last is None:
+        return ""
+    onset = parse_iso(m.group(3))  # YYYYMMDDTHHMMSSZ, ISO-8601's basic form
+    if onset <= last or (until is not None and until >= onset):
+        return ""
+    return (f"; its onset is after the last message ({iso(last)}): add --until with a "
+            "time after it, as `hourwatch replay --until` does")  # fmt: skip
 
 
 def _rule_json(rule: RuleDef) -> dict[str, Any]:
