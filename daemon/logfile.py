@@ -80,8 +80,11 @@ def _open(path: Path) -> IO[bytes]:
     # No JSON line holds a NUL byte: one in the first line is a program, an image or a
     # compressed file, not a log, and one line says so (not one "not JSON" per line).
     # Garbage further on stays a malformed line, reported and skipped.
-    if b"\0" in fh.readline(8192):
+    first = fh.readline(8192)
+    if b"\0" in first:
         fh.close()
+        if first.startswith((b"\xff\xfe", b"\xfe\xff")):  # a byte-order mark
+            raise UserError(f"{path}: UTF-16 text, not a UTF-8 JSON Lines log: convert it")
         raise UserError(f"{path}: not a JSON Lines log (binary content)")
     fh.seek(0)
     return fh

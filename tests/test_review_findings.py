@@ -330,3 +330,14 @@ def test_an_alarm_raised_after_the_last_message_can_be_explained_and_annotated(
     assert "Rule meter-offline" in capsys.readouterr().out
     assert main(["annotate", str(log), ids[0], "--actionable", "no", "--until", until]) == 0
     assert "not actionable" in capsys.readouterr().out
+
+
+def test_a_utf16_log_is_named_as_such(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # a log saved through a Windows shell's redirection is UTF-16 text: every byte pair
+    # holds a NUL, and "binary content" would send the reader looking for the wrong thing
+    src = _half_minute_night(tmp_path / "half.jsonl")
+    log = tmp_path / "utf16.jsonl"
+    log.write_bytes(src.read_text(encoding="utf-8").encode("utf-16"))
+    assert main(["replay", str(log)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "UTF-16" in err, err
