@@ -341,3 +341,17 @@ def test_a_utf16_log_is_named_as_such(tmp_path: Path, capsys: pytest.CaptureFixt
     assert main(["replay", str(log)]) == 2
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and "UTF-16" in err, err
+
+
+def test_a_timeline_with_a_local_zone_says_which_clock_is_which(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # the timeline's own times are UTC while the clock times inside its messages (a lab
+    # sample's time, the pager line) follow --timezone: "12:45 ... sodium at 17:30
+    # (0.8 h ago)" read as a contradiction until the reader is told
+    log = _half_minute_night(tmp_path / "half.jsonl")
+    assert main(["replay", str(log), "--timezone", "Asia/Kolkata"]) == 0
+    first = capsys.readouterr().out.splitlines()[0]
+    assert "UTC" in first and "Asia/Kolkata" in first, first
+    assert main(["replay", str(log)]) == 0  # UTC throughout: nothing to say
+    assert "Asia" not in capsys.readouterr().out.splitlines()[0]

@@ -202,6 +202,9 @@ def run(args: argparse.Namespace) -> int:
             out.write(line + "\n")
     else:
         show = effect_json if args.json else effect_text
+        if not args.json and args.timezone != "UTC":
+            out.write(f"Times at the left are UTC; clock times inside the messages (pages, "
+                      f"lab and sample times) are {args.timezone}.\n")  # fmt: skip
 
         def emit(effects: list[Effect]) -> None:
             if rejects is not None:
