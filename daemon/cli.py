@@ -42,8 +42,9 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    args = _parser().parse_args(argv)
     try:
+        # inside: an argument's type (a postgresql:// URL) may refuse it with a UserError
+        args = _parser().parse_args(argv)
         code: int = args.run(args)
         return code
     except UserError as exc:

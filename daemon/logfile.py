@@ -74,9 +74,20 @@ def as_messages(records: Iterable[tuple[int, LogRecord] | BadLine]) -> Iterator[
 
 def _open(path: Path) -> IO[bytes]:
     try:
-        return path.open("rb")
+        fh = path.open("rb")
     except OSError as exc:
         raise UserError(f"{path}: cannot open log: {exc.strerror}") from None
+    # No JSON line holds a NUL byte: one in the first line is a program, an image or a
+    # compressed file, not a log, and one line says so (not one "not JSON" per line).
+    # Garbage further on stays a malformed line, reported and skipped.
+    first = fh.readline(8192)
+    if b"\0" in first:
+        fh.close()
+        if first.startswith((b"\xff\xfe", b"\xfe\xff")):  # a byte-order mark
+            raise UserError(f"{path}: UTF-16 text, not a UTF-8 JSON Lines log: convert it")
+        raise UserError(f"{path}: not a JSON Lines log (binary content)")
+    fh.seek(0)
+    return fh
 
 
 _VALIDATE_JSON = LogRecord.__pydantic_validator__.validate_json  # model_validate_json's work

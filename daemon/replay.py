@@ -34,6 +34,8 @@ class ReplayResult:
     bad_lines: list[BadLine] = field(default_factory=list)
     clock_went_back: int = 0
     effects: list[Effect] = field(default_factory=list)
+    # --until fell before the last message: the clock had already passed it
+    until_before_end: tuple[float, float] | None = None  # (until, last message time)
 
 
 def drive(
@@ -82,6 +84,8 @@ def drive_messages(
         count += 1
     result.messages = count
     if until is not None:
+        if until < now:
+            result.until_before_end = (until, now)
         emit(engine.advance(until))
     return result
 
@@ -112,7 +116,14 @@ def replay_file(
                 "line before; replayed at the earlier line's time",
                 file=warn,
             )
+        if result.until_before_end:
+            print(until_words(path, *result.until_before_end), file=warn)
     return result
+
+
+def until_words(path: JournalTarget, until: float, last: float) -> str:
+    return (f"{path}: --until {iso(until)} is before the last message ({iso(last)}): the "
+            "whole log was replayed; --until only runs the clock on past its end")  # fmt: skip
 
 
 # --- a capture without a bed context: temporary beds ------------------------------------

@@ -13,10 +13,11 @@ from ..journal_api import target
 from ..profile_files import load_profiles
 from ..review import verdicts
 from ..review.episodes import episodes
-from ..review.explain import parse_alarm_id
+from ..review.explain import after_the_end, parse_alarm_id
 from ..review.recorder import replay_alarms
 from ..rule_files import load_advice, load_policy, load_rules
 from ..sources import require
+from .replay import UNTIL_HELP, until_arg
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -42,6 +43,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     c.add_argument(
         "--rules", type=Path, default=None, help="rule folder the alarm was raised under"
     )
+    c.add_argument("--until", default=None, help=UNTIL_HELP)
     c.set_defaults(run=run)
 
 
@@ -52,6 +54,7 @@ def run(args: argparse.Namespace) -> int:
     if args.note is not None and len(args.note) > 2000:
         raise UserError("--note: at most 2000 characters")
     rules = load_rules(args.rules)
+    until = until_arg(args.until)
     rec, _ = replay_alarms(
         args.source,
         load_profiles(args.profiles),
@@ -60,10 +63,12 @@ def run(args: argparse.Namespace) -> int:
         progress=sys.stderr,
         advice=load_advice(args.rules),
         label="annotate",
+        until=until,
     )
     ep = next((e for e in episodes(rec.events) if e.alarm_id == args.alarm_id), None)
     if ep is None:
-        raise UserError(f"no alarm {args.alarm_id!r} in {args.source} under these rules")
+        hint = after_the_end(args.alarm_id, rec, until)
+        raise UserError(f"no alarm {args.alarm_id!r} in {args.source} under these rules{hint}")
     start, end = (ep.activated if ep.activated is not None else ep.onset), ep.ended
     path = verdicts.store_path(args.source)
     ann = verdicts.Annotation(

@@ -12,6 +12,7 @@ from ..profile_files import load_profiles
 from ..review.explain import explain, text
 from ..rule_files import load_advice, load_policy, load_rules
 from ..sources import require
+from .replay import UNTIL_HELP, until_arg
 
 
 def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -28,6 +29,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     c.add_argument("--profiles", type=Path, default=None, help="device profile folder")
     c.add_argument("--rules", type=Path, default=None, help="rule folder (with escalation.toml)")
     c.add_argument("--json", action="store_true", help="one JSON object")
+    c.add_argument("--until", default=None, help=UNTIL_HELP)
     c.set_defaults(run=run)
 
 
@@ -37,7 +39,7 @@ def run(args: argparse.Namespace) -> int:
     rules = load_rules(args.rules)
     policy = load_policy(args.rules)
     d = explain(args.source, args.alarm_id, profiles, rules, policy, progress=sys.stderr,
-                advice=load_advice(args.rules))  # fmt: skip
+                advice=load_advice(args.rules), until=until_arg(args.until))  # fmt: skip
     if args.json:
         sys.stdout.write(json.dumps(d, indent=1) + "\n")
     else:

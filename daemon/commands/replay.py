@@ -46,7 +46,7 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.add_argument("--hourly", action="store_true", help="print completed clock-hour totals")
     r.add_argument("--json", action="store_true", help="one JSON object per line")
     r.add_argument(
-        "--until", default=None, help="run the clock on to this ISO-8601 time after the last line"
+        "--until", default=None, help=UNTIL_HELP
     )
     r.add_argument(
         "--report",
@@ -108,6 +108,19 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     r.set_defaults(run=run)
 
 
+UNTIL_HELP = "run the clock on to this ISO-8601 time after the last line"
+
+
+def until_arg(text: str | None) -> float | None:
+    """--until: an ISO-8601 time with its offset, as epoch seconds."""
+    if not text:
+        return None
+    try:
+        return parse_iso(text)
+    except TimeError as exc:
+        raise UserError(f"--until: {exc}") from None
+
+
 def _zone(name: str) -> tzinfo:
     try:
         return zone_info(name)
@@ -141,12 +154,7 @@ def run(args: argparse.Namespace) -> int:
     require(args.log, "log file")
     if args.plots and not args.report:
         raise UserError("--plots needs --report")
-    until = None
-    if args.until:
-        try:
-            until = parse_iso(args.until)
-        except TimeError as exc:
-            raise UserError(f"--until: {exc}") from None
+    until = until_arg(args.until)
     if args.weight is not None and not 0 < args.weight <= 400:
         raise UserError("--weight: a body weight in kg, above 0 and at most 400")
     if args.weight is not None and not args.bind:
@@ -194,6 +202,9 @@ def run(args: argparse.Namespace) -> int:
             out.write(line + "\n")
     else:
         show = effect_json if args.json else effect_text
+        if not args.json and args.timezone != "UTC":
+            out.write(f"Times at the left are UTC; clock times inside the messages (pages, "
+                      f"lab and sample times) are {args.timezone}.\n")  # fmt: skip
 
         def emit(effects: list[Effect]) -> None:
             if rejects is not None:
@@ -232,6 +243,8 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
 
     profiles = load_profiles(args.profiles)
     rules = load_rules(args.rules)
+    if args.plots is not None:  # before the replay, which may take a while
+        _writable_folder(args.plots)
     rv = review(
         args.log,
         profiles,
@@ -254,7 +267,10 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
     def bar(items: list[BedPicture]) -> Iterator[BedPicture]:
         return with_progress(items, len(items), "plots", sys.stderr, every=1)
 
-    text = html_report.render(inp, progress=bar, plots_dir=args.plots)
+    try:
+        text = html_report.render(inp, progress=bar, plots_dir=args.plots)
+    except OSError as exc:  # a plot file that cannot be written
+        raise UserError(f"{args.plots}: cannot write a plot: {exc.strerror}") from None
     try:
         html_report.write(args.report, text)
     except OSError as exc:
@@ -268,9 +284,17 @@ def _report(args: argparse.Namespace, until: float | None, comparison: str | Non
     return 0
 
 
+def _writable_folder(folder: Path) -> None:
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(f"{folder}: cannot make the plots folder: {exc.strerror}") from None
+
+
 def _compare(args: argparse.Namespace, until: float | None) -> int:
     from ..review import compare as what_if
     from ..review import verdicts
+    from ..review.acks import AckCarrier
     from ..review.episodes import episodes
     from ..review.recorder import replay_alarms, warn_about
 
@@ -289,6 +313,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
     adv_b = load_advice(args.compare) if args.compare else adv_a
     sides = (("A", prof_a, rules_a, pol_a, adv_a, label_a),
              ("B", prof_b, rules_b, pol_b, adv_b, label_b))  # fmt: skip
+    carriers = {"a": AckCarrier(), "b": AckCarrier()}
     for name, prof, rules, pol, adv, label in sides:
         rec, res = replay_alarms(
             args.log,
@@ -299,6 +324,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
             label=f"replay {name}",
             until=until,
             advice=adv,
+            acks=carriers[name.lower()],
         )
         warn_about(res, args.log, sys.stderr if name == "A" else None)
         bound = {b: s.bound_at for b, s in res.engine.beds.items()}
@@ -310,6 +336,7 @@ def _compare(args: argparse.Namespace, until: float | None) -> int:
         print(f"{store}: annotations not read: {exc}", file=sys.stderr)
         anns = []
     c = what_if.compare(runs[0], runs[1], anns)
+    c["recorded_acks"] = {k: v.counts() for k, v in carriers.items()}
     lines = what_if.text(c)
     if args.json:
         sys.stdout.write(json.dumps(c) + "\n")

@@ -257,6 +257,13 @@ def text(c: dict[str, Any]) -> list[str]:
                     f"{s['actionable']}, non-actionable avoided {s['non_actionable_avoided']} of "
                     f"{s['non_actionable']}; {ppv}"
                 )
+    for side, n in (c.get("recorded_acks") or {}).items():
+        if n["carried"] or n["unmatched"]:
+            lines.append(
+                f"  under {side.upper()}: {n['carried']} recorded acknowledgement(s) of another "
+                "rule set's alarm applied to the same bed and rule's alarm open then"
+                + (f"; {n['unmatched']} found none open" if n["unmatched"] else "")
+            )
     lines += [
         "",
         "  Episodes are matched by bed, rule and overlapping annunciated spans; minutes in "

@@ -8,6 +8,8 @@ beside the numbers the alarm event carried; they must be the same.
 
 from __future__ import annotations
 
+import bisect
+import json
 import re
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -26,7 +28,7 @@ from ..engine.numbers import half_up, num, pct
 from ..engine.outcomes import COUNTED_IN_SERIES, Outcome
 from ..engine.profiles import DeviceProfile
 from ..engine.rules import RuleDef, canonical_alarm_id
-from ..engine.timefmt import iso
+from ..engine.timefmt import iso, parse_iso
 from ..errors import UserError
 from ..journal_api import JournalTarget
 from .episodes import ANNUNCIATED, ENDED, Episode, episodes
@@ -305,6 +307,7 @@ def explain(
     policy: EscalationPolicy,
     progress: TextIO | None = None,
     advice: AdvicePolicy = DEFAULT_POLICY,
+    until: float | None = None,
 ) -> dict[str, Any]:
     alarm_id = canonical_alarm_id(alarm_id)  # an old rule id names the same alarm
     bed, _ = parse_alarm_id(alarm_id)
@@ -318,15 +321,30 @@ def explain(
         progress=progress,
         label="explain",
         advice=advice,
+        until=until,
     )
     ep = next((e for e in rv.episodes if e.alarm_id == alarm_id), None)
     if ep is None:
         raised = sum(1 for e in rv.episodes if e.raised)
         raise UserError(
             f"no alarm {alarm_id!r} in {path} under these rules ({raised} alarm(s) raised; "
-            "`hourwatch replay` lists their ids)"
+            f"`hourwatch replay` lists their ids){after_the_end(alarm_id, rv.recorder, until)}"
         )
     return explanation(rv, ep, with_readings=True)
+
+
+def after_the_end(alarm_id: str, recorder: Recorder, until: float | None) -> str:
+    """A hint for an alarm id not found: its onset lies after the last message, where
+    only a clock run on with --until reaches (a silent meter's alarm, for one)."""
+    m = ALARM_ID.match(alarm_id)
+    last = recorder.last_time
+    if m is None or last is None:
+        return ""
+    onset = parse_iso(m.group(3))  # YYYYMMDDTHHMMSSZ, ISO-8601's basic form
+    if onset <= last or (until is not None and until >= onset):
+        return ""
+    return (f"; its onset is after the last message ({iso(last)}): add --until with a "
+            "time after it, as `hourwatch replay --until` does")  # fmt: skip
 
 
 def _rule_json(rule: RuleDef) -> dict[str, Any]:
@@ -362,14 +380,30 @@ def _event_json(e: AlarmEvent) -> dict[str, Any]:
 
 
 def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict[str, Any]]:
-    """Readings of the bed's meters that fall inside the evaluated windows (or, for a
-    rule without windows, in the hour before the moment), with their outcome."""
+    """Readings of the bed's meters that fed the evaluated windows (or, for a rule
+    without windows, in the hour before the moment), with their outcome.
+
+    A counted reading fed every window its volume was spread over: from the meter's
+    counted reading before it to its own time (DESIGN §3), so the first reading after
+    a window's end fed the window's last minutes. Any other reading is listed where its
+    time falls."""
     traces = m.traces or []
     spans = [f.span for f in m.windows] if m.windows else [(m.time - 3600.0, m.time)]
+    counted: dict[str, list[float]] = {}
+    for tr, outcome in traces:
+        if outcome in COUNTED:
+            counted.setdefault(tr.device_id, []).append(effective_time(tr))
+    for times in counted.values():
+        times.sort()
     out: list[dict[str, Any]] = []
     for i, (tr, outcome) in enumerate(traces):
         t = effective_time(tr)
-        inside = [f.label for f in m.windows if f.span[0] < t <= f.span[1]]
+        t0 = t
+        if outcome in COUNTED and m.windows:
+            times = counted[tr.device_id]
+            k = bisect.bisect_left(times, t)
+            t0 = times[k - 1] if k > 0 else t
+        inside = [f.label for f in m.windows if _fed(f.span, t0, t)]
         if not inside and not any(a < t <= b for a, b in spans):
             continue
         later = final[i][1] if i < len(final) else outcome
@@ -392,6 +426,12 @@ def _readings(m: Moment, final: list[tuple[ReadingTrace, Outcome]]) -> list[dict
             row["also_settled_previous_as"] = str(tr.outcomes[0])
         out.append(row)
     return out
+
+
+def _fed(span: tuple[float, float], t0: float, t: float) -> bool:
+    """Does a reading spread over (t0, t] (a point when t0 == t) reach window (a, b]?"""
+    a, b = span
+    return a < t <= b if t0 >= t else t0 < b and a < t
 
 
 def explanation(rv: Review, ep: Episode, with_readings: bool = False) -> dict[str, Any]:
@@ -466,6 +506,20 @@ def _suppression(rule: RuleDef | None, m: Moment, ep: Episode) -> dict[str, Any]
 # --- text ------------------------------------------------------------------------
 
 
+def _window_like(v: Any) -> bool:
+    """A window of the event's evidence (shown above, recomputed), or a list of them."""
+    if isinstance(v, list):
+        return bool(v) and all(_window_like(x) for x in v)
+    return isinstance(v, dict) and "length_min" in v
+
+
+def evidence_value(v: Any) -> str:
+    """An evidence value as the JSON output gives it: an event from a log holds the
+    engine's enums (a Python repr would show `<Outcome.DEVICE_FAULT: ...>`), one read
+    back from a journal plain strings; both read the same."""
+    return v if isinstance(v, str) else json.dumps(v, ensure_ascii=False, default=str)
+
+
 def _when(text: str | None) -> str:
     return "-" if text is None else text[:19].replace("T", " ")
 
@@ -537,10 +591,16 @@ def text(d: dict[str, Any]) -> list[str]:
                         f"    {row['evidence_key']}: event {row['event']} "
                         f"recomputed {row['recomputed']}"
                     )
+        # what the windows do not show (a fluid balance, vital signs, a rate), as the
+        # event holds it
+        rest = {k: v for k, v in d["event_evidence"].items() if not _window_like(v)}
+        if rest:
+            lines.append("  the alarm event's other evidence:")
+            lines += [f"    {k}: {evidence_value(v)}" for k, v in rest.items()]
     else:
         lines.append("Evidence (this rule looks at no output window):")
         for k, v in d["event_evidence"].items():
-            lines.append(f"  {k}: {v}")
+            lines.append(f"  {k}: {evidence_value(v)}")
     lines.append("")
     readings = d.get("readings")
     if readings is not None:

@@ -12,7 +12,7 @@ from array import array
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TextIO, TypeVar
+from typing import TYPE_CHECKING, TextIO, TypeVar
 
 from pydantic import ValidationError
 
@@ -30,8 +30,11 @@ from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
 from ..journal_api import JournalTarget
 from ..logfile import BadLine, LogRecord
-from ..replay import ReplayResult, drive
+from ..replay import ReplayResult, drive, until_words
 from ..sources import open_source
+
+if TYPE_CHECKING:
+    from .acks import AckCarrier
 
 Record = tuple[int, LogRecord] | BadLine
 T = TypeVar("T")
@@ -256,14 +259,17 @@ def run(
     label: str = "replay",
     before_each: Callable[[], None] | None = None,
     also: Callable[[list[Effect]], None] | None = None,
+    wrap: Callable[[Iterable[Record]], Iterable[Record]] | None = None,
 ) -> ReplayResult:
     """Replay `path` through a fresh engine that reports to `recorder`.
 
     `before_each` runs between records, when the previous record has been fully
     processed (explain uses it to follow one alarm's evidence); `also` sees every
-    batch of effects after the recorder."""
+    batch of effects after the recorder; `wrap` sees the records on their way in."""
     engine = make_engine(recorder.observe)
     records: Iterable[Record] = recorder.watch(open_source(path), before_each)
+    if wrap is not None:
+        records = wrap(records)
     if progress is not None and progress.isatty():
         records = with_progress(records, count_records(path), label, progress)
     if also is None:
@@ -291,6 +297,8 @@ def warn_about(
             "line before; replayed at the earlier line's time",
             file=stream,
         )
+    if result.until_before_end:
+        print(until_words(path, *result.until_before_end), file=stream)
 
 
 def replay_alarms(
@@ -302,13 +310,20 @@ def replay_alarms(
     label: str = "replay",
     until: float | None = None,
     advice: AdvicePolicy = DEFAULT_POLICY,
+    acks: AckCarrier | None = None,
 ) -> tuple[Recorder, ReplayResult]:
-    """A replay that keeps alarm events, advice and intake, without reading traces."""
+    """A replay that keeps alarm events, advice and intake, without reading traces;
+    `acks` carries recorded acknowledgements over to this replay's alarms (a what-if)."""
     recorder = Recorder()
 
     def make(_: Callable[[ReadingTrace], None]) -> Engine:
         # no observer: nothing per reading
-        return Engine(profiles, rules, policy, advice_policy=advice)
+        engine = Engine(profiles, rules, policy, advice_policy=advice)
+        return engine if acks is None else acks.attach(engine)
 
-    result = run(path, make, recorder, until=until, progress=progress, label=label)
+    if acks is None:
+        result = run(path, make, recorder, until=until, progress=progress, label=label)
+    else:
+        result = run(path, make, recorder, until=until, progress=progress, label=label,
+                     also=acks.on_effects, wrap=acks.records)  # fmt: skip
     return recorder, result

@@ -24,7 +24,7 @@ from ..journal_api import JournalTarget
 from .compare import RunSummary, summarize
 from .episodes import Episode
 from .evidence import residual_drains
-from .explain import Review, explanation, lifecycle_lines
+from .explain import Review, evidence_value, explanation, lifecycle_lines
 from .plots import PRIORITY_COLOUR, BedPicture, draw, png
 from .recorder import ARTEFACTS, BAG_CHANGES
 
@@ -370,7 +370,7 @@ def _explanation(d: dict[str, Any], ep: Episode) -> str:
             f"<th>readings by outcome</th></tr>{rows}</table><p>{verdict}</p>"
         )
     else:
-        ev = "; ".join(f"{k}: {v}" for k, v in d["event_evidence"].items())
+        ev = "; ".join(f"{k}: {evidence_value(v)}" for k, v in d["event_evidence"].items())
         parts.append(f"<p>Evidence (no output window): {_e(ev)}</p>")
     sup = d.get("suppression")
     if sup:
