@@ -33,6 +33,9 @@ from .journal import log_payload
 
 SAMPLE_KEPT = 3  # latest decoded readings shown per device
 CODES_KEPT = 32  # distinct status codes counted per device
+# distinct details kept per rejection reason and device: one reason code can have several
+# causes to fix (a missing status, a missing volume), each shown with its own example
+DETAILS_KEPT = 4
 TIMES_KEPT = 4096  # (receive, device) times kept per device for the period and bursts
 # A store-and-forward burst: this many readings or more, each received within
 # max(BURST_GAP_S, a tenth of the period) of the one before, whose device times are a
@@ -50,8 +53,10 @@ class DeviceTally:
     retained: int = 0  # sent by the broker at subscribe time: stale receive times
     accepted: int = 0
     rejected: Counter[str] = field(default_factory=Counter)
-    # the first example of each rejection reason: (detail, profile key to check)
-    examples: dict[str, tuple[str, str]] = field(default_factory=dict)
+    # per (reason, detail): the first example (detail with the value sent, profile key to
+    # check) and how many; at most DETAILS_KEPT details a reason, the rest counted in its last
+    examples: dict[tuple[str, str], tuple[str, str]] = field(default_factory=dict)
+    example_counts: Counter[tuple[str, str]] = field(default_factory=Counter)
     status_codes: Counter[str] = field(default_factory=Counter)
     levels: dict[str, str] = field(default_factory=dict)  # the topic's metadata levels
     # (receive time, device time, retained) of decoded readings, in arrival order
@@ -63,6 +68,19 @@ class DeviceTally:
     )  # (device time, mL, implied mL/h)
     last: tuple[float, float] | None = None  # (device time, mL) of the last reading
     bed: str | None = None  # its temporary bed in the probe's engine
+
+    def add_rejection(self, out: Rejected) -> None:
+        reason = str(out.reason)
+        self.rejected[reason] += 1
+        at = (reason, out.detail)
+        if at not in self.examples:
+            kept = [k for k in self.examples if k[0] == reason]
+            if len(kept) >= DETAILS_KEPT:
+                self.example_counts[kept[-1]] += 1
+                return
+            shown = f"{out.detail}: {out.shown}" if out.shown else out.detail
+            self.examples[at] = (shown, out.key)
+        self.example_counts[at] += 1
 
     @property
     def device_times(self) -> list[float]:
@@ -163,11 +181,7 @@ class ProbeTally:
         self.engine.step(topic, payload, recv_time)
         out = self.decoder.decode(device, payload)
         if isinstance(out, Rejected):
-            reason = str(out.reason)
-            d.rejected[reason] += 1
-            if reason not in d.examples:
-                detail = f"{out.detail}: {out.shown}" if out.shown else out.detail
-                d.examples[reason] = (detail, out.key)
+            d.add_rejection(out)
             return
         assert isinstance(out, Reading)
         d.accepted += 1
@@ -242,8 +256,8 @@ class ProbeTally:
             held = " (1 held for confirmation)" if q.get("held") else ""
             lines.append(f"  cleaning, as the service would: {series} into the series; "
                          + ", ".join(f"{o} {n}" for o, n in shown.items()) + held)  # fmt: skip
-        for reason, n in sorted(d.rejected.items()):
-            detail, key = d.examples[reason]
+        for (reason, _), (detail, key) in sorted(d.examples.items(), key=lambda x: x[0][0]):
+            n = d.example_counts[reason, _]
             check = f"; check {key}" if key else ""
             lines.append(f"  rejected: {reason}: {detail}  ({n}; e.g. the first{check})")
         for w in self.engine.sanity_warnings():
