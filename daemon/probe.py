@@ -18,12 +18,13 @@ import statistics
 import threading
 import time
 from collections import Counter, deque
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, TextIO
 
 from .engine.decode import Decoder, Reading, Rejected
-from .engine.engine import Engine
+from .engine.effects import RejectedInput
+from .engine.engine import Engine, ReadingTrace
 from .engine.numbers import num
 from .engine.outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, Outcome
 from .engine.profiles import DEVICE_LEVEL, Calibration, DeviceProfile, Semantics
@@ -153,7 +154,8 @@ class ProbeTally:
         self.profile = profile
         self.decoder = Decoder(profile)
         self.pattern = profile.topic_regex()
-        self.engine = Engine([profile], calibration=calibration)
+        self.engine = Engine([profile], calibration=calibration, observe=self._traced)
+        self._trace: ReadingTrace | None = None  # what the engine made of the message
         self.devices: dict[str, DeviceTally] = {}
         self.other_topics = 0  # matched the filter but not the profile's topic
         self.save = save
@@ -178,8 +180,9 @@ class ProbeTally:
             if code not in d.status_codes and len(d.status_codes) >= CODES_KEPT:
                 code = "(other codes)"  # a meter sending anything must not grow the probe
             d.status_codes[code] += 1
-        self.engine.step(topic, payload, recv_time)
-        out = self.decoder.decode(device, payload)
+        self._trace = None
+        effects = self.engine.step(topic, payload, recv_time)
+        out = self._calibrated(self.decoder.decode(device, payload), effects)
         if isinstance(out, Rejected):
             d.add_rejection(out)
             return
@@ -188,6 +191,27 @@ class ProbeTally:
         d.times.append((recv_time, out.device_time, retained))
         d.sample.append((out.device_time, out.volume_ml, self._rate(d, out)))
         d.last = (out.device_time, out.volume_ml)
+
+    def _traced(self, trace: ReadingTrace) -> None:
+        self._trace = trace
+
+    def _calibrated(self, out: Reading | Rejected, effects: Sequence[object]) -> Reading | Rejected:
+        """The reading as the engine took it: corrected by the meter's calibration, or
+        refused when the correction leaves the physical range (the probe's own decoder
+        knows no calibration; it gives the value sent and the key to check)."""
+        trace = self._trace
+        if isinstance(out, Rejected) or trace is None:
+            return out
+        if trace.volume_ml is None and trace.outcomes[-1] in DECODE_REJECTIONS:
+            reason = trace.outcomes[-1]
+            said = [e.detail for e in effects
+                    if isinstance(e, RejectedInput) and e.reason == reason]  # fmt: skip
+            detail = said[0] if said else str(reason)
+            shown = f"{num(out.volume_ml, 1)} mL before calibration"
+            return Rejected(reason, detail, out.device_id, shown, "calibration")
+        if trace.volume_ml is not None:
+            out.volume_ml = trace.volume_ml
+        return out
 
     def _bind(self, device: str, d: DeviceTally, now: float) -> None:
         """A temporary bed for the device, so the engine cleans its readings."""
