@@ -224,3 +224,18 @@ def test_probe_applies_the_devices_file_like_the_service(broker, folder, tmp_pat
     decoded = [x.strip() for x in out.splitlines() if x.strip().startswith("decoded:")]
     assert decoded[-1].split("  ")[1] == "1.0 mL (cumulative)", out  # 4 mL read, 3 mL high
     assert "cleaning, as the service would: 2 into the series" in out, out
+
+
+def test_a_utc_offset_field_beside_an_epoch_time_is_refused(folder: Path) -> None:
+    """The decoder reads fields.utc_offset only for ISO-8601 times: beside an epoch time
+    it was accepted and then ignored, so a meter whose epoch counts local time (and sends
+    its offset) would be read an hour or more off with a profile the checker passed."""
+    f = folder / "flowcell-litre.toml"
+    f.write_text(FLOWCELL.replace('status = "power.state"',
+                                  'status = "power.state"\nutc_offset = "meta.clock.tz"'))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2, done.stdout
+    line = f"hourwatch: {f}: fields.utc_offset: only read with time.format = \"iso8601\""
+    assert line in done.stderr, done.stderr
+    assert "Traceback" not in done.stderr

@@ -456,6 +456,10 @@ class DeviceProfile(_Strict):
             problems.append((("status", "bag_change"), "needs fields.status"))
         if set(s.lower() for s in self.status.ok) & set(s.lower() for s in self.status.bag_change):
             problems.append((("status", "bag_change"), "a code cannot be both ok and bag_change"))
+        if self.fields.utc_offset is not None and self.time.format is not TimeFormat.ISO8601:
+            why = ('only read with time.format = "iso8601": an epoch time is UTC already, '
+                   "and the field would be ignored")  # fmt: skip
+            problems.append((("fields", "utc_offset"), why))
         if self.volume.semantics is Semantics.INTERVAL and self.fields.bag_change_flag:
             why = "interval meters have no bag to change: drop bag_change_flag"
             problems.append((("fields", "bag_change_flag"), why))
