@@ -231,11 +231,14 @@ def test_a_utc_offset_field_beside_an_epoch_time_is_refused(folder: Path) -> Non
     it was accepted and then ignored, so a meter whose epoch counts local time (and sends
     its offset) would be read an hour or more off with a profile the checker passed."""
     f = folder / "flowcell-litre.toml"
-    f.write_text(FLOWCELL.replace('status = "power.state"',
-                                  'status = "power.state"\nutc_offset = "meta.clock.tz"'))
+    f.write_text(
+        FLOWCELL.replace(
+            'status = "power.state"', 'status = "power.state"\nutc_offset = "meta.clock.tz"'
+        )
+    )
     done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
                           text=True, env=ENV, timeout=60)  # fmt: skip
     assert done.returncode == 2, done.stdout
-    line = f"hourwatch: {f}: fields.utc_offset: only read with time.format = \"iso8601\""
+    line = f'hourwatch: {f}: fields.utc_offset: only read with time.format = "iso8601"'
     assert line in done.stderr, done.stderr
     assert "Traceback" not in done.stderr

@@ -125,6 +125,23 @@ def test_new_profile_writes_a_commented_template_that_checks(tmp_path, capsys, c
     assert run(capsys, "check-profiles", str(folder))[0] == 0
 
 
+@pytest.mark.parametrize("closest", sorted(PROFILES))
+def test_new_profile_named_after_a_topic_level_keeps_the_folder_valid(tmp_path, capsys,
+                                                                      closest) -> None:  # fmt: skip
+    """A family named like the first level of an existing topic (a ward's own word for its
+    meters: 'bedside', 'meters') got that family's very topic, so the folder it was
+    written into no longer loaded: check, run and new-profile itself refused it."""
+    folder = tmp_path / "profiles"
+    shutil.copytree(BUNDLED, folder)
+    taken = {PROFILES[n].topic.split("/")[0] for n in PROFILES}
+    for name in sorted(taken):
+        rc, _, err = run(capsys, "new-profile", name, "--from", closest,
+                           "--profiles", str(folder))  # fmt: skip
+        assert rc == 0, err
+    rc, _, err = run(capsys, "check-profiles", str(folder))
+    assert rc == 0, err
+
+
 def test_new_profile_never_overwrites_and_checks_its_arguments(tmp_path, capsys) -> None:
     folder = tmp_path / "profiles"
     shutil.copytree(BUNDLED, folder)
