@@ -242,3 +242,24 @@ def test_a_utc_offset_field_beside_an_epoch_time_is_refused(folder: Path) -> Non
     line = f'hourwatch: {f}: fields.utc_offset: only read with time.format = "iso8601"'
     assert line in done.stderr, done.stderr
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.parametrize(
+    ("key", "value", "why"),
+    [
+        # every reading then fails min_ml <= mL and is refused as out_of_range, 'check
+        # volume.unit': a profile that passed the checker and refuses the whole meter
+        ("min_ml", "nan", "out_of_range for every reading"),
+        # no physical upper bound, and a bag that is never full (the prompt at 90%)
+        ("max_ml", "inf", "no range check, no bag-full prompt"),
+    ],
+)
+def test_a_limit_that_is_not_a_finite_number_is_refused(folder, key, value, why) -> None:
+    f = folder / "flowcell-litre.toml"
+    text = FLOWCELL.replace("[limits]\n", f"[limits]\n{key} = {value}\n")
+    text = text.replace("max_ml = 3000\n", "") if key == "max_ml" else text
+    f.write_text(text)
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2, why
+    assert f"hourwatch: {f}: limits.{key}: Input should be a finite number" in done.stderr

@@ -20,7 +20,9 @@ NAME_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # allow_inf_nan: TOML has nan and inf; min_ml = nan refused every reading as out of
+    # range, max_ml = inf checked nothing and left the bag never full
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 Problem = tuple[tuple[str | int, ...], str]  # (where: the key's path, what is wrong)
