@@ -19,6 +19,9 @@ from .errors import UserError, describe_validation
 BUNDLED = Path(__file__).resolve().parent.parent / "device_profiles"
 
 
+_FIELD_REF = "a dotted JSON path or key name in quotes, or a 0-based column number"
+
+
 def _key(loc: tuple[str | int, ...]) -> str:
     return ".".join(str(x) for x in loc) or "(top level)"
 
@@ -31,6 +34,12 @@ def problems(exc: ValidationError) -> list[str]:
     meant: set[tuple[str | int, ...]] = set()  # required keys an unknown key stands for
     for e in errs:
         loc = tuple(e["loc"])
+        if len(loc) == 3 and loc[0] in ("fields", "checksum") and loc[2] in ("str", "int"):
+            # a field reference (str | int) fails once per member: one line, its own key
+            item = (_key(loc[:-1]), _FIELD_REF)
+            if item not in out:
+                out.append(item)
+            continue
         if e["type"] == "extra_forbidden":
             guess = close_key(str(loc[-1]), known_keys(loc[:-1]))
             msg = "unknown key"

@@ -263,3 +263,19 @@ def test_a_limit_that_is_not_a_finite_number_is_refused(folder, key, value, why)
                           text=True, env=ENV, timeout=60)  # fmt: skip
     assert done.returncode == 2, why
     assert f"hourwatch: {f}: limits.{key}: Input should be a finite number" in done.stderr
+
+
+def test_a_field_that_is_neither_text_nor_a_column_is_one_line(folder: Path) -> None:
+    """`volume = 1.5` is one mistake: one line under the key the engineer wrote
+    (fields.volume), not two under keys that do not exist (fields.volume.str and
+    fields.volume.int) contradicting each other."""
+    f = folder / "flowcell-litre.toml"
+    f.write_text(FLOWCELL.replace('volume = "meas.total_l"', "volume = 1.5"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2
+    lines = [x for x in done.stderr.splitlines() if str(f) in x]
+    assert lines == [
+        f"hourwatch: {f}: fields.volume: a dotted JSON path or key name in quotes, or a "
+        "0-based column number"
+    ], done.stderr
