@@ -279,3 +279,18 @@ def test_a_field_that_is_neither_text_nor_a_column_is_one_line(folder: Path) -> 
         f"hourwatch: {f}: fields.volume: a dotted JSON path or key name in quotes, or a "
         "0-based column number"
     ], done.stderr
+
+
+def test_an_interval_meter_may_not_accept_negative_volumes(folder: Path) -> None:
+    """min_ml below zero suits a scale that reads a little under zero after taring; for
+    an interval meter it let a negative interval through, which the series subtracted:
+    eleven 5-minute intervals of 6 mL and one of -40 mL made an hour of 26 mL (0.33
+    mL/kg/h at 80 kg, invented) instead of refusing the one bad message."""
+    f = folder / "dropcount-interval.toml"
+    f.write_text(DROPCOUNT.replace("max_ml = 500", "min_ml = -50\nmax_ml = 500"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2
+    assert f"hourwatch: {f}: limits.min_ml: an interval's volume cannot be negative" in (
+        done.stderr
+    ), done.stderr

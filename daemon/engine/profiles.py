@@ -462,6 +462,9 @@ class DeviceProfile(_Strict):
             why = ('only read with time.format = "iso8601": an epoch time is UTC already, '
                    "and the field would be ignored")  # fmt: skip
             problems.append((("fields", "utc_offset"), why))
+        if self.volume.semantics is Semantics.INTERVAL and self.limits.min_ml < 0:
+            why = "an interval's volume cannot be negative: 0 or more for interval meters"
+            problems.append((("limits", "min_ml"), why))
         if self.volume.semantics is Semantics.INTERVAL and self.fields.bag_change_flag:
             why = "interval meters have no bag to change: drop bag_change_flag"
             problems.append((("fields", "bag_change_flag"), why))
