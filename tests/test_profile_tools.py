@@ -142,6 +142,20 @@ def test_new_profile_named_after_a_topic_level_keeps_the_folder_valid(tmp_path, 
     assert rc == 0, err
 
 
+@pytest.mark.parametrize("out", ["meter.toml", "ward-meter.txt"])
+def test_new_profile_out_must_be_a_file_the_folder_check_loads(tmp_path, capsys, out) -> None:
+    """--out meter.toml wrote a profile named ward-meter that check-profiles refuses (a
+    profile's name equals its file name); --out ward-meter.txt one it never reads."""
+    rc, _, err = run(capsys, "new-profile", "ward-meter", "--from", "reference-cumulative",
+                     "--out", str(tmp_path / out))  # fmt: skip
+    assert rc == 2 and "--out" in err and "ward-meter.toml" in err, err
+    assert not (tmp_path / out).exists()
+    rc, _, err = run(capsys, "new-profile", "ward-meter", "--from", "reference-cumulative",
+                     "--out", str(tmp_path / "ward-meter.toml"))  # fmt: skip
+    assert rc == 0, err
+    assert run(capsys, "check-profiles", str(tmp_path))[0] == 0
+
+
 def test_new_profile_never_overwrites_and_checks_its_arguments(tmp_path, capsys) -> None:
     folder = tmp_path / "profiles"
     shutil.copytree(BUNDLED, folder)

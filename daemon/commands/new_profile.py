@@ -51,7 +51,8 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="profile folder to read CLOSEST from and write into "
                    "(default: the shipped profiles)")  # fmt: skip
     p.add_argument("--out", type=Path, default=None, metavar="FILE",
-                   help="write here instead of FOLDER/NAME.toml")  # fmt: skip
+                   help="write here instead of FOLDER/NAME.toml (a file named "
+                   "NAME.toml)")  # fmt: skip
     p.set_defaults(run=run)
 
 
@@ -143,6 +144,9 @@ def run(args: argparse.Namespace) -> int:
     if any(p.name == args.name for p in profiles):
         raise UserError(f"name: a profile {args.name!r} exists already in {folder}")
     out: Path = args.out or folder / f"{args.name}.toml"
+    if out.name != f"{args.name}.toml":  # profiles are read from NAME.toml files only
+        raise UserError(f"--out: name the file {args.name}.toml (a profile's name equals "
+                        "its file name, and only *.toml files are read)")  # fmt: skip
     if out.exists():
         raise UserError(f"{out}: exists already; new-profile never overwrites a file")
     text = template(args.name, closest, profiles)
