@@ -294,3 +294,40 @@ def test_an_interval_meter_may_not_accept_negative_volumes(folder: Path) -> None
     assert f"hourwatch: {f}: limits.min_ml: an interval's volume cannot be negative" in (
         done.stderr
     ), done.stderr
+
+
+def _dropcount_line(counts: str, offset: str = "+01:00") -> str:
+    from daemon.engine.decode import checksum_text
+    from daemon.engine.profiles import ChecksumAlgorithm
+
+    head = f"DC1|2207|2026-03-14 03:05:00|{offset}|{counts}"
+    return f"{head}|{checksum_text(ChecksumAlgorithm.CRC16_CCITT, head)}"
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="decode.py (not ours to edit here) names volume.unit for every out_of_range, "
+    "also for a family that sets volume.scale_to_ml",
+)
+def test_out_of_range_names_the_scale_key_the_family_uses(folder: Path) -> None:
+    from daemon.engine.decode import Decoder, Rejected
+
+    p = load_profile(folder / "dropcount-interval.toml")
+    out = Decoder(p).decode("dc-07", _dropcount_line("99999"))  # 9999.9 mL in 5 minutes
+    assert isinstance(out, Rejected) and out.reason == "out_of_range"
+    assert out.key == "volume.scale_to_ml"  # the profile has no volume.unit to check
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="decode.py (not ours to edit here) names time.format for a bad or missing "
+    "offset field, not fields.utc_offset",
+)
+@pytest.mark.parametrize("offset", ["", "CET"])
+def test_a_bad_offset_field_names_fields_utc_offset(folder: Path, offset: str) -> None:
+    from daemon.engine.decode import Decoder, Rejected
+
+    p = load_profile(folder / "dropcount-interval.toml")
+    out = Decoder(p).decode("dc-07", _dropcount_line("125", offset))
+    assert isinstance(out, Rejected) and out.reason == "bad_time"
+    assert out.key == "fields.utc_offset"  # time.format is right: iso8601 with an offset
