@@ -331,3 +331,19 @@ def test_a_bad_offset_field_names_fields_utc_offset(folder: Path, offset: str) -
     out = Decoder(p).decode("dc-07", _dropcount_line("125", offset))
     assert isinstance(out, Rejected) and out.reason == "bad_time"
     assert out.key == "fields.utc_offset"  # time.format is right: iso8601 with an offset
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="decode.py (not ours to edit here) refuses a numeric id field as 'payload names "
+    "another device than its topic', though it names the same one",
+)
+def test_a_numeric_device_id_field_is_not_called_another_device(folder: Path) -> None:
+    from daemon.engine.decode import Decoder, Rejected
+
+    p = load_profile(folder / "flowcell-litre.toml")
+    _, payload = flowcell(p, 1773446460.0, 100.0, 1)
+    payload["meta"]["unit_id"] = 1207  # invented: a meter whose serial is a JSON number
+    out = Decoder(p).decode("1207", payload)
+    assert isinstance(out, Rejected)  # a device id must be text (DEVELOPERS.md section 2)
+    assert "another device" not in out.detail, out.detail  # it is the same device
