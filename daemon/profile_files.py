@@ -63,7 +63,7 @@ def problems(exc: ValidationError) -> list[str]:
 
 def _read(path: Path) -> dict[str, Any]:
     try:
-        return tomllib.loads(path.read_text(encoding="utf-8"))
+        return tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a BOM means nothing
     except OSError as exc:
         raise UserError(f"{path}: cannot read: {exc.strerror}") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:

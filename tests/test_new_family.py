@@ -347,3 +347,15 @@ def test_a_numeric_device_id_field_is_not_called_another_device(folder: Path) ->
     out = Decoder(p).decode("1207", payload)
     assert isinstance(out, Rejected)  # a device id must be text (DEVELOPERS.md section 2)
     assert "another device" not in out.detail, out.detail  # it is the same device
+
+
+def test_a_profile_saved_with_a_byte_order_mark_loads(folder: Path) -> None:
+    """Editors on a hospital workstation may save 'UTF-8 with BOM': the file then failed
+    with 'not valid TOML: Invalid statement (at line 1, column 1)', on a first line that
+    looks right. The mark carries no meaning in a UTF-8 file."""
+    f = folder / "flowcell-litre.toml"
+    f.write_bytes(b"\xef\xbb\xbf" + FLOWCELL.replace("\n", "\r\n").encode("utf-8"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    assert "ok  flowcell-litre" in done.stdout
