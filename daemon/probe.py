@@ -238,7 +238,14 @@ class ProbeTally:
         p = self.profile
         lines: list[str] = []
         if not self.devices:
-            lines.append(f"no message on {p.subscription} from any device")
+            # mosquitto grants a subscription its ACL forbids, then delivers nothing
+            pattern = p.topic_pattern
+            acl = pattern.fill({n: "%u" if n == DEVICE_LEVEL else "+" for n in pattern.names})
+            lines += [f"no message on {p.subscription} from any device: check that the meter "
+                      f"publishes on {p.topic}, and, where the broker has an ACL "
+                      "(deploy/mosquitto/acl),",
+                      f"  that it has 'pattern write {acl}' for the meters and 'topic read "
+                      f"{p.subscription}' for this login and the service's"]  # fmt: skip
         quality = self.engine.quality()
         for name in sorted(self.devices):
             lines += self._device_report(name, self.devices[name], quality.get(name))

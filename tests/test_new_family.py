@@ -359,3 +359,14 @@ def test_a_profile_saved_with_a_byte_order_mark_loads(folder: Path) -> None:
                           text=True, env=ENV, timeout=60)  # fmt: skip
     assert done.returncode == 0, done.stderr
     assert "ok  flowcell-litre" in done.stdout
+
+
+def test_a_silent_probe_says_where_to_look(broker, folder) -> None:  # noqa: F811
+    """The broker hears nothing on the new family's topic (a meter on another topic, or
+    a broker whose ACL does not yet let the meters write and this login read it:
+    mosquitto grants the subscription and then delivers nothing). 'No message' alone
+    leaves the engineer guessing: it names the topic filter and the ACL."""
+    out = probe_on_broker(broker, ["--profile", "flowcell-litre", "--profiles", str(folder)],
+                          [("flowcel/fc-11/data", {"meta": {}})])  # a typo in the meter's topic
+    assert "no message on flowcell/+/data from any device" in out, out
+    assert "deploy/mosquitto/acl" in out and "flowcell/%u/data" in out, out
