@@ -370,3 +370,19 @@ def test_a_silent_probe_says_where_to_look(broker, folder) -> None:  # noqa: F81
                           [("flowcel/fc-11/data", {"meta": {}})])  # a typo in the meter's topic
     assert "no message on flowcell/+/data from any device" in out, out
     assert "deploy/mosquitto/acl" in out and "flowcell/%u/data" in out, out
+
+
+def test_an_interval_longer_than_the_reporting_period_is_refused(folder: Path) -> None:
+    """A meter sending the last minute's volume every minute, described with the
+    template's interval_s = 300 left in place: each message then claims five minutes,
+    four in five overlap the one before and are refused (conflicting_duplicate), and
+    the hours that remain read 12 mL/h instead of 60 with every minute 'measured', an
+    oliguric-looking 0.15 mL/kg/h at 80 kg (invented). Refused by the checker."""
+    f = folder / "dropcount-interval.toml"
+    f.write_text(DROPCOUNT.replace("period_s = 300", "period_s = 60"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2
+    assert f"hourwatch: {f}: volume.interval_s: longer than timing.period_s" in done.stderr, (
+        done.stderr
+    )

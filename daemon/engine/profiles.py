@@ -462,7 +462,15 @@ class DeviceProfile(_Strict):
             why = ('only read with time.format = "iso8601": an epoch time is UTC already, '
                    "and the field would be ignored")  # fmt: skip
             problems.append((("fields", "utc_offset"), why))
-        if self.volume.semantics is Semantics.INTERVAL and self.limits.min_ml < 0:
+        interval_s = self.volume.interval_s
+        interval = self.volume.semantics is Semantics.INTERVAL
+        if interval and interval_s is not None and interval_s > self.timing.period_s:
+            why = (f"longer than timing.period_s: a meter sending every "
+                   f"{self.timing.period_s} s cannot cover {interval_s} s with each message "
+                   "without overlapping the one before, and overlapping intervals are refused "
+                   "(conflicting_duplicate); set it to the length one message covers")  # fmt: skip
+            problems.append((("volume", "interval_s"), why))
+        if interval and self.limits.min_ml < 0:
             why = "an interval's volume cannot be negative: 0 or more for interval meters"
             problems.append((("limits", "min_ml"), why))
         if self.volume.semantics is Semantics.INTERVAL and self.fields.bag_change_flag:
