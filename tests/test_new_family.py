@@ -386,3 +386,18 @@ def test_an_interval_longer_than_the_reporting_period_is_refused(folder: Path) -
     assert f"hourwatch: {f}: volume.interval_s: longer than timing.period_s" in done.stderr, (
         done.stderr
     )
+
+
+def test_a_gap_limit_not_above_the_reporting_period_is_refused(folder: Path) -> None:
+    """A cumulative meter reporting every 40 minutes, with max_interpolation_gap_s left at
+    its default of 30 minutes: every gap between two ordinary readings is then 'longer
+    than the limit', every minute is estimated, and the low-output rules, which judge only
+    windows at least 90% measured, never judge: 15 mL/h at 80 kg (0.19 mL/kg/h, invented)
+    for 12 hours raised no alarm. Refused by the checker."""
+    f = folder / "flowcell-litre.toml"
+    f.write_text(FLOWCELL.replace("period_s = 60", "period_s = 2400"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2
+    line = f"hourwatch: {f}: timing.max_interpolation_gap_s: must be longer than timing.period_s"
+    assert line in done.stderr, done.stderr

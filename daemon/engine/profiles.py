@@ -470,6 +470,12 @@ class DeviceProfile(_Strict):
                    "without overlapping the one before, and overlapping intervals are refused "
                    "(conflicting_duplicate); set it to the length one message covers")  # fmt: skip
             problems.append((("volume", "interval_s"), why))
+        gap_s, period_s = self.timing.max_interpolation_gap_s, self.timing.period_s
+        if not interval and gap_s <= period_s:
+            why = (f"must be longer than timing.period_s ({period_s} s; twice it or more is "
+                   "usual): else every gap between two ordinary readings counts as estimated, "
+                   "and the low-output rules, which need 90% measured, never judge")  # fmt: skip
+            problems.append((("timing", "max_interpolation_gap_s"), why))
         if interval and self.limits.min_ml < 0:
             why = "an interval's volume cannot be negative: 0 or more for interval meters"
             problems.append((("limits", "min_ml"), why))
