@@ -301,7 +301,7 @@ class ProbeTally:
         period = float(p.timing.period_s)
         lines = []
         tol = p.timing.clock_tolerance_s
-        stored_after = max(tol, 2 * period)  # as the engine tells a stored reading
+        stored_after = p.timing.stored_after_s  # as the engine tells a stored reading
         bursts = d.bursts(period, stored_after)
         for n, recv_span, dev_span in bursts:
             lines.append(f"  buffered upload: {n} readings received within {num(recv_span, 1)} s, "

@@ -401,3 +401,18 @@ def test_a_gap_limit_not_above_the_reporting_period_is_refused(folder: Path) -> 
     assert done.returncode == 2
     line = f"hourwatch: {f}: timing.max_interpolation_gap_s: must be longer than timing.period_s"
     assert line in done.stderr, done.stderr
+
+
+def test_a_store_limit_below_the_live_lateness_is_refused(folder: Path) -> None:
+    """store_forward_max_s = 0, written for a meter that keeps no store: every reading,
+    being a little older than its receive time, was then refused as too_old (the whole
+    meter lost; only a sanity warning after ten readings said why). A reading sent live
+    may be up to max(clock_tolerance_s, 2 x period_s) old before it counts as stored, so
+    the limit may not be below that."""
+    f = folder / "flowcell-litre.toml"
+    f.write_text(FLOWCELL.replace("period_s = 60", "period_s = 60\nstore_forward_max_s = 0"))
+    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2
+    line = f"hourwatch: {f}: timing.store_forward_max_s: must be at least 120 s"
+    assert line in done.stderr, done.stderr

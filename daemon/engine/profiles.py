@@ -223,6 +223,12 @@ class Timing(_Strict):
         default=86400, description="oldest buffered reading accepted (s)"
     )
 
+    @property
+    def stored_after_s(self) -> int:
+        """How old a reading may be on arrival and still count as sent live; older ones
+        are store-and-forward uploads."""
+        return max(self.clock_tolerance_s, 2 * self.period_s)
+
 
 class Limits(_Strict):
     max_flow_ml_h: Annotated[float, Field(gt=0, le=20000)] = Field(
@@ -476,6 +482,12 @@ class DeviceProfile(_Strict):
                    "usual): else every gap between two ordinary readings counts as estimated, "
                    "and the low-output rules, which need 90% measured, never judge")  # fmt: skip
             problems.append((("timing", "max_interpolation_gap_s"), why))
+        live_s = self.timing.stored_after_s
+        if self.timing.store_forward_max_s < live_s:
+            why = (f"must be at least {live_s} s (the larger of clock_tolerance_s and twice "
+                   "period_s): a reading sent live may be that old on arrival, and a lower "
+                   "limit refuses it as too_old")  # fmt: skip
+            problems.append((("timing", "store_forward_max_s"), why))
         if interval and self.limits.min_ml < 0:
             why = "an interval's volume cannot be negative: 0 or more for interval meters"
             problems.append((("limits", "min_ml"), why))
