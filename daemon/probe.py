@@ -319,8 +319,10 @@ class ProbeTally:
             lines.append(f"  clock error: the device clock runs {num(-offset, 0)} s ahead of "
                          f"ours on every live reading: {what}")  # fmt: skip
         elif offset > stored_after:
-            what = ("each counts as store-and-forward (check the meter's clock, its time zone, "
-                    "or time.format)")  # fmt: skip
+            fate = ("each is refused as too_old (older than timing.store_forward_max_s)"
+                    if offset > p.timing.store_forward_max_s
+                    else "each counts as store-and-forward")  # fmt: skip
+            what = f"{fate} (check the meter's clock, its time zone, or time.format)"
             lines.append(f"  clock error: the device clock runs {num(offset, 0)} s behind ours "
                          f"on every live reading: {what}")  # fmt: skip
         return lines

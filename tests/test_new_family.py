@@ -416,3 +416,21 @@ def test_a_store_limit_below_the_live_lateness_is_refused(folder: Path) -> None:
     assert done.returncode == 2
     line = f"hourwatch: {f}: timing.store_forward_max_s: must be at least 120 s"
     assert line in done.stderr, done.stderr
+
+
+def test_the_probe_says_too_old_readings_are_refused_not_stored(folder: Path) -> None:
+    """Epoch seconds sent where the profile declares milliseconds date every reading in
+    January 1970: the cleaning refuses each as too_old, but the clock line said 'each
+    counts as store-and-forward', as if they were kept."""
+    p = load_profile(folder / "flowcell-litre.toml")
+    tally = ProbeTally(p)
+    t0 = 1796300000.0  # invented receive times, 60 s apart
+    for i in range(5):
+        topic, payload = flowcell(p, t0 + 60 * i, 100.0 + i, i)
+        payload["meta"]["clock"]["ms"] = int(t0 + 60 * i)  # seconds where ms are declared
+        tally.observe(topic, json.dumps(payload).encode(), t0 + 60 * i + 1)
+    text = "\n".join(tally.report())
+    assert "too_old 5" in text, text
+    clock = next(x for x in text.splitlines() if "clock error" in x)
+    assert "store-and-forward" not in clock and "too_old" in clock, clock
+    assert "store_forward_max_s" in clock and "time.format" in clock, clock
