@@ -139,6 +139,21 @@ def load_profiles(folder: Path | None = None) -> list[DeviceProfile]:
     return profiles
 
 
+def check_prefix(profiles: list[DeviceProfile], prefix: str, folder: Path | None) -> None:
+    """A family whose topic could lie under the service's own `{prefix}/...` topics: its
+    readings would be taken for bed messages (and refused), or it would read the
+    service's own pages back. One line naming the file, for `check` and `run`."""
+    own = prefix.split("/")
+    for p in profiles:
+        levels = p.topic_pattern.levels
+        head = zip(levels[: len(own)], own, strict=True)
+        if len(levels) > len(own) and all(a == b or a.startswith("{") for a, b in head):
+            where = (folder or BUNDLED) / f"{p.name}.toml"
+            raise UserError(f"{where}: topic: {p.topic} could match the service's own topics "
+                            f"under '{prefix}/' (topic_prefix); give the family a first level "
+                            "of its own")  # fmt: skip
+
+
 def load_devices(path: Path | None) -> dict[str, Calibration]:
     """A devices file's per-meter calibration (none without a file)."""
     if path is None:

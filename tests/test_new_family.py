@@ -434,3 +434,28 @@ def test_the_probe_says_too_old_readings_are_refused_not_stored(folder: Path) ->
     clock = next(x for x in text.splitlines() if "clock error" in x)
     assert "store-and-forward" not in clock and "too_old" in clock, clock
     assert "store_forward_max_s" in clock and "time.format" in clock, clock
+
+
+@pytest.mark.parametrize(
+    "topic",
+    [
+        "hourwatch/beds/{device_id}/uo",  # read as a bed topic: every reading unknown_topic
+        "hourwatch/alarms/{ward}/{device_id}",  # the service would read its own pages back
+        "{site}/beds/{device_id}/uo",  # a first level that can be anything, the prefix too
+    ],
+)
+def test_a_family_under_the_service_prefix_is_refused_by_check(folder, tmp_path, topic) -> None:
+    """check-profiles cannot know the service's topic prefix, and `hourwatch check` did
+    not compare them: a family on hourwatch/beds/{device_id}/uo was subscribed, and then
+    every reading was refused as 'unknown bed topic' (the bed topics come first)."""
+    f = folder / "flowcell-litre.toml"
+    f.write_text(FLOWCELL.replace('topic = "flowcell/{device_id}/data"', f'topic = "{topic}"'))
+    config = tmp_path / "hourwatch.toml"
+    config.write_text(f'schema = 1\nprofiles = "{folder}"\n[journal]\n'
+                      f'path = "{tmp_path / "journal.db"}"\n')  # fmt: skip
+    done = subprocess.run(hourwatch("check", "--config", str(config)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+    assert done.returncode == 2, done.stdout
+    assert done.stderr.startswith(f"hourwatch: {f}: topic: "), done.stderr
+    assert "topic_prefix" in done.stderr and "Traceback" not in done.stderr
+    assert len(done.stderr.strip().splitlines()) == 1, done.stderr
