@@ -459,3 +459,27 @@ def test_a_family_under_the_service_prefix_is_refused_by_check(folder, tmp_path,
     assert done.stderr.startswith(f"hourwatch: {f}: topic: "), done.stderr
     assert "topic_prefix" in done.stderr and "Traceback" not in done.stderr
     assert len(done.stderr.strip().splitlines()) == 1, done.stderr
+
+
+def test_a_flagged_reading_is_a_bag_change_whatever_detect_says(folder: Path) -> None:
+    """DEVELOPERS.md said a flag counts only with detect = "flag" or "both"; the cleaning
+    believes a flag the profile declares whatever `detect` says (detect = "fall" turns
+    on the fall rule, it does not turn flags off). Pinned here, as the document now says."""
+    from daemon.engine.engine import Engine
+
+    text = FLOWCELL.replace("[limits]", '[bag_change]\ndetect = "fall"\n\n[limits]')
+    f = folder / "flowcell-litre.toml"
+    f.write_text(text)
+    p = load_profile(f)
+    engine = Engine([p])
+    t0 = 1773446400.0  # 2026-03-14T00:00:00Z; invented readings, 1 mL a minute
+    engine.step("hourwatch/beds/bed-21/context", {"ward": "4-West", "device_ids": ["fc-11"]}, t0)
+    for i in range(1, 6):
+        topic, payload = encode(p, "fc-11", t0 + 60 * i, 300.0 + i, seq=i)
+        engine.step(topic, payload, t0 + 60 * i + 1)
+    # the bag emptied and the meter says so with its state code; 120 mL left in the bag
+    # (a partial drain: not near zero, so no fall rule would take it at once)
+    topic, payload = encode(p, "fc-11", t0 + 360, 120.0, seq=6, status="EMPTIED")
+    engine.step(topic, payload, t0 + 361)
+    outcomes = engine.quality()["fc-11"]["outcomes"]
+    assert isinstance(outcomes, dict) and outcomes.get("bag_change") == 1, outcomes
