@@ -18,12 +18,13 @@ import statistics
 import threading
 import time
 from collections import Counter, deque
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, TextIO
 
 from .engine.decode import Decoder, Reading, Rejected
-from .engine.engine import Engine
+from .engine.effects import RejectedInput
+from .engine.engine import Engine, ReadingTrace
 from .engine.numbers import num
 from .engine.outcomes import COUNTED_IN_SERIES, DECODE_REJECTIONS, Outcome
 from .engine.profiles import DEVICE_LEVEL, Calibration, DeviceProfile, Semantics
@@ -33,6 +34,9 @@ from .journal import log_payload
 
 SAMPLE_KEPT = 3  # latest decoded readings shown per device
 CODES_KEPT = 32  # distinct status codes counted per device
+# distinct details kept per rejection reason and device: one reason code can have several
+# causes to fix (a missing status, a missing volume), each shown with its own example
+DETAILS_KEPT = 4
 TIMES_KEPT = 4096  # (receive, device) times kept per device for the period and bursts
 # A store-and-forward burst: this many readings or more, each received within
 # max(BURST_GAP_S, a tenth of the period) of the one before, whose device times are a
@@ -50,8 +54,10 @@ class DeviceTally:
     retained: int = 0  # sent by the broker at subscribe time: stale receive times
     accepted: int = 0
     rejected: Counter[str] = field(default_factory=Counter)
-    # the first example of each rejection reason: (detail, profile key to check)
-    examples: dict[str, tuple[str, str]] = field(default_factory=dict)
+    # per (reason, detail): the first example (detail with the value sent, profile key to
+    # check) and how many; at most DETAILS_KEPT details a reason, the rest counted in its last
+    examples: dict[tuple[str, str], tuple[str, str]] = field(default_factory=dict)
+    example_counts: Counter[tuple[str, str]] = field(default_factory=Counter)
     status_codes: Counter[str] = field(default_factory=Counter)
     levels: dict[str, str] = field(default_factory=dict)  # the topic's metadata levels
     # (receive time, device time, retained) of decoded readings, in arrival order
@@ -63,6 +69,19 @@ class DeviceTally:
     )  # (device time, mL, implied mL/h)
     last: tuple[float, float] | None = None  # (device time, mL) of the last reading
     bed: str | None = None  # its temporary bed in the probe's engine
+
+    def add_rejection(self, out: Rejected) -> None:
+        reason = str(out.reason)
+        self.rejected[reason] += 1
+        at = (reason, out.detail)
+        if at not in self.examples:
+            kept = [k for k in self.examples if k[0] == reason]
+            if len(kept) >= DETAILS_KEPT:
+                self.example_counts[kept[-1]] += 1
+                return
+            shown = f"{out.detail}: {out.shown}" if out.shown else out.detail
+            self.examples[at] = (shown, out.key)
+        self.example_counts[at] += 1
 
     @property
     def device_times(self) -> list[float]:
@@ -135,7 +154,8 @@ class ProbeTally:
         self.profile = profile
         self.decoder = Decoder(profile)
         self.pattern = profile.topic_regex()
-        self.engine = Engine([profile], calibration=calibration)
+        self.engine = Engine([profile], calibration=calibration, observe=self._traced)
+        self._trace: ReadingTrace | None = None  # what the engine made of the message
         self.devices: dict[str, DeviceTally] = {}
         self.other_topics = 0  # matched the filter but not the profile's topic
         self.save = save
@@ -160,20 +180,38 @@ class ProbeTally:
             if code not in d.status_codes and len(d.status_codes) >= CODES_KEPT:
                 code = "(other codes)"  # a meter sending anything must not grow the probe
             d.status_codes[code] += 1
-        self.engine.step(topic, payload, recv_time)
-        out = self.decoder.decode(device, payload)
+        self._trace = None
+        effects = self.engine.step(topic, payload, recv_time)
+        out = self._calibrated(self.decoder.decode(device, payload), effects)
         if isinstance(out, Rejected):
-            reason = str(out.reason)
-            d.rejected[reason] += 1
-            if reason not in d.examples:
-                detail = f"{out.detail}: {out.shown}" if out.shown else out.detail
-                d.examples[reason] = (detail, out.key)
+            d.add_rejection(out)
             return
         assert isinstance(out, Reading)
         d.accepted += 1
         d.times.append((recv_time, out.device_time, retained))
         d.sample.append((out.device_time, out.volume_ml, self._rate(d, out)))
         d.last = (out.device_time, out.volume_ml)
+
+    def _traced(self, trace: ReadingTrace) -> None:
+        self._trace = trace
+
+    def _calibrated(self, out: Reading | Rejected, effects: Sequence[object]) -> Reading | Rejected:
+        """The reading as the engine took it: corrected by the meter's calibration, or
+        refused when the correction leaves the physical range (the probe's own decoder
+        knows no calibration; it gives the value sent and the key to check)."""
+        trace = self._trace
+        if isinstance(out, Rejected) or trace is None:
+            return out
+        if trace.volume_ml is None and trace.outcomes[-1] in DECODE_REJECTIONS:
+            reason = trace.outcomes[-1]
+            said = [e.detail for e in effects
+                    if isinstance(e, RejectedInput) and e.reason == reason]  # fmt: skip
+            detail = said[0] if said else str(reason)
+            shown = f"{num(out.volume_ml, 1)} mL before calibration"
+            return Rejected(reason, detail, out.device_id, shown, "calibration")
+        if trace.volume_ml is not None:
+            out.volume_ml = trace.volume_ml
+        return out
 
     def _bind(self, device: str, d: DeviceTally, now: float) -> None:
         """A temporary bed for the device, so the engine cleans its readings."""
@@ -200,7 +238,14 @@ class ProbeTally:
         p = self.profile
         lines: list[str] = []
         if not self.devices:
-            lines.append(f"no message on {p.subscription} from any device")
+            # mosquitto grants a subscription its ACL forbids, then delivers nothing
+            pattern = p.topic_pattern
+            acl = pattern.fill({n: "%u" if n == DEVICE_LEVEL else "+" for n in pattern.names})
+            lines += [f"no message on {p.subscription} from any device: check that the meter "
+                      f"publishes on {p.topic}, and, where the broker has an ACL "
+                      "(deploy/mosquitto/acl),",
+                      f"  that it has 'pattern write {acl}' for the meters and 'topic read "
+                      f"{p.subscription}' for this login and the service's"]  # fmt: skip
         quality = self.engine.quality()
         for name in sorted(self.devices):
             lines += self._device_report(name, self.devices[name], quality.get(name))
@@ -242,8 +287,8 @@ class ProbeTally:
             held = " (1 held for confirmation)" if q.get("held") else ""
             lines.append(f"  cleaning, as the service would: {series} into the series; "
                          + ", ".join(f"{o} {n}" for o, n in shown.items()) + held)  # fmt: skip
-        for reason, n in sorted(d.rejected.items()):
-            detail, key = d.examples[reason]
+        for (reason, _), (detail, key) in sorted(d.examples.items(), key=lambda x: x[0][0]):
+            n = d.example_counts[reason, _]
             check = f"; check {key}" if key else ""
             lines.append(f"  rejected: {reason}: {detail}  ({n}; e.g. the first{check})")
         for w in self.engine.sanity_warnings():
@@ -256,7 +301,7 @@ class ProbeTally:
         period = float(p.timing.period_s)
         lines = []
         tol = p.timing.clock_tolerance_s
-        stored_after = max(tol, 2 * period)  # as the engine tells a stored reading
+        stored_after = p.timing.stored_after_s  # as the engine tells a stored reading
         bursts = d.bursts(period, stored_after)
         for n, recv_span, dev_span in bursts:
             lines.append(f"  buffered upload: {n} readings received within {num(recv_span, 1)} s, "
@@ -274,8 +319,10 @@ class ProbeTally:
             lines.append(f"  clock error: the device clock runs {num(-offset, 0)} s ahead of "
                          f"ours on every live reading: {what}")  # fmt: skip
         elif offset > stored_after:
-            what = ("each counts as store-and-forward (check the meter's clock, its time zone, "
-                    "or time.format)")  # fmt: skip
+            fate = ("each is refused as too_old (older than timing.store_forward_max_s)"
+                    if offset > p.timing.store_forward_max_s
+                    else "each counts as store-and-forward")  # fmt: skip
+            what = f"{fate} (check the meter's clock, its time zone, or time.format)"
             lines.append(f"  clock error: the device clock runs {num(offset, 0)} s behind ours "
                          f"on every live reading: {what}")  # fmt: skip
         return lines

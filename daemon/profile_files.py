@@ -19,6 +19,9 @@ from .errors import UserError, describe_validation
 BUNDLED = Path(__file__).resolve().parent.parent / "device_profiles"
 
 
+_FIELD_REF = "a dotted JSON path or key name in quotes, or a 0-based column number"
+
+
 def _key(loc: tuple[str | int, ...]) -> str:
     return ".".join(str(x) for x in loc) or "(top level)"
 
@@ -31,6 +34,12 @@ def problems(exc: ValidationError) -> list[str]:
     meant: set[tuple[str | int, ...]] = set()  # required keys an unknown key stands for
     for e in errs:
         loc = tuple(e["loc"])
+        if len(loc) == 3 and loc[0] in ("fields", "checksum") and loc[2] in ("str", "int"):
+            # a field reference (str | int) fails once per member: one line, its own key
+            item = (_key(loc[:-1]), _FIELD_REF)
+            if item not in out:
+                out.append(item)
+            continue
         if e["type"] == "extra_forbidden":
             guess = close_key(str(loc[-1]), known_keys(loc[:-1]))
             msg = "unknown key"
@@ -54,7 +63,7 @@ def problems(exc: ValidationError) -> list[str]:
 
 def _read(path: Path) -> dict[str, Any]:
     try:
-        return tomllib.loads(path.read_text(encoding="utf-8"))
+        return tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a BOM means nothing
     except OSError as exc:
         raise UserError(f"{path}: cannot read: {exc.strerror}") from None
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
@@ -128,6 +137,21 @@ def load_profiles(folder: Path | None = None) -> list[DeviceProfile]:
     if clashes:
         raise UserError(clashes[0])
     return profiles
+
+
+def check_prefix(profiles: list[DeviceProfile], prefix: str, folder: Path | None) -> None:
+    """A family whose topic could lie under the service's own `{prefix}/...` topics: its
+    readings would be taken for bed messages (and refused), or it would read the
+    service's own pages back. One line naming the file, for `check` and `run`."""
+    own = prefix.split("/")
+    for p in profiles:
+        levels = p.topic_pattern.levels
+        head = zip(levels[: len(own)], own, strict=True)
+        if len(levels) > len(own) and all(a == b or a.startswith("{") for a, b in head):
+            where = (folder or BUNDLED) / f"{p.name}.toml"
+            raise UserError(f"{where}: topic: {p.topic} could match the service's own topics "
+                            f"under '{prefix}/' (topic_prefix); give the family a first level "
+                            "of its own")  # fmt: skip
 
 
 def load_devices(path: Path | None) -> dict[str, Calibration]:

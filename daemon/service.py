@@ -66,7 +66,7 @@ from .notify.acklinks import AckOutcome
 from .notify.notifier import Notifier
 from .notify.settings import check_notify, policy_roles
 from .notify.store import open_store
-from .profile_files import load_devices, load_profiles
+from .profile_files import check_prefix, load_devices, load_profiles
 from .publisher import Outbox, Outgoing
 from .recovery import Recovery, longest_window_s, recover, series_keep_s
 from .rule_files import load_advice, load_policy, load_rules
@@ -252,6 +252,7 @@ class Service:
         self._board_marks = bool(cfg.board.listen)
         self.changes = ChangeFeed()
         profiles = load_profiles(cfg.profiles)
+        check_prefix(profiles, self.prefix, cfg.profiles)
         self.rules = load_rules(cfg.rules)
         self.policy = load_policy(cfg.rules)
         self.subscriptions = [p.subscription for p in profiles] + [

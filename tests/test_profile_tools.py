@@ -125,6 +125,37 @@ def test_new_profile_writes_a_commented_template_that_checks(tmp_path, capsys, c
     assert run(capsys, "check-profiles", str(folder))[0] == 0
 
 
+@pytest.mark.parametrize("closest", sorted(PROFILES))
+def test_new_profile_named_after_a_topic_level_keeps_the_folder_valid(tmp_path, capsys,
+                                                                      closest) -> None:  # fmt: skip
+    """A family named like the first level of an existing topic (a ward's own word for its
+    meters: 'bedside', 'meters') got that family's very topic, so the folder it was
+    written into no longer loaded: check, run and new-profile itself refused it."""
+    folder = tmp_path / "profiles"
+    shutil.copytree(BUNDLED, folder)
+    taken = {PROFILES[n].topic.split("/")[0] for n in PROFILES}
+    for name in sorted(taken):
+        rc, _, err = run(capsys, "new-profile", name, "--from", closest,
+                           "--profiles", str(folder))  # fmt: skip
+        assert rc == 0, err
+    rc, _, err = run(capsys, "check-profiles", str(folder))
+    assert rc == 0, err
+
+
+@pytest.mark.parametrize("out", ["meter.toml", "ward-meter.txt"])
+def test_new_profile_out_must_be_a_file_the_folder_check_loads(tmp_path, capsys, out) -> None:
+    """--out meter.toml wrote a profile named ward-meter that check-profiles refuses (a
+    profile's name equals its file name); --out ward-meter.txt one it never reads."""
+    rc, _, err = run(capsys, "new-profile", "ward-meter", "--from", "reference-cumulative",
+                     "--out", str(tmp_path / out))  # fmt: skip
+    assert rc == 2 and "--out" in err and "ward-meter.toml" in err, err
+    assert not (tmp_path / out).exists()
+    rc, _, err = run(capsys, "new-profile", "ward-meter", "--from", "reference-cumulative",
+                     "--out", str(tmp_path / "ward-meter.toml"))  # fmt: skip
+    assert rc == 0, err
+    assert run(capsys, "check-profiles", str(tmp_path))[0] == 0
+
+
 def test_new_profile_never_overwrites_and_checks_its_arguments(tmp_path, capsys) -> None:
     folder = tmp_path / "profiles"
     shutil.copytree(BUNDLED, folder)

@@ -6,9 +6,11 @@ written commented out. The file is checked before it is written, and never overw
 from __future__ import annotations
 
 import argparse
+import itertools
 import json
 import re
 import tomllib
+from collections.abc import Sequence
 from enum import StrEnum
 from pathlib import Path
 from typing import Any
@@ -49,7 +51,8 @@ def add(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
                    help="profile folder to read CLOSEST from and write into "
                    "(default: the shipped profiles)")  # fmt: skip
     p.add_argument("--out", type=Path, default=None, metavar="FILE",
-                   help="write here instead of FOLDER/NAME.toml")  # fmt: skip
+                   help="write here instead of FOLDER/NAME.toml (a file named "
+                   "NAME.toml)")  # fmt: skip
     p.set_defaults(run=run)
 
 
@@ -87,17 +90,20 @@ def _section(model: type[BaseModel], values: dict[str, Any] | None) -> list[str]
     return lines
 
 
-def _topic(name: str, closest: str) -> str:
-    """The closest family's topic under the new family's own first level."""
+def _topic(name: str, closest: str, taken: Sequence[DeviceProfile]) -> str:
+    """The closest family's topic under the new family's own first level, one that no
+    family of the folder could also match (else the folder would no longer load)."""
     levels = list(compile_topic(closest).levels)
-    if levels and "{" not in levels[0]:
-        levels[0] = name
-    else:
+    if not levels or "{" in levels[0]:
         levels.insert(0, name)
+    for first in itertools.chain([name], (f"{name}-{n}" for n in itertools.count(2))):
+        levels[0] = first
+        if not any(compile_topic("/".join(levels)).overlaps(p.topic_pattern) for p in taken):
+            break
     return "/".join(levels)
 
 
-def template(name: str, closest: DeviceProfile) -> str:
+def template(name: str, closest: DeviceProfile, taken: Sequence[DeviceProfile] = ()) -> str:
     data = closest.model_dump(mode="json")
     fields = DeviceProfile.model_fields
     out = [
@@ -112,7 +118,11 @@ def template(name: str, closest: DeviceProfile) -> str:
         *_line("schema", 1, fields["schema_version"].description),
         *_line("name", name, fields["name"].description),
         *_line("description", f"CHANGE: one line about {name}", fields["description"].description),
-        *_line("topic", _topic(name, closest.topic), "CHANGE: " + str(fields["topic"].description)),
+        *_line(
+            "topic",
+            _topic(name, closest.topic, taken),
+            "CHANGE: " + str(fields["topic"].description),
+        ),
     ]
     for section, about in SECTIONS.items():
         model = fields[section].annotation
@@ -134,9 +144,12 @@ def run(args: argparse.Namespace) -> int:
     if any(p.name == args.name for p in profiles):
         raise UserError(f"name: a profile {args.name!r} exists already in {folder}")
     out: Path = args.out or folder / f"{args.name}.toml"
+    if out.name != f"{args.name}.toml":  # profiles are read from NAME.toml files only
+        raise UserError(f"--out: name the file {args.name}.toml (a profile's name equals "
+                        "its file name, and only *.toml files are read)")  # fmt: skip
     if out.exists():
         raise UserError(f"{out}: exists already; new-profile never overwrites a file")
-    text = template(args.name, closest)
+    text = template(args.name, closest, profiles)
     # the template must load as it is: the same family under a topic of its own
     DeviceProfile.model_validate(tomllib.loads(text))
     try:

@@ -20,7 +20,9 @@ NAME_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # allow_inf_nan: TOML has nan and inf; min_ml = nan refused every reading as out of
+    # range, max_ml = inf checked nothing and left the bag never full
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 Problem = tuple[tuple[str | int, ...], str]  # (where: the key's path, what is wrong)
@@ -220,6 +222,12 @@ class Timing(_Strict):
     store_forward_max_s: Annotated[int, Field(ge=0, le=7 * 86400)] = Field(
         default=86400, description="oldest buffered reading accepted (s)"
     )
+
+    @property
+    def stored_after_s(self) -> int:
+        """How old a reading may be on arrival and still count as sent live; older ones
+        are store-and-forward uploads."""
+        return max(self.clock_tolerance_s, 2 * self.period_s)
 
 
 class Limits(_Strict):
@@ -456,6 +464,33 @@ class DeviceProfile(_Strict):
             problems.append((("status", "bag_change"), "needs fields.status"))
         if set(s.lower() for s in self.status.ok) & set(s.lower() for s in self.status.bag_change):
             problems.append((("status", "bag_change"), "a code cannot be both ok and bag_change"))
+        if self.fields.utc_offset is not None and self.time.format is not TimeFormat.ISO8601:
+            why = ('only read with time.format = "iso8601": an epoch time is UTC already, '
+                   "and the field would be ignored")  # fmt: skip
+            problems.append((("fields", "utc_offset"), why))
+        interval_s = self.volume.interval_s
+        interval = self.volume.semantics is Semantics.INTERVAL
+        if interval and interval_s is not None and interval_s > self.timing.period_s:
+            why = (f"longer than timing.period_s: a meter sending every "
+                   f"{self.timing.period_s} s cannot cover {interval_s} s with each message "
+                   "without overlapping the one before, and overlapping intervals are refused "
+                   "(conflicting_duplicate); set it to the length one message covers")  # fmt: skip
+            problems.append((("volume", "interval_s"), why))
+        gap_s, period_s = self.timing.max_interpolation_gap_s, self.timing.period_s
+        if not interval and gap_s <= period_s:
+            why = (f"must be longer than timing.period_s ({period_s} s; twice it or more is "
+                   "usual): else every gap between two ordinary readings counts as estimated, "
+                   "and the low-output rules, which need 90% measured, never judge")  # fmt: skip
+            problems.append((("timing", "max_interpolation_gap_s"), why))
+        live_s = self.timing.stored_after_s
+        if self.timing.store_forward_max_s < live_s:
+            why = (f"must be at least {live_s} s (the larger of clock_tolerance_s and twice "
+                   "period_s): a reading sent live may be that old on arrival, and a lower "
+                   "limit refuses it as too_old")  # fmt: skip
+            problems.append((("timing", "store_forward_max_s"), why))
+        if interval and self.limits.min_ml < 0:
+            why = "an interval's volume cannot be negative: 0 or more for interval meters"
+            problems.append((("limits", "min_ml"), why))
         if self.volume.semantics is Semantics.INTERVAL and self.fields.bag_change_flag:
             why = "interval meters have no bag to change: drop bag_change_flag"
             problems.append((("fields", "bag_change_flag"), why))
