@@ -159,6 +159,17 @@ def test_a_local_clock_sent_as_utc_says_utc_offset() -> None:
     assert "2 h behind" in found["every_reading_late"].detail
 
 
+def test_an_epoch_meter_on_local_time_says_time_format_not_an_offset_field() -> None:
+    # an epoch counted from a local clock 2 h behind UTC: an epoch family cannot declare
+    # fields.utc_offset (the profile checker refuses it), so the hint is the meter's clock
+    engine, _ = replay(KV, KV, 1.0, constant(NORMAL_ML_H), clock_s=-7200.0)
+    found = codes(engine)
+    assert set(found) == {"every_reading_late"}
+    assert found["every_reading_late"].key == "time.format"
+    assert "2 h behind" in found["every_reading_late"].detail
+    assert "Set the meter's clock to UTC" in found["every_reading_late"].detail
+
+
 def test_a_right_clock_and_a_store_and_forward_burst_are_silent() -> None:
     engine, _ = replay(REF, REF, 3.0, constant(NORMAL_ML_H))
     assert engine.sanity_history() == []

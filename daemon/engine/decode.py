@@ -24,7 +24,7 @@ from .profiles import (
     Semantics,
     TimeFormat,
 )
-from .timefmt import EPOCH_MAX_S, TimeError, parse_epoch, parse_iso
+from .timefmt import EPOCH_MAX_S, TimeError, parse_epoch, parse_iso, parse_offset
 
 Payload = bytes | str | dict[str, Any] | list[Any]
 
@@ -121,6 +121,11 @@ def _number(value: Any) -> float | None:
     return None
 
 
+class _OffsetError(TimeError):
+    """The UTC offset field is missing or unreadable: fields.utc_offset is the key to
+    check, not time.format."""
+
+
 def _text_number(value: Any) -> float | None:
     """A number written as text (a delimited payload's column)."""
     if not isinstance(value, str) or "_" in value:
@@ -193,6 +198,12 @@ class Decoder:
         v = profile.volume
         self._default_unit = v.unit or "mL"
         self._default_scale = v.ml_per_unit  # mL per unit sent without a unit field
+        # the key a reading outside the physical range points to: what made its mL
+        self._range_key = (
+            "fields.unit" if f.unit is not None
+            else "volume.scale_to_ml" if v.scale_to_ml is not None
+            else "volume.unit"
+        )  # fmt: skip
         self._sg = v.specific_gravity
         self._tare = v.tare_g
         self._semantics = v.semantics
@@ -307,7 +318,9 @@ class Decoder:
             if not isinstance(named, str) or named.strip() != topic_device:
                 return Rejected(
                     Outcome.DEVICE_ID_MISMATCH,
-                    "payload names another device than its topic",
+                    "payload names another device than its topic"
+                    if isinstance(named, str)
+                    else "device id field is not text",  # ids are text, even all digits
                     topic_device,
                     _shown(named),
                     "fields.device_id",
@@ -336,7 +349,8 @@ class Decoder:
             device_time = self._time(raw_time, obj)
         except TimeError as exc:
             return Rejected(Outcome.BAD_TIME, exc.reason, device_id, str(exc)[:120],
-                            "time.format")  # fmt: skip
+                            "fields.utc_offset" if isinstance(exc, _OffsetError)
+                            else "time.format")  # fmt: skip
 
         raw_volume = self._get_volume(obj)
         if raw_volume is _MISSING:
@@ -368,7 +382,7 @@ class Decoder:
         if not (self._min <= volume_ml <= self._max):
             return Rejected(
                 Outcome.OUT_OF_RANGE, f"{num(volume_ml, 1)} mL outside physical range", device_id,
-                key="volume.unit",
+                key=self._range_key,
             )  # fmt: skip
 
         seq: int | None = None
@@ -460,9 +474,13 @@ class Decoder:
             if self._get_offset is not None:
                 off = self._get_offset(obj)
                 if off is _MISSING:
-                    raise TimeError("UTC offset field missing")
+                    raise _OffsetError("UTC offset field missing")
                 if not isinstance(off, str):
-                    raise TimeError(f"UTC offset is not a string: {off!r}", "bad UTC offset")
+                    raise _OffsetError(f"UTC offset is not a string: {off!r}", "bad UTC offset")
+                try:
+                    parse_offset(off)
+                except TimeError as exc:
+                    raise _OffsetError(str(exc), exc.reason) from None
                 offset = off
             return parse_iso(raw, offset)
         if self._json and (isinstance(raw, bool) or not isinstance(raw, int | float)):

@@ -18,7 +18,7 @@ import numpy as np
 
 from .numbers import num
 from .outcomes import Outcome
-from .profiles import DeviceProfile, Semantics
+from .profiles import DeviceProfile, Semantics, TimeFormat
 from .timefmt import iso
 
 # Checked over tumbling spans of this much reading time: "for hours". A litre meter read
@@ -98,8 +98,8 @@ class SanityWatch:
 
     __slots__ = (
         "_changes", "_far", "_late", "_late_since", "_near", "_span_end", "active",
-        "device_id", "history", "interval", "period_s", "profile", "resolution", "span_start",
-        "tiny_ml", "values", "watch_clock",
+        "device_id", "epoch_time", "history", "interval", "period_s", "profile", "resolution",
+        "span_start", "tiny_ml", "values", "watch_clock",
     )  # fmt: skip
 
     def __init__(self, device_id: str, profile: DeviceProfile, changes: list[Change]) -> None:
@@ -109,6 +109,7 @@ class SanityWatch:
         self.resolution = profile.volume.resolution_ml
         self.tiny_ml = self.resolution / FINER_THAN  # a step this small is "far below" it
         self.interval = profile.volume.semantics is Semantics.INTERVAL
+        self.epoch_time = profile.time.format is not TimeFormat.ISO8601  # no offset field
         self.active: dict[str, SanityWarning] = {}
         self.history: list[SanityWarning] = []  # raised ones, with when they cleared
         self._changes = changes  # the engine's list: raised and cleared, in order
@@ -203,7 +204,7 @@ class SanityWatch:
             self._late += 1
             late = self._late >= LATE_RUN and now - self._late_since >= LATE_RUN * self.period_s
             if late and "every_reading_late" not in self.active:
-                key, why = _late_hint(now - device_time)
+                key, why = _late_hint(now - device_time, self.epoch_time)
                 self._raise("every_reading_late", key,
                             f"the last {self._late} readings over "
                             f"{num((now - self._late_since) / 60, 0)} min were all late or "
@@ -271,12 +272,16 @@ class SanityWatch:
             self._clear("steps_below_resolution", now)
 
 
-def _late_hint(offset_s: float) -> tuple[str, str]:
+def _late_hint(offset_s: float, epoch: bool) -> tuple[str, str]:
     """The key to check for readings that are all late, from how late they are."""
     if abs(offset_s) > FAR_S:
         return "time.format", "device times are years away: check the epoch unit"
     hours = round(offset_s / 3600.0)
     if hours and abs(offset_s - hours * 3600.0) < 300.0:
+        if epoch:  # an epoch has no offset to declare: the meter counts from local time
+            return ("time.format",
+                    f"device times run {hours} h behind: an epoch counted from local time? "
+                    "Set the meter's clock to UTC")  # fmt: skip
         return ("fields.utc_offset",
                 f"device times run {hours} h behind: a local time sent as UTC?")  # fmt: skip
     return ("timing.store_forward_max_s",
