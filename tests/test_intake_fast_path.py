@@ -15,7 +15,7 @@ from __future__ import annotations
 import json
 import math
 import tempfile
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -27,6 +27,7 @@ from hypothesis import strategies as st
 from daemon.engine import decode as decode_module
 from daemon.engine.decode import Decoder
 from daemon.engine.engine import Engine
+from daemon.errors import UserError
 from daemon.logfile import BadLine, Message, _plain, as_messages, read_log, read_messages
 from daemon.replay import replay_file
 from daemon.rule_files import load_policy, load_rules
@@ -204,7 +205,16 @@ def _both(raw: bytes) -> tuple[list[str], list[str]]:
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "log.jsonl"
         path.write_bytes(raw)
-        return _shown(read_messages(path)), _shown(as_messages(read_log(path)))
+        return _lines_of(read_messages, path), _lines_of(lambda p: as_messages(read_log(p)), path)
+
+
+def _lines_of(reader: Callable[[Path], Iterable[Message | BadLine]], path: Path) -> list[str]:
+    """A reader's lines, or its one refusal of the whole file (a NUL byte in the first
+    line: not a log at all) as a line of its own, so both readers are compared on it."""
+    try:
+        return _shown(reader(path))
+    except UserError as exc:
+        return [f"refused: {exc}"]
 
 
 def _shown(items: Iterable[Message | BadLine]) -> list[str]:
