@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import os
 import re
-import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Annotated, Any, Literal
@@ -31,7 +30,7 @@ from .engine.engine import (
     MAX_UNBOUND_DEVICES,
     UNBOUND_EXPIRY_S,
 )
-from .errors import UserError, describe_validation
+from .errors import UserError, describe_validation, read_toml
 from .journal_api import JournalTarget, is_url, pg_url
 from .notify.settings import NotifyConfig
 
@@ -392,12 +391,7 @@ def load_config(
     where = str(path) if path is not None else "configuration"
     data: dict[str, Any] = {}
     if path is not None:
-        try:
-            data = tomllib.loads(path.read_text(encoding="utf-8"))
-        except OSError as exc:
-            raise UserError(f"{path}: cannot read: {exc.strerror}") from None
-        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-            raise UserError(f"{path}: not valid TOML: {exc}") from None
+        data = read_toml(path)
         _resolve(path.resolve().parent, data)
     if broker is not None:
         try:

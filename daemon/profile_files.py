@@ -6,14 +6,12 @@ profiles); `check_folder` gives every problem of every file (`hourwatch check-pr
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
-from typing import Any
 
 from pydantic import ValidationError
 
 from .engine.profiles import Calibration, DeviceProfile, DevicesFile, close_key, known_keys
-from .errors import UserError, describe_validation
+from .errors import UserError, describe_validation, read_toml
 
 # Profiles shipped with the source tree; used when no folder is named.
 BUNDLED = Path(__file__).resolve().parent.parent / "device_profiles"
@@ -61,19 +59,10 @@ def problems(exc: ValidationError) -> list[str]:
     return [f"{key}: {msg}" for key, msg in out if key not in {_key(t) for t in meant}]
 
 
-def _read(path: Path) -> dict[str, Any]:
-    try:
-        return tomllib.loads(path.read_text(encoding="utf-8-sig"))  # a BOM means nothing
-    except OSError as exc:
-        raise UserError(f"{path}: cannot read: {exc.strerror}") from None
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: not valid TOML: {exc}") from None
-
-
 def profile_problems(path: Path) -> tuple[DeviceProfile | None, list[str]]:
     """The profile in a file, or every problem it has (each 'FILE: key: what')."""
     try:
-        data = _read(path)
+        data = read_toml(path)
     except UserError as exc:
         return None, [str(exc)]
     try:
@@ -158,7 +147,7 @@ def load_devices(path: Path | None) -> dict[str, Calibration]:
     """A devices file's per-meter calibration (none without a file)."""
     if path is None:
         return {}
-    data = _read(path)
+    data = read_toml(path)
     try:
         return dict(DevicesFile.model_validate(data).devices)
     except ValidationError as exc:

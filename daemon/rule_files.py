@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import tomllib
 from pathlib import Path
 
 from pydantic import ValidationError
@@ -10,7 +9,7 @@ from pydantic import ValidationError
 from .engine.advice import AdvicePolicy
 from .engine.escalation import EscalationPolicy, load_policy_text
 from .engine.rules import RuleDef, canonical_rule_id
-from .errors import UserError, describe_validation
+from .errors import UserError, describe_validation, read_text, read_toml
 
 BUNDLED = Path(__file__).resolve().parent.parent / "alert_rules"
 POLICY_FILE = "escalation.toml"
@@ -18,18 +17,9 @@ ADVICE_FILE = "advice.toml"
 NOT_RULES = (POLICY_FILE, ADVICE_FILE)
 
 
-def _toml(path: Path) -> dict[str, object]:
-    try:
-        return tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise UserError(f"{path}: cannot read: {exc.strerror}") from None
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise UserError(f"{path}: not valid TOML: {exc}") from None
-
-
 def load_rule(path: Path) -> RuleDef:
     try:
-        rule = RuleDef.model_validate(_toml(path))
+        rule = RuleDef.model_validate(read_toml(path))
     except ValidationError as exc:
         raise UserError(describe_validation(path, exc)) from None
     if rule.id != canonical_rule_id(path.stem):
@@ -71,7 +61,7 @@ def load_advice(folder: Path | None = None) -> AdvicePolicy:
     if not path.is_file():
         path = BUNDLED / ADVICE_FILE
     try:
-        return AdvicePolicy.model_validate(_toml(path))
+        return AdvicePolicy.model_validate(read_toml(path))
     except ValidationError as exc:
         raise UserError(describe_validation(path, exc)) from None
 
@@ -81,8 +71,6 @@ def load_policy(folder: Path | None = None) -> EscalationPolicy:
     if not path.is_file():
         path = BUNDLED / POLICY_FILE  # a rule folder without a policy uses the shipped one
     try:
-        return load_policy_text(path.read_text(encoding="utf-8"), str(path))
-    except OSError as exc:
-        raise UserError(f"{path}: cannot read: {exc.strerror}") from None
+        return load_policy_text(read_text(path), str(path))
     except ValueError as exc:
         raise UserError(str(exc).splitlines()[0]) from None

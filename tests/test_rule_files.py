@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from daemon.config import load_config
 from daemon.engine.alarms import Kind, Priority
 from daemon.engine.escalation import EscalationPolicy
 from daemon.engine.rules import DEFAULT_RULE_IDS, RuleDef
@@ -264,3 +265,28 @@ def test_the_old_spelling_of_the_hypovolaemia_rule_is_still_accepted(tmp_path: P
     assert canonical_alarm_id("b1/hypovolemia-risk/20260314T010000Z") == (
         "b1/hypovolaemia-risk/20260314T010000Z"
     )
+
+
+def test_files_saved_with_a_byte_order_mark_load(tmp_path: Path) -> None:
+    """An editor on a hospital workstation may save 'UTF-8 with BOM'; rule files, the
+    escalation policy and the service config read like profiles then (one reader)."""
+    folder = tmp_path / "rules"
+    shutil.copytree(BUNDLED, folder)
+    for name in ("oliguria-kdigo-1.toml", "escalation.toml", "advice.toml"):
+        f = folder / name
+        f.write_bytes(b"\xef\xbb\xbf" + f.read_bytes())
+    assert {r.id for r in load_rules(folder)} == {r.id for r in load_rules()}
+    assert load_policy(folder) == load_policy()
+    example = (BUNDLED.parent / "examples" / "hourwatch.toml").read_bytes()
+    plain, marked = tmp_path / "plain.toml", tmp_path / "marked.toml"  # paths: same folder
+    plain.write_bytes(example)
+    marked.write_bytes(b"\xef\xbb\xbf" + example)
+    assert load_config(marked, env={}) == load_config(plain, env={})
+
+
+def test_a_file_that_is_not_utf8_is_one_line(tmp_path: Path) -> None:
+    folder = tmp_path / "rules"
+    shutil.copytree(BUNDLED, folder)
+    (folder / "oliguria-kdigo-1.toml").write_bytes(b'id = "caf\xe9"\n')  # Latin-1, not UTF-8
+    with pytest.raises(UserError, match=r"oliguria-kdigo-1.toml: not valid TOML"):
+        load_rules(folder)
