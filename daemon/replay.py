@@ -110,20 +110,23 @@ def replay_file(
     if warn is not None:
         for bad in result.bad_lines:
             print(f"{path}:{bad.line_no}: skipped: {bad.reason}", file=warn)
-        if result.clock_went_back:
-            print(
-                f"{path}: {result.clock_went_back} line(s) had a receive time earlier than the "
-                "line before; replayed at the earlier line's time",
-                file=warn,
-            )
-        if result.until_before_end:
-            print(until_words(path, *result.until_before_end), file=warn)
+        for line in clock_warnings(result, path):
+            print(line, file=warn)
     return result
 
 
-def until_words(path: JournalTarget, until: float, last: float) -> str:
-    return (f"{path}: --until {iso(until)} is before the last message ({iso(last)}): the "
-            "whole log was replayed; --until only runs the clock on past its end")  # fmt: skip
+def clock_warnings(result: ReplayResult, path: JournalTarget) -> list[str]:
+    """What a replay says about its clock: lines that went back, an --until too early."""
+    out = []
+    if result.clock_went_back:
+        out.append(f"{path}: {result.clock_went_back} line(s) had a receive time earlier than "
+                   "the line before; replayed at the earlier line's time")  # fmt: skip
+    if result.until_before_end:
+        until, last = result.until_before_end
+        out.append(f"{path}: --until {iso(until)} is before the last message ({iso(last)}): "
+                   "the whole log was replayed; --until only runs the clock on past its "
+                   "end")  # fmt: skip
+    return out
 
 
 # --- a capture without a bed context: temporary beds ------------------------------------

@@ -477,12 +477,16 @@ class Decoder:
                     raise _OffsetError("UTC offset field missing")
                 if not isinstance(off, str):
                     raise _OffsetError(f"UTC offset is not a string: {off!r}", "bad UTC offset")
-                try:
-                    parse_offset(off)
-                except TimeError as exc:
-                    raise _OffsetError(str(exc), exc.reason) from None
                 offset = off
-            return parse_iso(raw, offset)
+            try:
+                return parse_iso(raw, offset)
+            except TimeError:
+                if offset is not None:  # the offset field's fault? (looked at only now)
+                    try:
+                        parse_offset(offset)
+                    except TimeError as exc:
+                        raise _OffsetError(str(exc), exc.reason) from None
+                raise
         if self._json and (isinstance(raw, bool) or not isinstance(raw, int | float)):
             raise TimeError(
                 f"epoch time is not a JSON number: {raw!r}", "epoch time is not a number"

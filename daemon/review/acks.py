@@ -17,6 +17,7 @@ from ..engine.alarms import AlarmEvent, State
 from ..engine.effects import Effect
 from ..engine.engine import Engine
 from ..logfile import BadLine
+from .explain import ALARM_ID
 from .recorder import Record
 
 # pending too: an alarm whose delay runs out just before the acknowledgement is made
@@ -59,8 +60,11 @@ class AckCarrier:
         alarm_id = payload.get("alarm_id")
         if not isinstance(alarm_id, str) or alarm_id in self.raised:
             return payload
-        bed, _, rest = alarm_id.partition("/")
-        rule = rest.partition("/")[0]
+        m = ALARM_ID.match(alarm_id)
+        if m is None:
+            self.unmatched += 1
+            return payload
+        bed, rule = m.group(1), m.group(2)
         views = self.engine.book.active(bed)
         open_ = [v for v in views if v.rule == rule and v.state in _ACKABLE]
         if len(open_) != 1:

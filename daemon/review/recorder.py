@@ -30,7 +30,7 @@ from ..engine.strictjson import NotJson, validate
 from ..journal import is_sqlite
 from ..journal_api import JournalTarget
 from ..logfile import BadLine, LogRecord
-from ..replay import ReplayResult, drive, until_words
+from ..replay import ReplayResult, clock_warnings, drive
 from ..sources import open_source
 
 if TYPE_CHECKING:
@@ -291,14 +291,8 @@ def warn_about(
     bad = len(result.bad_lines)
     if bad:
         print(f"{path}: {bad} malformed line(s) skipped", file=stream)
-    if result.clock_went_back:
-        print(
-            f"{path}: {result.clock_went_back} line(s) had a receive time earlier than the "
-            "line before; replayed at the earlier line's time",
-            file=stream,
-        )
-    if result.until_before_end:
-        print(until_words(path, *result.until_before_end), file=stream)
+    for line in clock_warnings(result, path):
+        print(line, file=stream)
 
 
 def replay_alarms(
@@ -321,9 +315,7 @@ def replay_alarms(
         engine = Engine(profiles, rules, policy, advice_policy=advice)
         return engine if acks is None else acks.attach(engine)
 
-    if acks is None:
-        result = run(path, make, recorder, until=until, progress=progress, label=label)
-    else:
-        result = run(path, make, recorder, until=until, progress=progress, label=label,
-                     also=acks.on_effects, wrap=acks.records)  # fmt: skip
+    also, wrap = (None, None) if acks is None else (acks.on_effects, acks.records)
+    result = run(path, make, recorder, until=until, progress=progress, label=label,
+                 also=also, wrap=wrap)  # fmt: skip
     return recorder, result
