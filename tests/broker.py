@@ -14,6 +14,8 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import subprocess
+import sys
 import tempfile
 import threading
 import time
@@ -225,6 +227,35 @@ def publish_all(client: Any, msgs: Iterable[tuple[str, Any]], qos: int = 1, reta
     for info in infos:
         info.wait_for_publish(max(0.01, deadline - time.monotonic()))
     return len(infos)
+
+
+CLI_ENV = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+
+
+def probe_on_broker(
+    b: Broker, argv: list[str], messages: Callable[[], Iterable[tuple[str, Any]]],
+    client_id: str = "probe-test-pub",
+) -> str:  # fmt: skip
+    """`hourwatch probe --broker B --seconds 2 ARGV` in its own process; once it says it
+    is subscribed, `messages()` are made and published. Its stdout, first line included."""
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "daemon.cli", "probe", "--broker", b.address, "--seconds", "2",
+         *argv],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=CLI_ENV,
+    )  # fmt: skip
+    try:
+        assert proc.stdout is not None
+        first = proc.stdout.readline()  # printed once the broker confirmed the subscription
+        assert first.startswith("probe: subscribed"), first
+        pub = publisher(b, client_id)
+        publish_all(pub, messages())
+        out, err = proc.communicate(timeout=20)
+        pub.disconnect()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, err
+    return first + out
 
 
 class FakeClock:

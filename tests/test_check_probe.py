@@ -29,6 +29,7 @@ from simulator.meterlog import constant, iso_z, simulate
 from tests.broker import (
     Watcher,
     broker,  # noqa: F401  (the fixture)
+    probe_on_broker,
     publish_all,
     publisher,
 )
@@ -151,15 +152,7 @@ def test_probe_tally_period_offset_and_rejections_without_a_broker():
 
 
 def test_probe_on_a_real_broker_summarises_each_device(broker):  # noqa: F811
-    proc = subprocess.Popen(
-        hourwatch("probe", "--broker", broker.address, "--profile", REF.name, "--seconds", "2"),
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=ENV,
-    )  # fmt: skip
-    try:
-        assert proc.stdout is not None
-        first = proc.stdout.readline()  # printed once the broker confirmed the subscription
-        assert first.startswith("probe: subscribed to meters/+/volume"), first
-        pub = publisher(broker, "probe-test-pub")
+    def messages() -> list[tuple[str, object]]:  # made once the probe is subscribed
         now = time.time()
         # invented: five readings 60 s apart whose device clock runs 45 s ahead of ours
         t0 = now - 120 + 45
@@ -174,13 +167,10 @@ def test_probe_on_a_real_broker_summarises_each_device(broker):  # noqa: F811
         assert isinstance(payload, dict)
         del payload["time"]  # missing_field
         msgs.append((topic, payload))
-        publish_all(pub, msgs)
-        out, err = proc.communicate(timeout=20)
-        pub.disconnect()
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    assert proc.returncode == 0, err
+        return msgs
+
+    out = probe_on_broker(broker, ["--profile", REF.name], messages)
+    assert out.startswith("probe: subscribed to meters/+/volume"), out
     assert "rc-7001: 7 messages, 5 decoded, 2 rejected (bad_encoding 1, out_of_range 1)" in out, out
     assert "rc-7002: 1 messages, 0 decoded, 1 rejected (missing_field 1)" in out, out
     block = out.split("rc-7001:", 1)[1].split("rc-7002:", 1)[0]

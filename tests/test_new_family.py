@@ -27,7 +27,7 @@ from daemon.engine.profiles import DeviceProfile
 from daemon.probe import ProbeTally
 from daemon.profile_files import BUNDLED, load_profile
 from simulator.encode import encode
-from tests.broker import broker, publish_all, publisher  # noqa: F401
+from tests.broker import broker, probe_on_broker  # noqa: F401
 
 ROOT = Path(__file__).resolve().parent.parent
 ENV = dict(os.environ, PYTHONPATH=str(ROOT))
@@ -120,29 +120,19 @@ def folder(tmp_path: Path) -> Path:
     return out
 
 
+PUB = f"new-family-pub-{os.getpid()}"
+
+
+def check_profiles(folder: Path) -> subprocess.CompletedProcess[str]:
+    """`hourwatch check-profiles FOLDER` in its own process, as an engineer runs it."""
+    return subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
+                          text=True, env=ENV, timeout=60)  # fmt: skip
+
+
 def hourwatch(*argv: str) -> list[str]:
     return [sys.executable, "-m", "daemon.cli", *argv]
 
 
-def probe_on_broker(b: Any, argv: list[str], msgs: list[tuple[str, object]]) -> str:
-    """`hourwatch probe` on the broker while `msgs` are published; its stdout."""
-    proc = subprocess.Popen(
-        hourwatch("probe", "--broker", b.address, "--seconds", "2", *argv),
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=ENV,
-    )  # fmt: skip
-    try:
-        assert proc.stdout is not None
-        first = proc.stdout.readline()  # printed once the broker confirmed the subscription
-        assert first.startswith("probe: subscribed"), first
-        pub = publisher(b, f"new-family-pub-{os.getpid()}")
-        publish_all(pub, msgs)
-        out, err = proc.communicate(timeout=20)
-        pub.disconnect()
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    assert proc.returncode == 0, err
-    return first + out
 
 
 def flowcell(profile: DeviceProfile, t: float, ml: float, n: int) -> tuple[str, dict[str, Any]]:
@@ -153,8 +143,7 @@ def flowcell(profile: DeviceProfile, t: float, ml: float, n: int) -> tuple[str, 
 
 
 def test_both_new_families_check(folder: Path) -> None:
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 0, done.stderr
     assert "ok  dropcount-interval       dropcount/+/+" in done.stdout
     assert "interval, every 300 s, keeps ward" in done.stdout
@@ -179,7 +168,8 @@ def test_probe_names_every_distinct_cause_under_one_reason(broker, folder) -> No
     topic, half_seq = flowcell(p, now, 104.0, 7)
     half_seq["meta"]["count"] = 7.5
     msgs += [(topic, no_status), (topic, no_volume), (topic, text_volume), (topic, half_seq)]
-    out = probe_on_broker(broker, ["--profile", p.name, "--profiles", str(folder)], msgs)
+    out = probe_on_broker(broker, ["--profile", p.name, "--profiles", str(folder)],
+                          lambda: msgs, PUB)
     assert "fc-11: 8 messages, 4 decoded, 4 rejected (bad_number 2, missing_field 2)" in out, out
     for what in ("status", "volume"):
         line = f"missing_field: {what} field missing  (1; e.g. the first; check fields.{what})"
@@ -217,7 +207,7 @@ def test_probe_applies_the_devices_file_like_the_service(broker, folder, tmp_pat
         flowcell(p, now - 60 * (4 - i), float(i), i) for i in range(5)
     ]
     out = probe_on_broker(broker, ["--profile", p.name, "--profiles", str(folder),
-                                   "--devices", str(devices)], msgs)  # fmt: skip
+                                   "--devices", str(devices)], lambda: msgs, PUB)  # fmt: skip
     assert "fc-11: 5 messages, 2 decoded, 3 rejected (out_of_range 3)" in out, out
     assert "rejected: out_of_range: outside physical range after calibration" in out, out
     assert "check calibration" in out, out
@@ -236,8 +226,7 @@ def test_a_utc_offset_field_beside_an_epoch_time_is_refused(folder: Path) -> Non
             'status = "power.state"', 'status = "power.state"\nutc_offset = "meta.clock.tz"'
         )
     )
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2, done.stdout
     line = f'hourwatch: {f}: fields.utc_offset: only read with time.format = "iso8601"'
     assert line in done.stderr, done.stderr
@@ -259,8 +248,7 @@ def test_a_limit_that_is_not_a_finite_number_is_refused(folder, key, value, why)
     text = FLOWCELL.replace("[limits]\n", f"[limits]\n{key} = {value}\n")
     text = text.replace("max_ml = 3000\n", "") if key == "max_ml" else text
     f.write_text(text)
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2, why
     assert f"hourwatch: {f}: limits.{key}: Input should be a finite number" in done.stderr
 
@@ -271,8 +259,7 @@ def test_a_field_that_is_neither_text_nor_a_column_is_one_line(folder: Path) -> 
     fields.volume.int) contradicting each other."""
     f = folder / "flowcell-litre.toml"
     f.write_text(FLOWCELL.replace('volume = "meas.total_l"', "volume = 1.5"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2
     lines = [x for x in done.stderr.splitlines() if str(f) in x]
     assert lines == [
@@ -288,8 +275,7 @@ def test_an_interval_meter_may_not_accept_negative_volumes(folder: Path) -> None
     mL/kg/h at 80 kg, invented) instead of refusing the one bad message."""
     f = folder / "dropcount-interval.toml"
     f.write_text(DROPCOUNT.replace("max_ml = 500", "min_ml = -50\nmax_ml = 500"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2
     assert f"hourwatch: {f}: limits.min_ml: an interval's volume cannot be negative" in (
         done.stderr
@@ -340,8 +326,7 @@ def test_a_profile_saved_with_a_byte_order_mark_loads(folder: Path) -> None:
     looks right. The mark carries no meaning in a UTF-8 file."""
     f = folder / "flowcell-litre.toml"
     f.write_bytes(b"\xef\xbb\xbf" + FLOWCELL.replace("\n", "\r\n").encode("utf-8"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 0, done.stderr
     assert "ok  flowcell-litre" in done.stdout
 
@@ -351,8 +336,9 @@ def test_a_silent_probe_says_where_to_look(broker, folder) -> None:  # noqa: F81
     a broker whose ACL does not yet let the meters write and this login read it:
     mosquitto grants the subscription and then delivers nothing). 'No message' alone
     leaves the engineer guessing: it names the topic filter and the ACL."""
+    typo = [("flowcel/fc-11/data", {"meta": {}})]  # a typo in the meter's topic
     out = probe_on_broker(broker, ["--profile", "flowcell-litre", "--profiles", str(folder)],
-                          [("flowcel/fc-11/data", {"meta": {}})])  # a typo in the meter's topic
+                          lambda: typo, PUB)
     assert "no message on flowcell/+/data from any device" in out, out
     assert "deploy/mosquitto/acl" in out and "flowcell/%u/data" in out, out
 
@@ -365,8 +351,7 @@ def test_an_interval_longer_than_the_reporting_period_is_refused(folder: Path) -
     oliguric-looking 0.15 mL/kg/h at 80 kg (invented). Refused by the checker."""
     f = folder / "dropcount-interval.toml"
     f.write_text(DROPCOUNT.replace("period_s = 300", "period_s = 60"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2
     assert f"hourwatch: {f}: volume.interval_s: longer than timing.period_s" in done.stderr, (
         done.stderr
@@ -381,8 +366,7 @@ def test_a_gap_limit_not_above_the_reporting_period_is_refused(folder: Path) -> 
     for 12 hours raised no alarm. Refused by the checker."""
     f = folder / "flowcell-litre.toml"
     f.write_text(FLOWCELL.replace("period_s = 60", "period_s = 2400"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2
     line = f"hourwatch: {f}: timing.max_interpolation_gap_s: must be longer than timing.period_s"
     assert line in done.stderr, done.stderr
@@ -396,8 +380,7 @@ def test_a_store_limit_below_the_live_lateness_is_refused(folder: Path) -> None:
     the limit may not be below that."""
     f = folder / "flowcell-litre.toml"
     f.write_text(FLOWCELL.replace("period_s = 60", "period_s = 60\nstore_forward_max_s = 0"))
-    done = subprocess.run(hourwatch("check-profiles", str(folder)), capture_output=True,
-                          text=True, env=ENV, timeout=60)  # fmt: skip
+    done = check_profiles(folder)
     assert done.returncode == 2
     line = f"hourwatch: {f}: timing.store_forward_max_s: must be at least 120 s"
     assert line in done.stderr, done.stderr

@@ -28,7 +28,7 @@ from daemon.probe import ProbeTally, capture_writer
 from daemon.profile_files import BUNDLED, load_profile
 from simulator.encode import encode
 from simulator.meterlog import MeterFaults, constant, simulate
-from tests.broker import broker, publish_all, publisher  # noqa: F401
+from tests.broker import broker, probe_on_broker  # noqa: F401
 from tests.conftest import PROFILES, T0
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -331,16 +331,8 @@ def test_a_devices_file_calibrates_a_replay(tmp_path, capsys) -> None:
 
 def test_probe_save_on_a_real_broker_then_replay(broker, tmp_path) -> None:  # noqa: F811
     capture = tmp_path / "probe.jsonl"
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "daemon.cli", "probe", "--broker", broker.address,
-         "--profile", KV.name, "--seconds", "2", "--save", str(capture)],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=ENV,
-    )  # fmt: skip
-    try:
-        assert proc.stdout is not None
-        first = proc.stdout.readline()
-        assert first.startswith("probe: subscribed to uo/+/+/m"), first
-        pub = publisher(broker, "probe-save-pub")
+
+    def messages() -> list[tuple[str, object]]:  # made once the probe is subscribed
         now = time.time()
         msgs: list[tuple[str, object]] = [
             encode(
@@ -354,13 +346,11 @@ def test_probe_save_on_a_real_broker_then_replay(broker, tmp_path) -> None:  # n
             for i in range(5)
         ]
         msgs.append(("uo/4-east/kv-0102/m", b"\xff not text"))
-        publish_all(pub, msgs)
-        out, err = proc.communicate(timeout=20)
-        pub.disconnect()
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    assert proc.returncode == 0, err
+        return msgs
+
+    out = probe_on_broker(broker, ["--profile", KV.name, "--save", str(capture)], messages,
+                          "probe-save-pub")  # fmt: skip
+    assert out.startswith("probe: subscribed to uo/+/+/m"), out
     assert "kv-0102: 6 messages, 5 decoded, 1 rejected (bad_encoding 1)" in out, out
     assert "topic levels: ward='4-east'" in out and f"capture: {capture}" in out
     lines = capture.read_text().splitlines()
