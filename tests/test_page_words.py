@@ -165,3 +165,16 @@ def test_shorten_keeps_a_summary_that_fits_and_drops_details_first() -> None:
     assert shorten(text, 200) == text
     assert shorten(text, 60) == "serum sodium 134 mmol/L at 12:30; order on file"
     assert shorten(text, 40) == "serum sodium 134 mmol/L at 12:30.."
+
+
+def test_a_replacement_share_never_reads_as_its_own_line() -> None:
+    """The demo paged "intake 896 mL = 100% of output 892 mL (alarm above 100%)": 896 / 892
+    is 100.4%, above the line, but whole percent read as the line itself."""
+    from daemon.engine.checks import _share
+
+    # the lines of alert_rules/replacement-excess.toml (100%) and replacement-behind.toml
+    # (50%): common practice, no single source
+    assert _share(896 / 892, 1.0) == "100.4%"
+    assert _share(0.4996, 0.5) == "49.96%"
+    assert _share(1.0, 1.0) == "100%"  # exactly the line: nothing to tell apart
+    assert _share(633 / 1390, 0.5) == "46%"  # far from the line: whole percent

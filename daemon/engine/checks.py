@@ -114,6 +114,16 @@ def _quiet_until(w: Window, series: MinuteSeries, threshold_ml: float) -> int | 
 _ml = ml
 
 
+def _share(x: float, line: float) -> str:
+    """A share in whole percent, or finer where whole percent would read as the line
+    itself ("100% ... (alarm above 100%)" on a page that fired at 100.4%)."""
+    for digits in (0, 1, 2):
+        text = pct(x, digits)
+        if x == line or text != pct(line, digits):
+            return text
+    return text
+
+
 def _vol(x: float, threshold: float) -> str:
     """A volume in whole mL, or to the tenth where whole mL would read as the threshold
     itself (comparisons are made to the tenth: a page never contradicts its threshold)."""
@@ -449,7 +459,7 @@ def replacement_ratio(c: r.ReplacementRatio, v: BedView) -> Finding:
             return "output too small to judge replacement", ev
         word = "below" if c.direction == "below" else "above"
         return (
-            f"intake {_ml(intake)} = {pct(share)} of output {_ml(w.volume_ml)} in "
+            f"intake {_ml(intake)} = {_share(share, c.ratio)} of output {_ml(w.volume_ml)} in "
             f"{c.window_h} h (alarm {word} {pct(c.ratio)})",
             ev | {"intake_share": half_up(share, 3)},
         )
